@@ -1,0 +1,111 @@
+/* dicom.h: the C interface over DCMTK: read MR images (classic and Enhanced) into float pixels with
+ * their attributes, and write MR Image Storage files for the simulator. The only C++ is behind it. */
+#ifndef DICOM_H
+#define DICOM_H
+
+#include <stddef.h>
+
+#include "sw.h"
+
+#ifdef __cplusplus
+extern "C" {
+#endif
+
+#define DCM_UID_MAX 65 /* 64 characters and the terminator */
+#define DCM_STR_MAX 129
+
+/* One image (one frame of a file) with the attributes analysis and store need. Strings are empty
+ * when the attribute is absent; numbers are NAN (doubles) or 0 (ints) when absent unless noted. */
+typedef struct dcm_image {
+    /* identification */
+    char sop_class_uid[DCM_UID_MAX];
+    char sop_instance_uid[DCM_UID_MAX];
+    char study_instance_uid[DCM_UID_MAX];
+    char series_instance_uid[DCM_UID_MAX];
+    char frame_of_reference_uid[DCM_UID_MAX];
+    char transfer_syntax_uid[DCM_UID_MAX];
+    char modality[17];
+    char station_name[DCM_STR_MAX];
+    char device_serial[DCM_STR_MAX];
+    char manufacturer[DCM_STR_MAX];
+    char model[DCM_STR_MAX];
+    char institution[DCM_STR_MAX];
+    char series_description[DCM_STR_MAX];
+    char protocol_name[DCM_STR_MAX];
+    char patient_name[DCM_STR_MAX];
+    char patient_id[DCM_STR_MAX];
+    char mr_acquisition_type[17]; /* "2D" or "3D" */
+    char study_date[9], series_date[9], acquisition_date[9], content_date[9]; /* YYYYMMDD */
+    char study_time[17], series_time[17], acquisition_time[17], content_time[17]; /* HHMMSS.frac */
+    /* acquisition */
+    int series_number;
+    int instance_number;
+    int acquisition_number;
+    int echo_number;               /* 1 when absent */
+    double echo_time_ms;
+    double repetition_time_ms;
+    double slice_thickness_mm;
+    double spacing_between_slices_mm;
+    double magnetic_field_t;
+    double imaging_frequency_mhz;
+    double flip_angle_deg;
+    /* geometry (patient frame, LPS, mm) */
+    double ipp[3];           /* ImagePositionPatient: centre of the first transmitted pixel */
+    double iop[6];           /* ImageOrientationPatient: row direction, then column direction */
+    double pixel_spacing[2]; /* PixelSpacing as stored: [0] between rows, [1] between columns */
+    int has_geometry;        /* 1 when ipp, iop and pixel_spacing were all present */
+    /* pixels */
+    int rows, columns;
+    int frame;        /* 1-based frame number in a multi-frame file, 0 for a single-frame file */
+    int frame_count;  /* NumberOfFrames of the file (1 for single-frame) */
+    int bits_stored;
+    int pixel_representation; /* 0 unsigned, 1 signed */
+    double rescale_slope, rescale_intercept; /* as applied (1 and 0 when absent) */
+    float *pixels;    /* rows x columns, row-major, stored value x slope + intercept; owned */
+} dcm_image;
+
+/* All frames of one file. */
+typedef struct dcm_file {
+    int nframes;
+    dcm_image *frames; /* nframes images; each owns its pixels */
+} dcm_file;
+
+/* Options for reading. */
+typedef struct dcm_read_opts {
+    int header_only; /* 1: attributes only, pixels left NULL (fast path for assembly) */
+} dcm_read_opts;
+
+/* Once per process, single-threaded, before any other call: silences DCMTK's log, checks the data
+ * dictionary is loaded (implicit-VR files would read as garbage without it) and registers the
+ * JPEG, JPEG-LS and RLE decoders. Safe to call twice. */
+sw_status dcm_init(sw_error *err);
+void dcm_shutdown(void);
+
+/* Reads a file (classic MR Image Storage or Enhanced MR Image Storage; other image storage classes are
+ * read as far as their attributes allow). The file is read fully into memory before return, so it
+ * may be moved afterwards. On success *out is a new dcm_file the caller frees with dcm_file_free;
+ * on failure *out is NULL and err names the file and the reason. opts may be NULL. */
+sw_status dcm_read_file(const char *path, const dcm_read_opts *opts, dcm_file **out, sw_error *err);
+/* Same, from a buffer; name is used in messages only. */
+sw_status dcm_read_buffer(const void *data, size_t len, const char *name, const dcm_read_opts *opts,
+                          dcm_file **out, sw_error *err);
+void dcm_file_free(dcm_file *f);
+
+/* Writing (the simulator's output). Pixels are rounded and clamped to unsigned 16-bit stored values
+ * with BitsStored 12 (clamped to 0..4095) and no rescale. Explicit VR little endian, with a file
+ * meta header. All UIDs and attributes are taken from the dcm_image fields (empty ones are omitted,
+ * except type 1 and 2 attributes of the MR Image IOD, which get valid defaults). */
+sw_status dcm_write_mr(const char *path, const dcm_image *img, sw_error *err);
+/* Enhanced MR Image Storage: n frames of one size in one file, with per-frame plane position,
+ * shared plane orientation and pixel measures, and per-frame MR echo. UIDs of frames[0] name the
+ * file; each frame's sop_instance_uid is ignored. */
+sw_status dcm_write_enhanced_mr(const char *path, const dcm_image *frames, int n, sw_error *err);
+
+/* A new UID under our root, unique per call (time, pid, counter). buf must hold DCM_UID_MAX. */
+void dcm_new_uid(char *buf, const char *suffix_hint);
+
+#ifdef __cplusplus
+}
+#endif
+
+#endif
