@@ -47,6 +47,9 @@ typedef struct an_model {
     double bar_len0_mm;        /* bar length at the vertex (15) */
     int ramp_slice;            /* ordinal of the slice holding the ramps (1) */
     int wedge_slice[2];        /* ordinals of the wedge slices (1, 11) */
+    /* added for the simulator (additive): extents it needs to build the whole object */
+    double cyl_w_min, cyl_w_max; /* fluid cylinder's ends along w (-24, +124) */
+    double wedge_w_half;         /* bridge and bars extend |w - wedge_w| <= this (12) */
 } an_model;
 
 /* Fills m with the large phantom's model (../shared/phantom-large.md). */

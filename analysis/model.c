@@ -40,6 +40,9 @@ void an_model_large(an_model *m)
     m->ramp_slice = 1;
     m->wedge_slice[0] = 1;
     m->wedge_slice[1] = 11;
+    m->cyl_w_min = -24.0;
+    m->cyl_w_max = 124.0;
+    m->wedge_w_half = 12.0;
 }
 
 sw_status an_model_check(const an_model *m, sw_error *err)
