@@ -1,4 +1,239 @@
-/* placeholder until the analysis lands */
+/* cmd_analyze.c: `slicewarden analyze PATH...`: measure the phantom series found in files or folders. */
+#include <getopt.h>
+#include <jansson.h>
 #include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include "dicom.h"
+#include "files.h"
+#include "pipeline.h"
 #include "wd.h"
-int wd_cmd_analyze(int argc, char **argv) { (void)argc; (void)argv; fprintf(stderr, "analyze: not built yet\n"); return 2; }
+
+/* One file's header, kept until its series is measured. */
+typedef struct entry {
+    const char *path;
+    dcm_file *head; /* header only */
+    int series;     /* index into the series table */
+} entry;
+
+typedef struct series_ref {
+    char uid[DCM_UID_MAX];
+    int first_entry;
+} series_ref;
+
+static void usage(FILE *f)
+{
+    fprintf(f,
+            "usage: slicewarden analyze [--json] [--png DIR] [--half-level zero|floor|background]\n"
+            "                           PATH...\n"
+            "Measures slice thickness and slice position in the phantom series found in the given\n"
+            "files and folders (folders are searched recursively).\n"
+            "  --json        one JSON document on stdout instead of text\n"
+            "  --png DIR     write an annotated PNG per measured slice into DIR\n"
+            "  --half-level  how the half level of a ramp profile is set (default zero: half the\n"
+            "                plateau above the true zero of the plastic)\n"
+            "Exit status: 0 all pass, 1 a warn, fail or unmeasurable result, 2 an input or usage error.\n"
+            "Results support, and never replace, a qualified medical physicist's review.\n");
+}
+
+static int find_series(series_ref *s, int n, const char *uid)
+{
+    for (int i = 0; i < n; i++)
+        if (!strcmp(s[i].uid, uid))
+            return i;
+    return -1;
+}
+
+/* Reads the pixels of every file of series k and measures it; prints or appends the results. */
+static int measure_series(entry *e, int ne, int k, const wd_method *method, json_t *out_json,
+                          const char *png_dir, an_verdict *worst)
+{
+    int rc = 0, nimg = 0, cap = 0;
+    dcm_file **files = calloc((size_t)ne, sizeof *files);
+    const dcm_image **imgs = NULL;
+    wd_measured m;
+    memset(&m, 0, sizeof m);
+    if (!files)
+        goto oom;
+    for (int i = 0; i < ne; i++) {
+        if (e[i].series != k)
+            continue;
+        sw_error err;
+        sw_error_clear(&err);
+        if (dcm_read_file(e[i].path, NULL, &files[i], &err) != SW_OK) {
+            fprintf(stderr, "slicewarden: %s\n", err.msg);
+            rc = 2;
+            continue;
+        }
+        cap += files[i]->nframes;
+    }
+    imgs = calloc((size_t)cap + 1, sizeof *imgs);
+    if (!imgs)
+        goto oom;
+    for (int i = 0; i < ne; i++)
+        for (int f = 0; files[i] && f < files[i]->nframes; f++)
+            imgs[nimg++] = &files[i]->frames[f];
+    if (nimg == 0)
+        goto out;
+    sw_error err;
+    sw_error_clear(&err);
+    if (wd_measure(imgs, nimg, method, &m, &err) != SW_OK) {
+        fprintf(stderr, "slicewarden: %s\n", err.msg);
+        rc = 2;
+        goto out;
+    }
+    if (out_json)
+        wd_measured_json(&m, json_object_get(out_json, "series"));
+    else
+        wd_measured_text(&m, stdout);
+    if (png_dir)
+        (void)png_dir; /* annotated images: report/ */
+    an_verdict v = wd_measured_verdict(&m);
+    if (v > *worst)
+        *worst = v;
+    goto out;
+oom:
+    fprintf(stderr, "slicewarden: out of memory\n");
+    rc = 2;
+out:
+    wd_measured_free(&m);
+    if (files)
+        for (int i = 0; i < ne; i++)
+            dcm_file_free(files[i]);
+    free(files);
+    free(imgs);
+    return rc;
+}
+
+int wd_cmd_analyze(int argc, char **argv)
+{
+    static const struct option opts[] = {
+        {"json", no_argument, NULL, 'j'},
+        {"png", required_argument, NULL, 'p'},
+        {"half-level", required_argument, NULL, 'H'},
+        {"help", no_argument, NULL, 'h'},
+        {NULL, 0, NULL, 0},
+    };
+    int json = 0, rc = 0, ns = 0;
+    const char *png_dir = NULL;
+    wd_method method;
+    wd_method_default(&method);
+    wd_paths paths = {0};
+    entry *e = NULL;
+    series_ref *s = NULL;
+    json_t *doc = NULL;
+    an_verdict worst = AN_PASS;
+    int c;
+    optind = 1;
+    while ((c = getopt_long(argc, argv, "", opts, NULL)) != -1) {
+        switch (c) {
+        case 'j': json = 1; break;
+        case 'p': png_dir = optarg; break;
+        case 'H':
+            if (!strcmp(optarg, "zero"))
+                method.params.half_level = AN_HALF_TRUE_ZERO;
+            else if (!strcmp(optarg, "floor"))
+                method.params.half_level = AN_HALF_FLOOR_MODEL;
+            else if (!strcmp(optarg, "background"))
+                method.params.half_level = AN_HALF_BACKGROUND;
+            else {
+                fprintf(stderr, "slicewarden analyze: unknown half level '%s'\n", optarg);
+                return 2;
+            }
+            break;
+        case 'h': usage(stdout); return 0;
+        default: usage(stderr); return 2;
+        }
+    }
+    if (optind >= argc) {
+        usage(stderr);
+        return 2;
+    }
+    sw_error err;
+    sw_error_clear(&err);
+    if (dcm_init(&err) != SW_OK) {
+        fprintf(stderr, "slicewarden: %s\n", err.msg);
+        return 2;
+    }
+    for (int i = optind; i < argc; i++) {
+        sw_error_clear(&err);
+        size_t before = paths.n;
+        if (wd_paths_collect(&paths, argv[i], &err) != SW_OK) {
+            fprintf(stderr, "slicewarden: %s\n", err.msg);
+            rc = 2;
+        } else if (paths.n == before) {
+            fprintf(stderr, "slicewarden: %s: no files found\n", argv[i]);
+            rc = 2;
+        }
+    }
+    e = calloc(paths.n + 1, sizeof *e);
+    s = calloc(paths.n + 1, sizeof *s);
+    if (!e || !s) {
+        fprintf(stderr, "slicewarden: out of memory\n");
+        rc = 2;
+        goto out;
+    }
+    /* Pass 1: headers only, to group files into series without holding pixels. */
+    const dcm_read_opts head = {.header_only = 1};
+    for (size_t i = 0; i < paths.n; i++) {
+        e[i].path = paths.v[i];
+        e[i].series = -1;
+        sw_error_clear(&err);
+        if (dcm_read_file(paths.v[i], &head, &e[i].head, &err) != SW_OK) {
+            fprintf(stderr, "slicewarden: %s\n", err.msg);
+            rc = 2;
+            continue;
+        }
+        const dcm_image *d = &e[i].head->frames[0];
+        if (strcmp(d->modality, "MR") != 0) {
+            fprintf(stderr, "slicewarden: %s: not an MR image (modality '%s')\n", paths.v[i],
+                    d->modality);
+            rc = 2;
+            continue;
+        }
+        if (!d->series_instance_uid[0]) {
+            fprintf(stderr, "slicewarden: %s: no SeriesInstanceUID\n", paths.v[i]);
+            rc = 2;
+            continue;
+        }
+        int k = find_series(s, ns, d->series_instance_uid);
+        if (k < 0) {
+            k = ns++;
+            sw_strlcpy(s[k].uid, d->series_instance_uid, sizeof s[k].uid);
+            s[k].first_entry = (int)i;
+        }
+        e[i].series = k;
+    }
+    if (json) {
+        doc = json_object();
+        json_object_set_new(doc, "program", json_string("slicewarden " SW_VERSION));
+        json_object_set_new(doc, "series", json_array());
+    }
+    /* Pass 2: one series at a time, pixels read, measured and released. */
+    for (int k = 0; k < ns; k++) {
+        int r = measure_series(e, (int)paths.n, k, &method, doc, png_dir, &worst);
+        if (r > rc)
+            rc = r;
+    }
+    if (doc) {
+        json_dumpf(doc, stdout, JSON_INDENT(2) | JSON_REAL_PRECISION(6));
+        fputc('\n', stdout);
+    }
+    if (rc == 0 && ns == 0) {
+        fprintf(stderr, "slicewarden: no MR series found\n");
+        rc = 2;
+    }
+    if (rc == 0 && worst != AN_PASS)
+        rc = 1;
+out:
+    json_decref(doc);
+    if (e)
+        for (size_t i = 0; i < paths.n; i++)
+            dcm_file_free(e[i].head);
+    free(e);
+    free(s);
+    wd_paths_free(&paths);
+    dcm_shutdown();
+    return rc;
+}

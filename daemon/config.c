@@ -1,0 +1,509 @@
+/* config.c: one field table per file kind drives defaults, parsing, validation and printing. */
+#include "config.h"
+
+#include <errno.h>
+#include <ini.h>
+#include <math.h>
+#include <stddef.h>
+#include <stdlib.h>
+#include <string.h>
+#include <strings.h>
+
+#include "wd.h"
+
+typedef enum ftype { F_STR, F_INT, F_DBL, F_BOOL, F_ENUM } ftype;
+
+typedef struct field {
+    const char *section, *key;
+    ftype type;
+    size_t off, size;          /* target offset in the struct; size for strings */
+    const char *def;           /* default, as text; NULL: the struct's own default (analysis/) */
+    double min, max;           /* range for numbers */
+    const char *const *choices; /* F_ENUM: names, index is the value; NULL-terminated */
+    const char *help;
+} field;
+
+static const char *const half_levels[] = {"zero", "floor", "background", NULL};
+static const char *const log_levels[] = {"debug", "info", "warning", "error", NULL};
+static const char *const methods[] = {"crossed-ramps", "single-ramp", "single-wedge", NULL};
+
+#define S(sec, k, st, member, d, h) {sec, k, F_STR, offsetof(st, member), sizeof(((st *)0)->member), d, 0, 0, NULL, h}
+#define I(sec, k, st, member, d, lo, hi, h) {sec, k, F_INT, offsetof(st, member), 0, d, lo, hi, NULL, h}
+#define D(sec, k, st, member, d, lo, hi, h) {sec, k, F_DBL, offsetof(st, member), 0, d, lo, hi, NULL, h}
+#define B(sec, k, st, member, d, h) {sec, k, F_BOOL, offsetof(st, member), 0, d, 0, 1, NULL, h}
+#define E(sec, k, st, member, d, ch, h) {sec, k, F_ENUM, offsetof(st, member), 0, d, 0, 0, ch, h}
+
+static const field config_fields[] = {
+    S("watch", "folder", wd_config, folder, "/var/lib/slicewarden/incoming", "folder where series arrive"),
+    S("watch", "database", wd_config, database, "/var/lib/slicewarden/slicewarden.sqlite", "SQLite database"),
+    S("watch", "archive", wd_config, archive, "", "measured files go here (empty: 'archive' beside the folder)"),
+    S("watch", "quarantine", wd_config, quarantine, "", "bad files go here with their reason (empty: 'quarantine' beside the folder)"),
+    S("watch", "ignored", wd_config, ignored, "", "files that are not phantom series (empty: 'ignored' beside the folder)"),
+    B("watch", "move_files", wd_config, move_files, "yes", "move files when done (no: leave them in place)"),
+    D("watch", "quiet_seconds", wd_config, quiet_seconds, "30", 1, 86400, "analyse an incomplete series after this long without a new image"),
+    S("phantom", "model_file", wd_config, model_file, "", "phantom model file (empty: built-in large phantom)"),
+    S("phantom", "tolerance_file", wd_config, tolerance_file, "", "tolerance file (empty: built-in default set)"),
+    S("match", "t1", wd_config, t1_match, "*T1*|*t1*", "patterns on SeriesDescription/ProtocolName for the T1 series ('|' separated)"),
+    S("match", "t2", wd_config, t2_match, "*T2*|*t2*", "patterns for the double-echo T2 series"),
+    B("match", "by_content", wd_config, match_by_content, "yes", "measure unmatched series whose image count fits the phantom"),
+    E("analysis", "half_level", wd_config, half_level, "zero", half_levels, "half level of a ramp profile: zero, floor or background"),
+    S("alert", "command", wd_config, alert_command, "", "command run for each alert, facts in SLICEWARDEN_* variables"),
+    D("alert", "retry_seconds", wd_config, alert_retry_seconds, "300", 1, 86400, "retry a failed alert command after this long"),
+    E("log", "level", wd_config, log_level, "info", log_levels, "debug, info, warning or error"),
+};
+
+static const field model_fields[] = {
+    S("phantom", "name", an_model, name, NULL, "model name, stored with every result"),
+    D("phantom", "radius_mm", an_model, radius_mm, NULL, 10, 500, "fluid cylinder radius"),
+    D("phantom", "w_min_mm", an_model, cyl_w_min, NULL, -1000, 1000, "fluid cylinder's end toward the first slice"),
+    D("phantom", "w_max_mm", an_model, cyl_w_max, NULL, -1000, 1000, "fluid cylinder's end toward the last slice"),
+    I("phantom", "slices", an_model, n_slices, NULL, 1, AN_MAX_IMAGES, "slices of the standard series"),
+    D("phantom", "slice_gap_mm", an_model, slice_gap_mm, NULL, 0.1, 100, "centre-to-centre spacing"),
+    D("phantom", "nominal_thickness_mm", an_model, nominal_thickness_mm, NULL, 0.1, 50, "nominal slice thickness"),
+    E("phantom", "method", an_model, method, NULL, methods, "crossed-ramps, single-ramp or single-wedge"),
+    I("phantom", "ramp_slice", an_model, ramp_slice, NULL, 1, AN_MAX_IMAGES, "ordinal of the slice with the ramps"),
+    D("insert", "u_min_mm", an_model, insert_u_min, NULL, -500, 500, "thickness insert extent"),
+    D("insert", "u_max_mm", an_model, insert_u_max, NULL, -500, 500, ""),
+    D("insert", "v_min_mm", an_model, insert_v_min, NULL, -500, 500, ""),
+    D("insert", "v_max_mm", an_model, insert_v_max, NULL, -500, 500, ""),
+    D("insert", "w_half_mm", an_model, insert_w_half, NULL, 0.1, 500, ""),
+    I("insert", "ramps", an_model, n_ramps, NULL, 0, 2, "number of ramps"),
+    D("insert", "slot_mm", an_model, slot_mm, NULL, 0, 20, "slot thickness along the axis"),
+    D("insert", "wedge_slope", an_model, wedge_slope, NULL, 0.01, 100, "single-wedge method: dw/du of the wedge face"),
+    D("ramp.top", "v_min_mm", an_model, ramp[0].v_min, NULL, -500, 500, "first ramp's extent across"),
+    D("ramp.top", "v_max_mm", an_model, ramp[0].v_max, NULL, -500, 500, ""),
+    D("ramp.top", "slope", an_model, ramp[0].slope, NULL, -10, 10, "dw/du of the slot's centre plane"),
+    D("ramp.bottom", "v_min_mm", an_model, ramp[1].v_min, NULL, -500, 500, "second ramp's extent across"),
+    D("ramp.bottom", "v_max_mm", an_model, ramp[1].v_max, NULL, -500, 500, ""),
+    D("ramp.bottom", "slope", an_model, ramp[1].slope, NULL, -10, 10, ""),
+    B("wedges", "present", an_model, has_wedges, NULL, "the phantom has crossed slice-position wedges"),
+    D("wedges", "w_first_mm", an_model, wedge_w[0], NULL, -1000, 1000, "vertex plane on the ramp side"),
+    D("wedges", "w_last_mm", an_model, wedge_w[1], NULL, -1000, 1000, "vertex plane on the far side"),
+    D("wedges", "w_half_mm", an_model, wedge_w_half, NULL, 0.1, 500, "bridge and bars extent along the axis"),
+    I("wedges", "slice_first", an_model, wedge_slice[0], NULL, 1, AN_MAX_IMAGES, "ordinal of the first wedge slice"),
+    I("wedges", "slice_last", an_model, wedge_slice[1], NULL, 1, AN_MAX_IMAGES, "ordinal of the second wedge slice"),
+    D("wedges", "bridge_u_min_mm", an_model, bridge_u_min, NULL, -500, 500, "bridge extent"),
+    D("wedges", "bridge_u_max_mm", an_model, bridge_u_max, NULL, -500, 500, ""),
+    D("wedges", "bridge_v_min_mm", an_model, bridge_v_min, NULL, -500, 500, ""),
+    D("wedges", "bridge_v_max_mm", an_model, bridge_v_max, NULL, -500, 500, ""),
+    D("wedges", "left_u_min_mm", an_model, bar_u_min[0], NULL, -500, 500, "left bar extent"),
+    D("wedges", "left_u_max_mm", an_model, bar_u_max[0], NULL, -500, 500, ""),
+    D("wedges", "right_u_min_mm", an_model, bar_u_min[1], NULL, -500, 500, "right bar extent"),
+    D("wedges", "right_u_max_mm", an_model, bar_u_max[1], NULL, -500, 500, ""),
+    D("wedges", "bar_top_v_mm", an_model, bar_top_v, NULL, -500, 500, "bars hang from here"),
+    D("wedges", "bar_length_mm", an_model, bar_len0_mm, NULL, 0.1, 500, "bar length at the vertex"),
+};
+
+/* Tolerance sets: the same fields in [default] and in each [rule NAME]. */
+static const field tol_fields[] = {
+    S("", "name", an_tolerance, name, NULL, "tolerance set name, stored with every result"),
+    B("", "thickness_relative", an_tolerance, thickness_relative, NULL, "limits are fractions of the nominal thickness"),
+    D("", "thickness_fail", an_tolerance, thickness_fail, NULL, 0, 50, "|thickness - nominal| above this fails (mm or fraction)"),
+    D("", "thickness_warn", an_tolerance, thickness_warn, NULL, 0, 50, "above this warns"),
+    D("", "bar_difference_fail", an_tolerance, bar_difference_fail, NULL, 0, 100, "|bar length difference| above this fails (mm)"),
+    D("", "bar_difference_warn", an_tolerance, bar_difference_warn, NULL, 0, 100, "above this warns"),
+    D("", "min_snr", an_tolerance, min_snr, NULL, 0, 10000, "below this SNR results are unmeasurable"),
+};
+
+#define NFIELDS(t) (sizeof(t) / sizeof((t)[0]))
+
+/* Sets one field from text; returns 0 and a reason in why on a bad value. */
+static int set_value(const field *f, void *base, const char *value, char *why, size_t nwhy)
+{
+    char *p = (char *)base + f->off;
+    char *end = NULL;
+    switch (f->type) {
+    case F_STR:
+        if (strlen(value) >= f->size) {
+            snprintf(why, nwhy, "%s is longer than %zu characters", f->key, f->size - 1);
+            return 0;
+        }
+        sw_strlcpy(p, value, f->size);
+        return 1;
+    case F_INT: {
+        errno = 0;
+        long v = strtol(value, &end, 10);
+        if (errno || end == value || *end || v < f->min || v > f->max) {
+            snprintf(why, nwhy, "%s must be an integer from %g to %g, not '%s'", f->key, f->min,
+                     f->max, value);
+            return 0;
+        }
+        *(int *)p = (int)v;
+        return 1;
+    }
+    case F_DBL: {
+        errno = 0;
+        double v = strtod(value, &end);
+        if (errno || end == value || *end || !isfinite(v) || v < f->min || v > f->max) {
+            snprintf(why, nwhy, "%s must be a number from %g to %g, not '%s'", f->key, f->min,
+                     f->max, value);
+            return 0;
+        }
+        *(double *)p = v;
+        return 1;
+    }
+    case F_BOOL:
+        if (!strcasecmp(value, "yes") || !strcasecmp(value, "true") || !strcmp(value, "1") ||
+            !strcasecmp(value, "on"))
+            *(int *)p = 1;
+        else if (!strcasecmp(value, "no") || !strcasecmp(value, "false") || !strcmp(value, "0") ||
+                 !strcasecmp(value, "off"))
+            *(int *)p = 0;
+        else {
+            snprintf(why, nwhy, "%s must be yes or no, not '%s'", f->key, value);
+            return 0;
+        }
+        return 1;
+    case F_ENUM:
+        for (int i = 0; f->choices[i]; i++)
+            if (!strcasecmp(value, f->choices[i])) {
+                *(int *)p = i;
+                return 1;
+            }
+        snprintf(why, nwhy, "%s must be one of", f->key);
+        for (int i = 0; f->choices[i]; i++) {
+            size_t len = strlen(why);
+            snprintf(why + len, nwhy - len, "%s %s", i ? "," : "", f->choices[i]);
+        }
+        return 0;
+    }
+    return 0;
+}
+
+static void apply_defaults(const field *t, size_t n, void *base)
+{
+    char why[256];
+    for (size_t i = 0; i < n; i++)
+        if (t[i].def)
+            (void)set_value(&t[i], base, t[i].def, why, sizeof why);
+}
+
+static const field *find_field(const field *t, size_t n, const char *section, const char *key)
+{
+    for (size_t i = 0; i < n; i++)
+        if ((!section || !strcmp(t[i].section, section)) && !strcmp(t[i].key, key))
+            return &t[i];
+    return NULL;
+}
+
+static void print_value(const field *f, const void *base, FILE *out)
+{
+    const char *p = (const char *)base + f->off;
+    switch (f->type) {
+    case F_STR: fprintf(out, "%s = %s", f->key, p); break;
+    case F_INT: fprintf(out, "%s = %d", f->key, *(const int *)p); break;
+    case F_DBL: fprintf(out, "%s = %.10g", f->key, *(const double *)p); break;
+    case F_BOOL: fprintf(out, "%s = %s", f->key, *(const int *)p ? "yes" : "no"); break;
+    case F_ENUM: fprintf(out, "%s = %s", f->key, f->choices[*(const int *)p]); break;
+    }
+    if (f->help && f->help[0])
+        fprintf(out, "    ; %s", f->help);
+    fputc('\n', out);
+}
+
+static void print_table(const field *t, size_t n, const void *base, FILE *out, const char *only)
+{
+    const char *section = NULL;
+    for (size_t i = 0; i < n; i++) {
+        if (only) {
+            if (i == 0)
+                fprintf(out, "[%s]\n", only);
+        } else if (!section || strcmp(section, t[i].section)) {
+            section = t[i].section;
+            fprintf(out, "%s[%s]\n", i ? "\n" : "", section);
+        }
+        print_value(&t[i], base, out);
+    }
+}
+
+/* ---- parsing with inih: the handler records the first reason; inih returns its line ---- */
+
+typedef struct parse_ctx {
+    char why[256];
+    int kind; /* 0 config, 1 model, 2 tolerance */
+    void *target;
+    wd_tol_rule *rule; /* tolerance: the rule being filled, NULL in [default] */
+} parse_ctx;
+
+static int config_handler(void *user, const char *section, const char *key, const char *value)
+{
+    parse_ctx *ctx = user;
+    if (ctx->why[0])
+        return 0;
+    wd_config *c = ctx->target;
+    if (!strcmp(section, "aliases")) {
+        if (c->n_aliases == WD_MAX_ALIASES) {
+            snprintf(ctx->why, sizeof ctx->why, "more than %d aliases", WD_MAX_ALIASES);
+            return 0;
+        }
+        if (strlen(key) >= sizeof c->alias[0].station || strlen(value) >= sizeof c->alias[0].alias) {
+            snprintf(ctx->why, sizeof ctx->why, "alias '%s' is too long", key);
+            return 0;
+        }
+        wd_alias *a = &c->alias[c->n_aliases++];
+        sw_strlcpy(a->station, key, sizeof a->station);
+        sw_strlcpy(a->alias, value, sizeof a->alias);
+        return 1;
+    }
+    const field *f = find_field(config_fields, NFIELDS(config_fields), section, key);
+    if (!f) {
+        snprintf(ctx->why, sizeof ctx->why, "unknown setting '%s' in [%s]", key, section);
+        return 0;
+    }
+    return set_value(f, c, value, ctx->why, sizeof ctx->why);
+}
+
+static int model_handler(void *user, const char *section, const char *key, const char *value)
+{
+    parse_ctx *ctx = user;
+    if (ctx->why[0])
+        return 0;
+    const field *f = find_field(model_fields, NFIELDS(model_fields), section, key);
+    if (!f) {
+        snprintf(ctx->why, sizeof ctx->why, "unknown setting '%s' in [%s]", key, section);
+        return 0;
+    }
+    return set_value(f, ctx->target, value, ctx->why, sizeof ctx->why);
+}
+
+static int tol_handler(void *user, const char *section, const char *key, const char *value)
+{
+    parse_ctx *ctx = user;
+    if (ctx->why[0])
+        return 0;
+    wd_tolerances *t = ctx->target;
+    an_tolerance *dst;
+    if (!strcmp(section, "default")) {
+        dst = &t->base;
+    } else if (!strncmp(section, "rule ", 5) && section[5]) {
+        const char *name = section + 5;
+        wd_tol_rule *r = ctx->rule;
+        if (!r || strcmp(r->tol.name, name)) {
+            if (t->n_rules == WD_MAX_TOL_RULES) {
+                snprintf(ctx->why, sizeof ctx->why, "more than %d rules", WD_MAX_TOL_RULES);
+                return 0;
+            }
+            r = &t->rule[t->n_rules++];
+            r->tol = t->base; /* a rule starts from the default set read so far */
+            if (strlen(name) >= sizeof r->tol.name) {
+                snprintf(ctx->why, sizeof ctx->why, "rule name '%s' is too long", name);
+                return 0;
+            }
+            sw_strlcpy(r->tol.name, name, sizeof r->tol.name);
+            sw_strlcpy(r->station, "*", sizeof r->station);
+            sw_strlcpy(r->series_type, "*", sizeof r->series_type);
+            ctx->rule = r;
+        }
+        if (!strcmp(key, "station")) {
+            if (strlen(value) >= sizeof r->station) {
+                snprintf(ctx->why, sizeof ctx->why, "station '%s' is too long", value);
+                return 0;
+            }
+            sw_strlcpy(r->station, value, sizeof r->station);
+            return 1;
+        }
+        if (!strcmp(key, "series_type")) {
+            if (strcmp(value, "t1") && strcmp(value, "t2") && strcmp(value, "3d") &&
+                strcmp(value, "*")) {
+                snprintf(ctx->why, sizeof ctx->why, "series_type must be t1, t2, 3d or *");
+                return 0;
+            }
+            sw_strlcpy(r->series_type, value, sizeof r->series_type);
+            return 1;
+        }
+        if (!strcmp(key, "name")) {
+            snprintf(ctx->why, sizeof ctx->why, "a rule is named by its section");
+            return 0;
+        }
+        dst = &r->tol;
+    } else {
+        snprintf(ctx->why, sizeof ctx->why, "unknown section [%s] (use [default] or [rule NAME])",
+                 section);
+        return 0;
+    }
+    const field *f = find_field(tol_fields, NFIELDS(tol_fields), NULL, key);
+    if (!f) {
+        snprintf(ctx->why, sizeof ctx->why, "unknown setting '%s' in [%s]", key, section);
+        return 0;
+    }
+    return set_value(f, dst, value, ctx->why, sizeof ctx->why);
+}
+
+static sw_status parse(const char *path, ini_handler h, parse_ctx *ctx, sw_error *err)
+{
+    int line = ini_parse(path, h, ctx);
+    if (line == -1)
+        return sw_error_set(err, SW_EIO, "%s: cannot open: %s", path, strerror(errno));
+    if (line == -2)
+        return sw_error_set(err, SW_ENOMEM, "%s: out of memory", path);
+    if (line > 0)
+        return sw_error_set(err, SW_EINVAL, "%s:%d: %s", path, line,
+                            ctx->why[0] ? ctx->why : "syntax error");
+    return SW_OK;
+}
+
+/* ---- the main configuration ---- */
+
+void wd_config_default(wd_config *c)
+{
+    memset(c, 0, sizeof *c);
+    apply_defaults(config_fields, NFIELDS(config_fields), c);
+}
+
+sw_status wd_config_load(wd_config *c, const char *path, sw_error *err)
+{
+    wd_config *tmp = malloc(sizeof *tmp);
+    if (!tmp)
+        return sw_error_set(err, SW_ENOMEM, "%s: out of memory", path);
+    wd_config_default(tmp);
+    parse_ctx ctx = {.kind = 0, .target = tmp};
+    sw_status st = parse(path, config_handler, &ctx, err);
+    if (st == SW_OK && !tmp->folder[0])
+        st = sw_error_set(err, SW_EINVAL, "%s: [watch] folder must not be empty", path);
+    if (st == SW_OK && !tmp->database[0])
+        st = sw_error_set(err, SW_EINVAL, "%s: [watch] database must not be empty", path);
+    if (st == SW_OK) {
+        sw_strlcpy(tmp->path, path, sizeof tmp->path);
+        *c = *tmp;
+    } else {
+        wd_config_default(c);
+    }
+    free(tmp);
+    return st;
+}
+
+static void beside(char *dst, size_t n, const char *folder, const char *name)
+{
+    char parent[PATH_MAX];
+    sw_strlcpy(parent, folder, sizeof parent);
+    size_t len = strlen(parent);
+    while (len > 1 && parent[len - 1] == '/')
+        parent[--len] = '\0';
+    char *slash = strrchr(parent, '/');
+    if (!slash)
+        snprintf(dst, n, "%s", name);
+    else if (slash == parent)
+        snprintf(dst, n, "/%s", name);
+    else {
+        *slash = '\0';
+        snprintf(dst, n, "%s/%s", parent, name);
+    }
+}
+
+void wd_config_resolve(wd_config *c)
+{
+    if (!c->archive[0])
+        beside(c->archive, sizeof c->archive, c->folder, "archive");
+    if (!c->quarantine[0])
+        beside(c->quarantine, sizeof c->quarantine, c->folder, "quarantine");
+    if (!c->ignored[0])
+        beside(c->ignored, sizeof c->ignored, c->folder, "ignored");
+}
+
+void wd_config_print(const wd_config *c, FILE *f)
+{
+    fprintf(f, "; slicewarden %s effective configuration (%s)\n", SW_VERSION,
+            c->path[0] ? c->path : "built-in defaults");
+    print_table(config_fields, NFIELDS(config_fields), c, f, NULL);
+    fprintf(f, "\n[aliases]\n");
+    for (int i = 0; i < c->n_aliases; i++)
+        fprintf(f, "%s = %s\n", c->alias[i].station, c->alias[i].alias);
+}
+
+const char *wd_config_alias(const wd_config *c, const char *station)
+{
+    for (int i = 0; i < c->n_aliases; i++)
+        if (!strcmp(c->alias[i].station, station))
+            return c->alias[i].alias;
+    return station;
+}
+
+/* ---- phantom model ---- */
+
+sw_status wd_model_load(an_model *m, const char *path, sw_error *err)
+{
+    an_model tmp;
+    an_model_large(&tmp);
+    parse_ctx ctx = {.kind = 1, .target = &tmp};
+    sw_status st = parse(path, model_handler, &ctx, err);
+    if (st == SW_OK) {
+        sw_error e2;
+        sw_error_clear(&e2);
+        if (an_model_check(&tmp, &e2) != SW_OK)
+            st = sw_error_set(err, SW_EINVAL, "%s: %s", path, e2.msg);
+    }
+    if (st == SW_OK)
+        *m = tmp;
+    return st;
+}
+
+void wd_model_print(const an_model *m, FILE *f)
+{
+    print_table(model_fields, NFIELDS(model_fields), m, f, NULL);
+}
+
+/* ---- tolerances ---- */
+
+void wd_tolerances_default(wd_tolerances *t)
+{
+    memset(t, 0, sizeof *t);
+    an_tolerance_default(&t->base);
+}
+
+static const char *tol_check(const an_tolerance *t)
+{
+    if (t->thickness_warn > t->thickness_fail)
+        return "thickness_warn must not exceed thickness_fail";
+    if (t->bar_difference_warn > t->bar_difference_fail)
+        return "bar_difference_warn must not exceed bar_difference_fail";
+    if (t->thickness_relative && t->thickness_fail >= 1)
+        return "a relative thickness_fail is a fraction below 1";
+    return NULL;
+}
+
+sw_status wd_tolerances_load(wd_tolerances *t, const char *path, sw_error *err)
+{
+    wd_tolerances *tmp = malloc(sizeof *tmp);
+    if (!tmp)
+        return sw_error_set(err, SW_ENOMEM, "%s: out of memory", path);
+    wd_tolerances_default(tmp);
+    parse_ctx ctx = {.kind = 2, .target = tmp};
+    sw_status st = parse(path, tol_handler, &ctx, err);
+    for (int i = -1; st == SW_OK && i < tmp->n_rules; i++) {
+        const an_tolerance *x = i < 0 ? &tmp->base : &tmp->rule[i].tol;
+        const char *why = tol_check(x);
+        if (why)
+            st = sw_error_set(err, SW_EINVAL, "%s: [%s%s]: %s", path, i < 0 ? "default" : "rule ",
+                              i < 0 ? "" : x->name, why);
+    }
+    if (st == SW_OK)
+        *t = *tmp;
+    free(tmp);
+    return st;
+}
+
+static int matches(const char *pattern, const char *value)
+{
+    return !strcmp(pattern, "*") || !strcmp(pattern, value);
+}
+
+const an_tolerance *wd_tolerances_for(const wd_tolerances *t, const char *station,
+                                      const char *series_type)
+{
+    for (int i = t->n_rules - 1; i >= 0; i--)
+        if (matches(t->rule[i].station, station) && matches(t->rule[i].series_type, series_type))
+            return &t->rule[i].tol;
+    return &t->base;
+}
+
+void wd_tolerances_print(const wd_tolerances *t, FILE *f)
+{
+    print_table(tol_fields, NFIELDS(tol_fields), &t->base, f, "default");
+    for (int i = 0; i < t->n_rules; i++) {
+        char sec[96];
+        snprintf(sec, sizeof sec, "rule %s", t->rule[i].tol.name);
+        fprintf(f, "\n");
+        print_table(tol_fields + 1, NFIELDS(tol_fields) - 1, &t->rule[i].tol, f, sec);
+        fprintf(f, "station = %s\nseries_type = %s\n", t->rule[i].station, t->rule[i].series_type);
+    }
+}

@@ -1,0 +1,82 @@
+/* files.c: recursive, sorted listing of regular files. */
+#include "files.h"
+
+#include <errno.h>
+#include <ftw.h>
+#include <stdlib.h>
+#include <string.h>
+#include <sys/stat.h>
+
+static int add(wd_paths *p, const char *path)
+{
+    if (p->n == p->cap) {
+        size_t cap = p->cap ? p->cap * 2 : 64;
+        char **v = realloc(p->v, cap * sizeof *v);
+        if (!v)
+            return -1;
+        p->v = v;
+        p->cap = cap;
+    }
+    char *s = strdup(path);
+    if (!s)
+        return -1;
+    p->v[p->n++] = s;
+    return 0;
+}
+
+/* nftw offers no user pointer; the walk is single-threaded, so a file-scope cursor is safe here. */
+static wd_paths *walk_target;
+static int walk_failed;
+
+static int visit(const char *path, const struct stat *st, int type, struct FTW *ftw)
+{
+    const char *base = path + ftw->base;
+    if (ftw->level > 0 && base[0] == '.')
+        return type == FTW_D ? FTW_SKIP_SUBTREE : FTW_CONTINUE;
+    if (type == FTW_F && S_ISREG(st->st_mode) && add(walk_target, path)) {
+        walk_failed = ENOMEM;
+        return FTW_STOP;
+    }
+    return FTW_CONTINUE;
+}
+
+static int cmp_str(const void *a, const void *b)
+{
+    return strcmp(*(char *const *)a, *(char *const *)b);
+}
+
+sw_status wd_paths_collect(wd_paths *p, const char *path, sw_error *err)
+{
+    struct stat st;
+    if (stat(path, &st) != 0)
+        return sw_error_set(err, SW_EIO, "%s: %s", path, strerror(errno));
+    size_t first = p->n;
+    if (S_ISREG(st.st_mode)) {
+        if (add(p, path))
+            return sw_error_set(err, SW_ENOMEM, "%s: out of memory", path);
+        return SW_OK;
+    }
+    if (!S_ISDIR(st.st_mode))
+        return sw_error_set(err, SW_EINVAL, "%s: not a file or folder", path);
+    walk_target = p;
+    walk_failed = 0;
+    int rc = nftw(path, visit, 32, FTW_PHYS | FTW_ACTIONRETVAL);
+    walk_target = NULL;
+    if (walk_failed)
+        return sw_error_set(err, SW_ENOMEM, "%s: out of memory", path);
+    if (rc != 0)
+        return sw_error_set(err, SW_EIO, "%s: %s", path, strerror(errno));
+    qsort(p->v + first, p->n - first, sizeof *p->v, cmp_str);
+    return SW_OK;
+}
+
+void wd_paths_free(wd_paths *p)
+{
+    if (!p)
+        return;
+    for (size_t i = 0; i < p->n; i++)
+        free(p->v[i]);
+    free(p->v);
+    p->v = NULL;
+    p->n = p->cap = 0;
+}

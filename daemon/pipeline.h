@@ -1,0 +1,53 @@
+/* pipeline.h: from the images of one series to measured results per echo; shared by analyze and watch. */
+#ifndef WD_PIPELINE_H
+#define WD_PIPELINE_H
+
+#include <jansson.h>
+#include <stdio.h>
+
+#include "analysis.h"
+#include "dicom.h"
+
+#define WD_MAX_ECHOES 8
+
+/* The measurement settings in force: model, tolerance set, method parameters. */
+typedef struct wd_method {
+    an_model model;
+    an_tolerance tol;
+    an_params params;
+} wd_method;
+
+void wd_method_default(wd_method *m);
+
+/* One echo of a series: the images (borrowed), their views, and the result (owned). */
+typedef struct wd_echo {
+    int echo_number;
+    double echo_time_ms;
+    int n;
+    const dcm_image *img[AN_MAX_IMAGES];
+    an_image view[AN_MAX_IMAGES];
+    an_series_result *res;
+} wd_echo;
+
+typedef struct wd_measured {
+    const dcm_image *first; /* attributes of the series (borrowed) */
+    int n_duplicates;        /* images dropped as repeated SOP instance (and frame) */
+    int n_echoes;
+    wd_echo echo[WD_MAX_ECHOES];
+} wd_measured;
+
+/* Splits the images of one series by echo (duplicates by SOP instance UID and frame dropped), and
+ * analyses each echo. The images must outlive out. On failure out holds nothing to free beyond what
+ * wd_measured_free releases; err names the series and the reason. */
+sw_status wd_measure(const dcm_image *const *imgs, int n, const wd_method *method, wd_measured *out,
+                     sw_error *err);
+void wd_measured_free(wd_measured *m);
+
+/* The worst verdict over all echoes. */
+an_verdict wd_measured_verdict(const wd_measured *m);
+
+/* Output: one JSON object per echo appended to array (the documented contract), and the text block. */
+sw_status wd_measured_json(const wd_measured *m, json_t *array);
+void wd_measured_text(const wd_measured *m, FILE *f);
+
+#endif
