@@ -5,11 +5,12 @@
 
 #include <stddef.h>
 
-#include "sw.h"
-
+/* sw.h has no C++ guards of its own: include it with C linkage. */
 #ifdef __cplusplus
 extern "C" {
 #endif
+
+#include "sw.h"
 
 #define DCM_UID_MAX 65 /* 64 characters and the terminator */
 #define DCM_STR_MAX 129
@@ -62,6 +63,18 @@ typedef struct dcm_image {
     int pixel_representation; /* 0 unsigned, 1 signed */
     double rescale_slope, rescale_intercept; /* as applied (1 and 0 when absent) */
     float *pixels;    /* rows x columns, row-major, stored value x slope + intercept; owned */
+    /* added after the first contract (additive): */
+    char photometric[17];      /* PhotometricInterpretation: MONOCHROME1 or MONOCHROME2 */
+    int bits_allocated;        /* 8, 16 or 32 */
+    int high_bit;
+    char image_type[DCM_STR_MAX];        /* ImageType, values joined with '\\' */
+    char scanning_sequence[17];          /* ScanningSequence (classic; writer default "SE") */
+    char sequence_variant[17];           /* SequenceVariant (classic; writer default "NONE") */
+    char software_versions[DCM_STR_MAX]; /* SoftwareVersions, values joined with '\\' */
+    char receive_coil[DCM_STR_MAX];      /* ReceiveCoilName (top level or MRReceiveCoilSequence) */
+    char stack_id[17];                   /* FrameContentSequence StackID (multi-frame) */
+    int in_stack_position;               /* FrameContentSequence InStackPositionNumber, 0 absent */
+    char patient_position[17];           /* PatientPosition: "HFS", "FFS", ...; written when set */
 } dcm_image;
 
 /* All frames of one file. */
@@ -101,7 +114,9 @@ sw_status dcm_write_mr(const char *path, const dcm_image *img, sw_error *err);
  * file; each frame's sop_instance_uid is ignored. */
 sw_status dcm_write_enhanced_mr(const char *path, const dcm_image *frames, int n, sw_error *err);
 
-/* A new UID under our root, unique per call (time, pid, counter). buf must hold DCM_UID_MAX. */
+/* A new UID in the 2.25 scheme (DICOM PS3.5 B.2: "2.25." and the decimal value of a random
+ * version 4 UUID from getrandom), valid without a registered root and at most 44 characters.
+ * suffix_hint is ignored (kept for the interface). buf must hold DCM_UID_MAX. */
 void dcm_new_uid(char *buf, const char *suffix_hint);
 
 #ifdef __cplusplus

@@ -1,0 +1,29 @@
+/* dcm_internal.h: what the reader, the writer and the process-wide setup share inside dicom/. */
+#ifndef DCM_INTERNAL_H
+#define DCM_INTERNAL_H
+
+#include <cstdarg>
+#include <cstddef>
+
+#include "dicom.h"
+
+/* Our implementation class UID (2.25 scheme, generated once for slicewarden) and version name. */
+#define DCM_IMPLEMENTATION_CLASS_UID "2.25.36046597318002096424841575946494753352"
+#define DCM_IMPLEMENTATION_VERSION "SLICEWARDEN01"
+
+/* The limit on NumberOfFrames we accept from a header: bounds the per-frame records allocated
+ * before any pixel is read (about 3 kB each). */
+#define DCM_MAX_FRAMES 100000
+
+/* 1 after a successful dcm_init, 0 before and after dcm_shutdown. */
+int dcm_is_initialised(void);
+
+/* Sets err to "dicom: <name>: <reason>"; returns st. */
+sw_status dcm_fail(sw_error *err, sw_status st, const char *name, const char *fmt, ...)
+    __attribute__((format(printf, 4, 5)));
+
+/* Copies src into dst (size n) as valid UTF-8: invalid bytes become '?', control characters
+ * become spaces, leading and trailing spaces are dropped, and a cut never splits a character. */
+void dcm_copy_text(char *dst, size_t n, const char *src);
+
+#endif

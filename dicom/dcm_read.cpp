@@ -1,0 +1,856 @@
+/* dcm_read.cpp: DICOM file or buffer -> dcm_file (attributes per frame, pixels as float). */
+#include "dcm_internal.h"
+
+#include <cerrno>
+#include <cmath>
+#include <cstdint>
+#include <cstdlib>
+#include <cstdio>
+#include <cstring>
+#include <new>
+#include <sys/stat.h>
+#include <vector>
+
+#include <dcmtk/config/osconfig.h>
+#include <dcmtk/dcmdata/dcdeftag.h>
+#include <dcmtk/dcmdata/dcfilefo.h>
+#include <dcmtk/dcmdata/dcistrmb.h>
+#include <dcmtk/dcmdata/dcmetinf.h>
+#include <dcmtk/dcmdata/dcpixel.h>
+#include <dcmtk/dcmdata/dcsequen.h>
+#include <dcmtk/dcmdata/dcvrat.h>
+#include <dcmtk/dcmdata/dcxfer.h>
+
+namespace {
+
+/* Everything the reader needs while it works on one file. */
+struct Reader {
+    const char *name;
+    sw_error *err;
+    int header_only;
+};
+
+/* The places an attribute of one frame is looked up: the frame's item of the Per-frame Functional
+ * Groups Sequence, the Shared Functional Groups item, then the top-level dataset. */
+struct Frame {
+    DcmItem *top;
+    DcmItem *per;
+    DcmItem *shared;
+};
+
+DcmItem *seq_item(DcmItem *parent, const DcmTagKey &seq, unsigned long idx = 0)
+{
+    DcmItem *it = nullptr;
+    if (!parent || parent->findAndGetSequenceItem(seq, it, static_cast<signed long>(idx)).bad())
+        return nullptr;
+    return it;
+}
+
+DcmElement *elem(DcmItem *item, const DcmTagKey &tag)
+{
+    DcmElement *e = nullptr;
+    if (!item || item->findAndGetElement(tag, e).bad() || !e || e->getLength() == 0)
+        return nullptr;
+    return e;
+}
+
+/* Element `tag` inside functional group macro `seq` of this frame (per-frame, then shared), then
+ * at the top level when top_ok. */
+DcmElement *fg_elem(const Frame &f, const DcmTagKey &seq, const DcmTagKey &tag, bool top_ok)
+{
+    DcmElement *e = elem(seq_item(f.per, seq), tag);
+    if (!e)
+        e = elem(seq_item(f.shared, seq), tag);
+    if (!e && top_ok)
+        e = elem(f.top, tag);
+    return e;
+}
+
+/* Numeric value `pos` of an element of any numeric VR (or DS / IS text); false when absent,
+ * unparsable or not finite. */
+bool elem_num(DcmElement *e, unsigned long pos, double *out)
+{
+    if (!e || pos >= e->getVM())
+        return false;
+    double v = NAN;
+    OFCondition c = EC_IllegalCall;
+    switch (e->ident()) {
+    case EVR_DS:
+    case EVR_FD: {
+        Float64 x = 0;
+        c = e->getFloat64(x, pos);
+        v = x;
+        break;
+    }
+    case EVR_FL: {
+        Float32 x = 0;
+        c = e->getFloat32(x, pos);
+        v = x;
+        break;
+    }
+    case EVR_IS:
+    case EVR_SL: {
+        Sint32 x = 0;
+        c = e->getSint32(x, pos);
+        v = x;
+        break;
+    }
+    case EVR_SS: {
+        Sint16 x = 0;
+        c = e->getSint16(x, pos);
+        v = x;
+        break;
+    }
+    case EVR_US: {
+        Uint16 x = 0;
+        c = e->getUint16(x, pos);
+        v = x;
+        break;
+    }
+    case EVR_UL: {
+        Uint32 x = 0;
+        c = e->getUint32(x, pos);
+        v = x;
+        break;
+    }
+    default:
+        return false;
+    }
+    if (c.bad() || !std::isfinite(v))
+        return false;
+    *out = v;
+    return true;
+}
+
+bool get_num(DcmItem *item, const DcmTagKey &tag, unsigned long pos, double *out)
+{
+    return elem_num(elem(item, tag), pos, out);
+}
+
+/* An integer attribute; false when absent, not a number, not integral or out of int range. */
+bool get_int(DcmItem *item, const DcmTagKey &tag, int *out)
+{
+    double v;
+    if (!get_num(item, tag, 0, &v) || v != std::floor(v) || v < -2147483648.0 || v > 2147483647.0)
+        return false;
+    *out = static_cast<int>(v);
+    return true;
+}
+
+/* All values of a text element, joined with '\', as clean UTF-8 (the dataset was converted to
+ * UTF-8 where DCMTK could). Empty when absent. */
+void elem_text(DcmElement *e, char *dst, size_t n)
+{
+    dst[0] = '\0';
+    OFString s;
+    /* Only text VRs: an unconverted UN or binary value is no text (DCMTK would give hex). */
+    if (e && DcmVR(e->getVR()).isaString() && e->getOFStringArray(s).good())
+        dcm_copy_text(dst, n, s.c_str());
+}
+
+void get_text(DcmItem *item, const DcmTagKey &tag, char *dst, size_t n)
+{
+    elem_text(elem(item, tag), dst, n);
+}
+
+/* A UID attribute: false when present but longer than 64 characters (malformed; truncating it
+ * would merge distinct objects). */
+bool get_uid(DcmItem *item, const DcmTagKey &tag, char *dst)
+{
+    dst[0] = '\0';
+    DcmElement *e = elem(item, tag);
+    OFString s;
+    if (!e || e->ident() != EVR_UI || e->getOFString(s, 0).bad())
+        return true;
+    /* Trailing NUL or space padding is not part of the UID. */
+    while (!s.empty() && (s[s.size() - 1] == '\0' || s[s.size() - 1] == ' '))
+        s.erase(s.size() - 1);
+    if (s.size() > DCM_UID_MAX - 1)
+        return false;
+    dcm_copy_text(dst, DCM_UID_MAX, s.c_str());
+    return true;
+}
+
+/* DT "YYYYMMDDHHMMSS.FFFFFF&ZZXX" -> date (8) and time (up to the offset). */
+void split_datetime(const char *dt, char *date, size_t dn, char *time, size_t tn)
+{
+    size_t len = strlen(dt);
+    if (len < 8)
+        return;
+    char d[9];
+    memcpy(d, dt, 8);
+    d[8] = '\0';
+    sw_strlcpy(date, d, dn);
+    char t[32];
+    size_t k = 0;
+    for (size_t i = 8; i < len && k < sizeof t - 1 && dt[i] != '+' && dt[i] != '-'; i++)
+        t[k++] = dt[i];
+    t[k] = '\0';
+    sw_strlcpy(time, t, tn);
+}
+
+bool is_jpeg2000(const char *uid)
+{
+    static const char *const j2k[] = {
+        "1.2.840.10008.1.2.4.90",  "1.2.840.10008.1.2.4.91",  "1.2.840.10008.1.2.4.92",
+        "1.2.840.10008.1.2.4.93",  "1.2.840.10008.1.2.4.201", "1.2.840.10008.1.2.4.202",
+        "1.2.840.10008.1.2.4.203",
+    };
+    for (const char *u : j2k)
+        if (strcmp(uid, u) == 0)
+            return true;
+    return false;
+}
+
+/* Attributes common to every frame, from the top level (and the meta header). */
+sw_status read_common(const Reader &r, DcmDataset *ds, DcmMetaInfo *meta, const char *xfer_uid,
+                      dcm_image *t)
+{
+    struct UidTag {
+        const DcmTagKey tag;
+        char *dst;
+        const char *label;
+    } uids[] = {
+        {DCM_SOPClassUID, t->sop_class_uid, "SOPClassUID"},
+        {DCM_SOPInstanceUID, t->sop_instance_uid, "SOPInstanceUID"},
+        {DCM_StudyInstanceUID, t->study_instance_uid, "StudyInstanceUID"},
+        {DCM_SeriesInstanceUID, t->series_instance_uid, "SeriesInstanceUID"},
+        {DCM_FrameOfReferenceUID, t->frame_of_reference_uid, "FrameOfReferenceUID"},
+    };
+    for (const UidTag &u : uids)
+        if (!get_uid(ds, u.tag, u.dst))
+            return dcm_fail(r.err, SW_EFORMAT, r.name, "%s is longer than 64 characters", u.label);
+    if (!t->sop_class_uid[0] && meta && !get_uid(meta, DCM_MediaStorageSOPClassUID, t->sop_class_uid))
+        return dcm_fail(r.err, SW_EFORMAT, r.name, "MediaStorageSOPClassUID is too long");
+    if (!t->sop_instance_uid[0] && meta &&
+        !get_uid(meta, DCM_MediaStorageSOPInstanceUID, t->sop_instance_uid))
+        return dcm_fail(r.err, SW_EFORMAT, r.name, "MediaStorageSOPInstanceUID is too long");
+    sw_strlcpy(t->transfer_syntax_uid, xfer_uid, sizeof t->transfer_syntax_uid);
+
+    struct TextTag {
+        const DcmTagKey tag;
+        char *dst;
+        size_t n;
+    } texts[] = {
+        {DCM_Modality, t->modality, sizeof t->modality},
+        {DCM_StationName, t->station_name, sizeof t->station_name},
+        {DCM_DeviceSerialNumber, t->device_serial, sizeof t->device_serial},
+        {DCM_Manufacturer, t->manufacturer, sizeof t->manufacturer},
+        {DCM_ManufacturerModelName, t->model, sizeof t->model},
+        {DCM_InstitutionName, t->institution, sizeof t->institution},
+        {DCM_SeriesDescription, t->series_description, sizeof t->series_description},
+        {DCM_ProtocolName, t->protocol_name, sizeof t->protocol_name},
+        {DCM_PatientName, t->patient_name, sizeof t->patient_name},
+        {DCM_PatientID, t->patient_id, sizeof t->patient_id},
+        {DCM_MRAcquisitionType, t->mr_acquisition_type, sizeof t->mr_acquisition_type},
+        {DCM_StudyDate, t->study_date, sizeof t->study_date},
+        {DCM_SeriesDate, t->series_date, sizeof t->series_date},
+        {DCM_AcquisitionDate, t->acquisition_date, sizeof t->acquisition_date},
+        {DCM_ContentDate, t->content_date, sizeof t->content_date},
+        {DCM_StudyTime, t->study_time, sizeof t->study_time},
+        {DCM_SeriesTime, t->series_time, sizeof t->series_time},
+        {DCM_AcquisitionTime, t->acquisition_time, sizeof t->acquisition_time},
+        {DCM_ContentTime, t->content_time, sizeof t->content_time},
+        {DCM_PhotometricInterpretation, t->photometric, sizeof t->photometric},
+        {DCM_ImageType, t->image_type, sizeof t->image_type},
+        {DCM_ScanningSequence, t->scanning_sequence, sizeof t->scanning_sequence},
+        {DCM_SequenceVariant, t->sequence_variant, sizeof t->sequence_variant},
+        {DCM_SoftwareVersions, t->software_versions, sizeof t->software_versions},
+        {DCM_ReceiveCoilName, t->receive_coil, sizeof t->receive_coil},
+    };
+    for (const TextTag &x : texts)
+        get_text(ds, x.tag, x.dst, x.n);
+    /* Enhanced objects carry AcquisitionDateTime instead of the date and time pair. */
+    if (!t->acquisition_date[0]) {
+        char dt[64];
+        get_text(ds, DCM_AcquisitionDateTime, dt, sizeof dt);
+        split_datetime(dt, t->acquisition_date, sizeof t->acquisition_date, t->acquisition_time,
+                       sizeof t->acquisition_time);
+    }
+
+    get_int(ds, DCM_SeriesNumber, &t->series_number);
+    get_int(ds, DCM_InstanceNumber, &t->instance_number);
+    get_int(ds, DCM_AcquisitionNumber, &t->acquisition_number);
+    double v;
+    t->echo_number = 1;
+    if (get_num(ds, DCM_EchoNumbers, 0, &v) && v == std::floor(v) && v >= 1 && v <= 65535)
+        t->echo_number = static_cast<int>(v);
+    get_num(ds, DCM_MagneticFieldStrength, 0, &t->magnetic_field_t);
+    get_num(ds, DCM_ImagingFrequency, 0, &t->imaging_frequency_mhz);
+
+    /* Pixel module as stated (checked against the pixel data only when pixels are read). */
+    int x;
+    if (get_int(ds, DCM_Rows, &x))
+        t->rows = x;
+    if (get_int(ds, DCM_Columns, &x))
+        t->columns = x;
+    if (get_int(ds, DCM_BitsAllocated, &x))
+        t->bits_allocated = x;
+    if (get_int(ds, DCM_BitsStored, &x))
+        t->bits_stored = x;
+    else
+        t->bits_stored = t->bits_allocated;
+    if (get_int(ds, DCM_HighBit, &x))
+        t->high_bit = x;
+    else
+        t->high_bit = t->bits_stored - 1;
+    if (get_int(ds, DCM_PixelRepresentation, &x))
+        t->pixel_representation = x;
+    return SW_OK;
+}
+
+/* Per-frame attributes: geometry, rescale, timing, echo, stack. */
+void read_frame(const Frame &f, int echo_dim, dcm_image *im)
+{
+    double v[6];
+    bool ok = true;
+    DcmElement *e = fg_elem(f, DCM_PlanePositionSequence, DCM_ImagePositionPatient, true);
+    for (unsigned long i = 0; i < 3; i++)
+        if (!elem_num(e, i, &v[i]))
+            ok = false;
+    bool have_ipp = ok;
+    if (ok)
+        memcpy(im->ipp, v, sizeof im->ipp);
+    ok = true;
+    e = fg_elem(f, DCM_PlaneOrientationSequence, DCM_ImageOrientationPatient, true);
+    for (unsigned long i = 0; i < 6; i++)
+        if (!elem_num(e, i, &v[i]))
+            ok = false;
+    bool have_iop = ok;
+    if (ok)
+        memcpy(im->iop, v, sizeof im->iop);
+    ok = true;
+    e = fg_elem(f, DCM_PixelMeasuresSequence, DCM_PixelSpacing, true);
+    for (unsigned long i = 0; i < 2; i++)
+        if (!elem_num(e, i, &v[i]))
+            ok = false;
+    bool have_ps = ok;
+    if (ok)
+        memcpy(im->pixel_spacing, v, sizeof im->pixel_spacing);
+    im->has_geometry = have_ipp && have_iop && have_ps;
+
+    elem_num(fg_elem(f, DCM_PixelMeasuresSequence, DCM_SliceThickness, true), 0,
+             &im->slice_thickness_mm);
+    elem_num(fg_elem(f, DCM_PixelMeasuresSequence, DCM_SpacingBetweenSlices, true), 0,
+             &im->spacing_between_slices_mm);
+
+    double slope = 1.0, icept = 0.0;
+    if (elem_num(fg_elem(f, DCM_PixelValueTransformationSequence, DCM_RescaleSlope, true), 0, &v[0]))
+        slope = v[0];
+    if (elem_num(fg_elem(f, DCM_PixelValueTransformationSequence, DCM_RescaleIntercept, true), 0,
+                 &v[0]))
+        icept = v[0];
+    im->rescale_slope = slope;
+    im->rescale_intercept = icept;
+
+    /* Echo time: Enhanced MREchoSequence EffectiveEchoTime, else classic EchoTime. */
+    if (!elem_num(fg_elem(f, DCM_MREchoSequence, DCM_EffectiveEchoTime, true), 0, &im->echo_time_ms))
+        elem_num(elem(f.top, DCM_EchoTime), 0, &im->echo_time_ms);
+    elem_num(fg_elem(f, DCM_MRTimingAndRelatedParametersSequence, DCM_RepetitionTime, true), 0,
+             &im->repetition_time_ms);
+    elem_num(fg_elem(f, DCM_MRTimingAndRelatedParametersSequence, DCM_FlipAngle, true), 0,
+             &im->flip_angle_deg);
+    if (!std::isfinite(im->imaging_frequency_mhz))
+        elem_num(fg_elem(f, DCM_MRImagingModifierSequence, DCM_TransmitterFrequency, false), 0,
+                 &im->imaging_frequency_mhz);
+    if (!im->receive_coil[0])
+        elem_text(fg_elem(f, DCM_MRReceiveCoilSequence, DCM_ReceiveCoilName, false),
+                  im->receive_coil, sizeof im->receive_coil);
+
+    /* Frame content (per frame only). */
+    DcmItem *fc = seq_item(f.per, DCM_FrameContentSequence);
+    if (fc) {
+        get_text(fc, DCM_StackID, im->stack_id, sizeof im->stack_id);
+        int pos;
+        if (get_int(fc, DCM_InStackPositionNumber, &pos) && pos > 0)
+            im->in_stack_position = pos;
+        if (echo_dim >= 0 &&
+            elem_num(elem(fc, DCM_DimensionIndexValues), static_cast<unsigned long>(echo_dim),
+                     &v[0]) &&
+            v[0] >= 1 && v[0] <= 65535 && v[0] == std::floor(v[0]))
+            im->echo_number = static_cast<int>(v[0]);
+        char dt[64];
+        get_text(fc, DCM_FrameAcquisitionDateTime, dt, sizeof dt);
+        split_datetime(dt, im->acquisition_date, sizeof im->acquisition_date, im->acquisition_time,
+                       sizeof im->acquisition_time);
+    }
+}
+
+/* Index of the dimension whose pointer is EffectiveEchoTime in DimensionIndexSequence, or -1. */
+int echo_dimension(DcmDataset *ds)
+{
+    DcmSequenceOfItems *seq = nullptr;
+    if (ds->findAndGetSequence(DCM_DimensionIndexSequence, seq).bad() || !seq)
+        return -1;
+    for (unsigned long i = 0; i < seq->card(); i++) {
+        DcmElement *e = elem(seq->getItem(i), DCM_DimensionIndexPointer);
+        DcmTagKey key;
+        if (e && e->ident() == EVR_AT &&
+            static_cast<DcmAttributeTag *>(e)->getTagVal(key, 0).good() &&
+            key == DCM_EffectiveEchoTime)
+            return static_cast<int>(i);
+    }
+    return -1;
+}
+
+/* Multi-frame files without an echo dimension: number echoes by rank of distinct effective echo
+ * times (1 = shortest), which is how multi-echo series are ordered. */
+void echo_by_rank(dcm_file *f)
+{
+    std::vector<double> tes;
+    for (int i = 0; i < f->nframes; i++) {
+        double te = f->frames[i].echo_time_ms;
+        if (!std::isfinite(te))
+            return;
+        bool seen = false;
+        for (double x : tes)
+            if (x == te)
+                seen = true;
+        if (!seen)
+            tes.push_back(te);
+    }
+    if (tes.size() < 2)
+        return;
+    for (int i = 0; i < f->nframes; i++) {
+        int rank = 1;
+        for (double x : tes)
+            if (x < f->frames[i].echo_time_ms)
+                rank++;
+        f->frames[i].echo_number = rank;
+    }
+}
+
+void init_image(dcm_image *im)
+{
+    memset(im, 0, sizeof *im);
+    im->echo_number = 1;
+    im->echo_time_ms = NAN;
+    im->repetition_time_ms = NAN;
+    im->slice_thickness_mm = NAN;
+    im->spacing_between_slices_mm = NAN;
+    im->magnetic_field_t = NAN;
+    im->imaging_frequency_mhz = NAN;
+    im->flip_angle_deg = NAN;
+    for (double &d : im->ipp)
+        d = NAN;
+    for (double &d : im->iop)
+        d = NAN;
+    im->pixel_spacing[0] = im->pixel_spacing[1] = NAN;
+    im->rescale_slope = 1.0;
+    im->rescale_intercept = 0.0;
+    im->frame_count = 1;
+}
+
+/* Stored value k of the frame data: bytes (OB) in the file's byte order, or 16-bit words (OW) in
+ * host order as DCMTK hands them out (big-endian input swapped per word). */
+struct Raw {
+    const Uint8 *b;
+    const Uint16 *w;
+    int nbytes; /* bytes per stored value: 1, 2 or 4 */
+    bool big;   /* the words or bytes came from a big-endian encoding */
+
+    uint32_t at(size_t k) const
+    {
+        if (b) {
+            const Uint8 *p = b + k * static_cast<size_t>(nbytes);
+            uint32_t v = 0;
+            for (int i = 0; i < nbytes; i++) {
+                int shift = big ? 8 * (nbytes - 1 - i) : 8 * i;
+                v |= static_cast<uint32_t>(p[i]) << shift;
+            }
+            return v;
+        }
+        switch (nbytes) {
+        case 1: {
+            Uint16 word = w[k >> 1];
+            int lowfirst = big ? !(k & 1) : (k & 1);
+            return lowfirst ? (word >> 8) & 0xFFu : word & 0xFFu;
+        }
+        case 2:
+            return w[k];
+        default:
+            return big ? (static_cast<uint32_t>(w[2 * k]) << 16) | w[2 * k + 1]
+                       : w[2 * k] | (static_cast<uint32_t>(w[2 * k + 1]) << 16);
+        }
+    }
+};
+
+/* Decodes the pixel data into every frame's float buffer. */
+sw_status read_pixels(const Reader &r, DcmDataset *ds, E_TransferSyntax xfer, dcm_file *out)
+{
+    DcmElement *pe = nullptr;
+    if (ds->findAndGetElement(DCM_PixelData, pe).bad() || !pe) {
+        if (elem(ds, DCM_FloatPixelData) || elem(ds, DCM_DoubleFloatPixelData))
+            return dcm_fail(r.err, SW_EUNSUPPORTED, r.name, "float pixel data is not supported");
+        return dcm_fail(r.err, SW_EUNSUPPORTED, r.name, "no pixel data (not an image)");
+    }
+    if (pe->ident() != EVR_PixelData)
+        return dcm_fail(r.err, SW_EFORMAT, r.name, "PixelData has an unexpected encoding");
+
+    DcmXfer xf(xfer);
+    bool big = false;
+    if (xf.isEncapsulated()) {
+        OFCondition c = ds->chooseRepresentation(EXS_LittleEndianExplicit, nullptr);
+        if (c.bad() || !ds->canWriteXfer(EXS_LittleEndianExplicit))
+            return dcm_fail(r.err, SW_EFORMAT, r.name, "cannot decode %s pixel data: %s",
+                            xf.getXferName(), c.bad() ? c.text() : "no decoder for the data");
+        /* The decoder may have changed the pixel module (bits allocated, photometric). */
+        if (ds->findAndGetElement(DCM_PixelData, pe).bad() || !pe)
+            return dcm_fail(r.err, SW_EFORMAT, r.name, "pixel data lost in decoding");
+    } else {
+        big = xf.isBigEndian();
+    }
+
+    int samples = 1, x;
+    if (get_int(ds, DCM_SamplesPerPixel, &x))
+        samples = x;
+    char photometric[17];
+    get_text(ds, DCM_PhotometricInterpretation, photometric, sizeof photometric);
+    if (samples != 1)
+        return dcm_fail(r.err, SW_EUNSUPPORTED, r.name,
+                        "SamplesPerPixel %d (%s) is not supported: only monochrome images", samples,
+                        photometric[0] ? photometric : "colour");
+    if (!photometric[0])
+        sw_strlcpy(photometric, "MONOCHROME2", sizeof photometric);
+    if (strcmp(photometric, "MONOCHROME1") != 0 && strcmp(photometric, "MONOCHROME2") != 0)
+        return dcm_fail(r.err, SW_EUNSUPPORTED, r.name,
+                        "PhotometricInterpretation %s is not supported: only MONOCHROME1/2",
+                        photometric);
+    int rows = 0, cols = 0, ba = 0, bs, hb, rep = 0;
+    get_int(ds, DCM_Rows, &rows);
+    get_int(ds, DCM_Columns, &cols);
+    get_int(ds, DCM_BitsAllocated, &ba);
+    if (!get_int(ds, DCM_BitsStored, &bs))
+        bs = ba;
+    if (!get_int(ds, DCM_HighBit, &hb))
+        hb = bs - 1;
+    get_int(ds, DCM_PixelRepresentation, &rep);
+    if (rows < 1 || cols < 1 || rows > 65535 || cols > 65535)
+        return dcm_fail(r.err, SW_EFORMAT, r.name, "bad or missing image size (Columns %d, Rows %d)",
+                        cols, rows);
+    if (ba != 8 && ba != 16 && ba != 32)
+        return dcm_fail(r.err, SW_EUNSUPPORTED, r.name,
+                        "BitsAllocated %d is not supported (8, 16 or 32)", ba);
+    if (bs < 1 || bs > ba || hb < bs - 1 || hb >= ba)
+        return dcm_fail(r.err, SW_EFORMAT, r.name, "inconsistent BitsStored %d / HighBit %d", bs,
+                        hb);
+    if (rep != 0 && rep != 1)
+        return dcm_fail(r.err, SW_EFORMAT, r.name, "bad PixelRepresentation %d", rep);
+
+    /* Sizes from the header: check before trusting them. */
+    size_t npix, frame_bytes, need;
+    int nbytes = ba / 8;
+    if (sw_mul_size(static_cast<size_t>(rows), static_cast<size_t>(cols), &npix) ||
+        sw_mul_size(npix, static_cast<size_t>(nbytes), &frame_bytes) ||
+        sw_mul_size(frame_bytes, static_cast<size_t>(out->nframes), &need))
+        return dcm_fail(r.err, SW_EFORMAT, r.name, "image size overflows");
+    size_t have = pe->getLength();
+
+    Raw raw = {nullptr, nullptr, nbytes, big};
+    if (pe->getVR() == EVR_OB) {
+        Uint8 *p = nullptr;
+        if (pe->getUint8Array(p).bad() || (!p && have))
+            return dcm_fail(r.err, SW_EFORMAT, r.name, "cannot access pixel data");
+        raw.b = p;
+    } else {
+        Uint16 *p = nullptr;
+        if (pe->getUint16Array(p).bad() || (!p && have))
+            return dcm_fail(r.err, SW_EFORMAT, r.name, "cannot access pixel data");
+        raw.w = p;
+        have &= ~static_cast<size_t>(1);
+    }
+    if (have < need)
+        return dcm_fail(r.err, SW_EFORMAT, r.name,
+                        "pixel data is truncated: %zu bytes for %d frame(s) of %d x %d x %d bits "
+                        "(%zu needed)",
+                        have, out->nframes, cols, rows, ba, need);
+    size_t fbytes;
+    if (sw_mul_size(npix, sizeof(float), &fbytes))
+        return dcm_fail(r.err, SW_EFORMAT, r.name, "image size overflows");
+
+    const int shift = hb + 1 - bs;
+    const uint32_t mask = bs == 32 ? 0xFFFFFFFFu : ((1u << bs) - 1u);
+    const uint32_t sign = 1u << (bs - 1);
+    for (int fi = 0; fi < out->nframes; fi++) {
+        dcm_image &im = out->frames[fi];
+        im.rows = rows;
+        im.columns = cols;
+        im.bits_allocated = ba;
+        im.bits_stored = bs;
+        im.high_bit = hb;
+        im.pixel_representation = rep;
+        sw_strlcpy(im.photometric, photometric, sizeof im.photometric);
+        if (!std::isfinite(im.rescale_slope) || im.rescale_slope == 0.0 ||
+            !std::isfinite(im.rescale_intercept))
+            return dcm_fail(r.err, SW_EFORMAT, r.name, "frame %d: bad RescaleSlope %g", fi + 1,
+                            im.rescale_slope);
+        im.pixels = static_cast<float *>(malloc(fbytes));
+        if (!im.pixels)
+            return dcm_fail(r.err, SW_ENOMEM, r.name, "out of memory for %d x %d pixels", cols,
+                            rows);
+        const double m = im.rescale_slope, b = im.rescale_intercept;
+        const size_t base = npix * static_cast<size_t>(fi);
+        for (size_t k = 0; k < npix; k++) {
+            uint32_t s = (raw.at(base + k) >> shift) & mask;
+            double v;
+            if (rep == 1 && (s & sign))
+                v = static_cast<double>(static_cast<int64_t>(s) - (static_cast<int64_t>(1) << bs));
+            else
+                v = static_cast<double>(s);
+            im.pixels[k] = static_cast<float>(v * m + b);
+        }
+    }
+    return SW_OK;
+}
+
+/* Strings into UTF-8 when the object declares another character set. Where DCMTK cannot convert
+ * (unknown or broken set) the strings stay as stored and dcm_copy_text masks what is not UTF-8. */
+void to_utf8(DcmDataset *ds)
+{
+    OFString cs;
+    if (ds->findAndGetOFStringArray(DCM_SpecificCharacterSet, cs).bad())
+        return;
+    if (cs.empty() || cs == "ISO_IR 6" || cs == "ISO_IR 192")
+        return;
+    (void)ds->convertToUTF8();
+}
+
+/* The dataset is loaded: check the encoding, build the frames, decode the pixels. */
+sw_status build(const Reader &r, DcmFileFormat &ff, dcm_file **out)
+{
+    sw_status st = SW_OK;
+    dcm_file *f = nullptr;
+    DcmDataset *ds = ff.getDataset();
+    DcmMetaInfo *meta = ff.getMetaInfo();
+    E_TransferSyntax xfer = ds->getOriginalXfer();
+    char xfer_uid[DCM_UID_MAX] = "";
+    DcmSequenceOfItems *per_seq = nullptr;
+    DcmItem *shared = nullptr;
+    bool multiframe;
+    int nframes = 1, echo_dim;
+
+    if (meta && !get_uid(meta, DCM_TransferSyntaxUID, xfer_uid)) {
+        st = dcm_fail(r.err, SW_EFORMAT, r.name, "TransferSyntaxUID is too long");
+        goto out;
+    }
+    if (!xfer_uid[0] || xfer == EXS_Unknown) {
+        /* No meta header, or a meta header without the syntax: what DCMTK detected. */
+        if (xfer != EXS_Unknown)
+            sw_strlcpy(xfer_uid, DcmXfer(xfer).getXferID(), sizeof xfer_uid);
+    }
+    if (is_jpeg2000(xfer_uid)) {
+        if (!r.header_only) {
+            st = dcm_fail(r.err, SW_EUNSUPPORTED, r.name, "JPEG 2000 is not supported");
+            goto out;
+        }
+    } else if (xfer == EXS_Unknown || (xfer_uid[0] && DcmXfer(xfer_uid).getXfer() == EXS_Unknown)) {
+        st = dcm_fail(r.err, SW_EUNSUPPORTED, r.name, "transfer syntax %s is not supported",
+                      xfer_uid[0] ? xfer_uid : "(unknown)");
+        goto out;
+    }
+    {
+        double v;
+        multiframe = elem(ds, DCM_NumberOfFrames) != nullptr;
+        if (multiframe) {
+            if (!get_num(ds, DCM_NumberOfFrames, 0, &v) || v != std::floor(v) || v < 1 ||
+                v > DCM_MAX_FRAMES) {
+                OFString s;
+                ds->findAndGetOFString(DCM_NumberOfFrames, s);
+                st = dcm_fail(r.err, SW_EFORMAT, r.name,
+                              "NumberOfFrames '%.32s' is not a count from 1 to %d", s.c_str(),
+                              DCM_MAX_FRAMES);
+                goto out;
+            }
+            nframes = static_cast<int>(v);
+        }
+    }
+    if (ds->findAndGetSequence(DCM_PerFrameFunctionalGroupsSequence, per_seq).bad())
+        per_seq = nullptr;
+    if (per_seq && per_seq->card() < static_cast<unsigned long>(nframes)) {
+        st = dcm_fail(r.err, SW_EFORMAT, r.name,
+                      "PerFrameFunctionalGroupsSequence has %lu items for %d frames",
+                      per_seq->card(), nframes);
+        goto out;
+    }
+    to_utf8(ds);
+    shared = seq_item(ds, DCM_SharedFunctionalGroupsSequence);
+    echo_dim = echo_dimension(ds);
+
+    f = static_cast<dcm_file *>(calloc(1, sizeof *f));
+    if (!f) {
+        st = dcm_fail(r.err, SW_ENOMEM, r.name, "out of memory");
+        goto out;
+    }
+    f->frames = static_cast<dcm_image *>(calloc(static_cast<size_t>(nframes), sizeof *f->frames));
+    if (!f->frames) {
+        st = dcm_fail(r.err, SW_ENOMEM, r.name, "out of memory for %d frames", nframes);
+        goto out;
+    }
+    f->nframes = nframes;
+    init_image(&f->frames[0]);
+    st = read_common(r, ds, meta, xfer_uid, &f->frames[0]);
+    if (st != SW_OK)
+        goto out;
+    f->frames[0].frame_count = nframes;
+    for (int i = nframes - 1; i >= 0; i--) {
+        dcm_image *im = &f->frames[i];
+        if (i > 0)
+            *im = f->frames[0];
+        im->frame = multiframe ? i + 1 : 0;
+        Frame fr = {ds, per_seq ? per_seq->getItem(static_cast<unsigned long>(i)) : nullptr,
+                    shared};
+        read_frame(fr, echo_dim, im);
+    }
+    if (multiframe && echo_dim < 0 && per_seq)
+        echo_by_rank(f);
+    if (!r.header_only) {
+        st = read_pixels(r, ds, xfer, f);
+        if (st != SW_OK)
+            goto out;
+    }
+    *out = f;
+    f = nullptr;
+out:
+    dcm_file_free(f);
+    return st;
+}
+
+/* Turns a DCMTK load failure into our message. has_dicm: the input has the "DICM" prefix at
+ * offset 128, so it is DICOM that is damaged rather than some other kind of file. */
+sw_status load_failed(const Reader &r, OFCondition c, bool has_dicm)
+{
+    if (!has_dicm)
+        return dcm_fail(r.err, SW_EFORMAT, r.name,
+                        "not a DICOM file (no DICM prefix, and no readable dataset: %s)",
+                        c.text());
+    if (c == EC_StreamNotifyClient || c == EC_PrematureSequDelimitationItem)
+        return dcm_fail(r.err, SW_EFORMAT, r.name, "truncated DICOM data (%s)", c.text());
+    return dcm_fail(r.err, SW_EFORMAT, r.name, "malformed DICOM data (%s)", c.text());
+}
+
+bool dicm_at_128(const unsigned char *b, size_t n)
+{
+    return n >= 132 && memcmp(b + 128, "DICM", 4) == 0;
+}
+
+/* Reads the first 132 bytes of a file to see whether it has the DICM prefix. */
+bool file_has_dicm(const char *path)
+{
+    unsigned char b[132];
+    FILE *fp = fopen(path, "rb");
+    if (!fp)
+        return false;
+    size_t n = fread(b, 1, sizeof b, fp);
+    fclose(fp);
+    return dicm_at_128(b, n);
+}
+
+/* Is this a DICOM object at all? DCMTK parses almost any bytes as a meta-less dataset; insist on
+ * a meta header or on the identifying attributes every stored object has. */
+bool looks_dicom(DcmFileFormat &ff)
+{
+    DcmMetaInfo *meta = ff.getMetaInfo();
+    if (meta && meta->card() > 0)
+        return true;
+    DcmDataset *ds = ff.getDataset();
+    return elem(ds, DCM_SOPClassUID) || elem(ds, DCM_Modality) || elem(ds, DCM_PixelData);
+}
+
+sw_status check_args(const Reader &r, dcm_file **out)
+{
+    if (!out)
+        return dcm_fail(r.err, SW_EINVAL, r.name, "no output given");
+    *out = nullptr;
+    if (!dcm_is_initialised())
+        return dcm_fail(r.err, SW_EINVAL, r.name, "dcm_init has not been called");
+    return SW_OK;
+}
+
+} /* namespace */
+
+extern "C" sw_status dcm_read_file(const char *path, const dcm_read_opts *opts, dcm_file **out,
+                                   sw_error *err)
+{
+    Reader r = {path ? path : "(null)", err, opts ? opts->header_only : 0};
+    sw_status st = check_args(r, out);
+    if (st != SW_OK)
+        return st;
+    if (!path)
+        return dcm_fail(err, SW_EINVAL, r.name, "no path given");
+    try {
+        struct stat sb;
+        if (stat(path, &sb) != 0)
+            return dcm_fail(err, SW_EIO, path, "%s", strerror(errno));
+        if (!S_ISREG(sb.st_mode))
+            return dcm_fail(err, SW_EIO, path, "not a regular file");
+        if (sb.st_size == 0)
+            return dcm_fail(err, SW_EFORMAT, path, "empty file");
+        DcmFileFormat ff;
+        OFCondition c = ff.loadFile(path, EXS_Unknown, EGL_noChange, DCM_MaxReadLength,
+                                    ERM_autoDetect);
+        if (c.bad())
+            return load_failed(r, c, file_has_dicm(path));
+        if (!looks_dicom(ff))
+            return dcm_fail(err, SW_EFORMAT, path, "not a DICOM file");
+        if (!r.header_only) {
+            /* Everything into memory now: the file may be moved once we return. */
+            c = ff.loadAllDataIntoMemory();
+            if (c.bad())
+                return dcm_fail(err, SW_EFORMAT, path, "truncated or unreadable data (%s)",
+                                c.text());
+        }
+        return build(r, ff, out);
+    } catch (const std::bad_alloc &) {
+        return dcm_fail(err, SW_ENOMEM, path, "out of memory");
+    } catch (...) {
+        return dcm_fail(err, SW_EFORMAT, path, "unexpected failure while parsing");
+    }
+}
+
+extern "C" sw_status dcm_read_buffer(const void *data, size_t len, const char *name,
+                                     const dcm_read_opts *opts, dcm_file **out, sw_error *err)
+{
+    Reader r = {name ? name : "(buffer)", err, opts ? opts->header_only : 0};
+    sw_status st = check_args(r, out);
+    if (st != SW_OK)
+        return st;
+    if (!data && len)
+        return dcm_fail(err, SW_EINVAL, r.name, "no data given");
+    if (len == 0)
+        return dcm_fail(err, SW_EFORMAT, r.name, "empty buffer");
+    if (len > static_cast<size_t>(INT64_MAX))
+        return dcm_fail(err, SW_EINVAL, r.name, "buffer too large");
+    try {
+        DcmFileFormat ff;
+        DcmInputBufferStream in;
+        in.setBuffer(data, static_cast<offile_off_t>(len));
+        in.setEos();
+        ff.transferInit();
+        /* A buffer stream cannot load values later: read them all now. */
+        OFCondition c = ff.read(in, EXS_Unknown, EGL_noChange, 0xFFFFFFFEu);
+        ff.transferEnd();
+        if (c.bad())
+            return load_failed(r, c, dicm_at_128(static_cast<const unsigned char *>(data), len));
+        if (!looks_dicom(ff))
+            return dcm_fail(err, SW_EFORMAT, r.name, "not a DICOM file");
+        c = ff.loadAllDataIntoMemory();
+        if (c.bad())
+            return dcm_fail(err, SW_EFORMAT, r.name, "truncated or unreadable data (%s)", c.text());
+        return build(r, ff, out);
+    } catch (const std::bad_alloc &) {
+        return dcm_fail(err, SW_ENOMEM, r.name, "out of memory");
+    } catch (...) {
+        return dcm_fail(err, SW_EFORMAT, r.name, "unexpected failure while parsing");
+    }
+}
+
+extern "C" void dcm_file_free(dcm_file *f)
+{
+    if (!f)
+        return;
+    if (f->frames)
+        for (int i = 0; i < f->nframes; i++)
+            free(f->frames[i].pixels);
+    free(f->frames);
+    free(f);
+}
