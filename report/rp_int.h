@@ -30,7 +30,7 @@ typedef struct rp_rgb { double r, g, b; } rp_rgb;
 #define RP_C_PAGE RP_HEX(0xFFFFFF)
 #define RP_C_PROFILE RP_HEX(0x1A4F86) /* measured profile curve */
 #define RP_C_RAW RP_HEX(0x9A9A9A)     /* profile of an unmeasured part */
-#define RP_C_LEVEL RP_HEX(0xB36A00)   /* half level (dark orange, dashed) */
+#define RP_C_LEVEL RP_HEX(0x9C5A00)   /* half level (dark orange, dashed) */
 #define RP_C_PLATEAU RP_HEX(0x555555) /* plateau / far levels (grey, dashed) */
 
 rp_rgb rp_verdict_colour(an_verdict v);

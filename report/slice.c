@@ -278,7 +278,7 @@ static sw_status draw_image(rp_canvas *cv, const scene *sc, sw_error *err)
                 cairo_set_source_rgba(cr, 0, 0, 0, 0.6);
             else
                 cairo_set_source_rgb(cr, outline.r, outline.g, outline.b);
-            cairo_set_line_width(cr, pass == 0 ? 3.5 : 1.5);
+            cairo_set_line_width(cr, pass == 0 ? 4.5 : 2.25);
             cairo_stroke(cr);
         }
         rp_draw_halo_line(cr, cx - 6, cy, cx + 6, cy, 1.5, outline, 0);
