@@ -1,5 +1,6 @@
 /* store.c: writes and lookups of scanners, series, files, runs, measurements and alerts, with the
  * state machines of series and files (drawn in db.h). Every write is atomic (db_atomic_begin). */
+#include <jansson.h>
 #include <math.h>
 #include <stdio.h>
 #include <string.h>
@@ -777,6 +778,16 @@ sw_status db_measurement_add(db *d, int64_t run_id, const db_measurement *m, sw_
     if (m->verdict == DB_UNMEASURABLE && empty(m->reason))
         return sw_error_set(err, SW_EINVAL, "db: %s: run %lld: %s: unmeasurable needs a reason",
                             d->path, (long long)run_id, metric);
+    if (m->details_json) {
+        json_error_t je;
+        json_t *j = json_loads(m->details_json, JSON_REJECT_DUPLICATES, &je);
+        int object = j && json_is_object(j);
+        json_decref(j);
+        if (!object)
+            return sw_error_set(err, SW_EINVAL,
+                                "db: %s: run %lld: %s: details are not a JSON object (%s)",
+                                d->path, (long long)run_id, metric, j ? "not an object" : je.text);
+    }
     if ((rc = db_refuse_readonly(d, err)) != SW_OK)
         return rc;
     /* One statement: atomic by itself, no savepoint needed on this hot path. */
