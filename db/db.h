@@ -4,6 +4,7 @@
 #define DB_H
 
 #include <stdint.h>
+#include <stdio.h>
 
 #include "sw.h"
 
@@ -329,6 +330,14 @@ typedef struct db_cursor db_cursor;
 sw_status db_cursor_open(db *d, const db_filter *f, db_cursor **out, sw_error *err);
 sw_status db_cursor_next(db_cursor *c, const db_row **row, sw_error *err);
 void db_cursor_close(db_cursor *c); /* accepts NULL */
+
+/* CSV for accreditation: RFC 4180 (CRLF, quoting), a header line, then one record per row of the
+ * cursor (columns in docs/schema.md); empty fields for absent values; numbers in the shortest form
+ * that reads back exactly. *rows (may be NULL) counts the records. db_export_csv writes to a stream
+ * the caller owns; db_export_csv_file writes beside path, syncs and renames over it (atomic). */
+sw_status db_export_csv(db *d, const db_filter *f, FILE *out, long *rows, sw_error *err);
+sw_status db_export_csv_file(db *d, const db_filter *f, const char *path, long *rows,
+                             sw_error *err);
 
 /* ---- alerts ----
  *   db_alert_add --> pending --db_alert_mark(ok)--> sent

@@ -1308,3 +1308,94 @@ Test(db, the_sqlite3_shell_agrees)
     snprintf(want, sizeof want, "%d\n", N_FIXTURE * N_IMAGES);
     cr_assert_str_eq(out, want);
 }
+
+/* ================================================================================================
+ * CSV export, read back by Python's csv module (an RFC 4180 reader outside the project)
+ * ============================================================================================== */
+
+static const char CSV_READER[] =
+    "import csv, sys\n"
+    "raw = open(sys.argv[1], 'rb').read()\n"
+    "assert raw.endswith(b'\\r\\n'), 'records end in CRLF'\n"
+    "with open(sys.argv[1], newline='') as f:\n"
+    "    rows = list(csv.reader(f, strict=True))\n"
+    "head = rows[0]\n"
+    "print(len(head), len(rows) - 1)\n"
+    "ix = {n: i for i, n in enumerate(head)}\n"
+    "for r in rows[1:]:\n"
+    "    assert len(r) == len(head), r\n"
+    "    print('\\t'.join([r[ix['series_instance_uid']], r[ix['metric']], r[ix['value']] or 'NULL',\n"
+    "                     r[ix['verdict']], r[ix['slice']] or '0', r[ix['echo']] or '0',\n"
+    "                     repr(r[ix['series_description']])]))\n";
+
+Test(db, csv_export_reads_back)
+{
+    db *d = open_rw();
+    for (int s = 0; s < N_FIXTURE; s++)
+        cr_assert_eq(write_series(d, &FIXTURE[s], NULL), SW_OK);
+    /* A description that needs quoting: comma, quote and a line break. */
+    int64_t scanner = 0, series = 0, run = 0;
+    cr_assert_eq(db_scanner_upsert(d, &SCANNER2, &scanner, NULL), SW_OK);
+    db_series_info si = {"1.2.99", "1.2", scanner, 7, "20240301", "120000",
+                         "QA, \"weekly\"\nsecond line", "ACR_T1", "t1", 11, 1};
+    cr_assert_eq(db_series_upsert(d, &si, &series, NULL, NULL), SW_OK);
+    cr_assert_eq(db_run_begin(d, series, &RUN, &run, NULL), SW_OK);
+    db_measurement rows[N_ROWS];
+    run_rows(4.9, rows);
+    rows[0].value = 0.1 + 0.2; /* needs 17 digits to read back exactly */
+    rows[0].verdict = DB_FAIL;
+    cr_assert_eq(db_measurement_add(d, run, &rows[0], NULL), SW_OK);
+    cr_assert_eq(db_run_finish(d, run, 1, DB_FAIL, NULL, NULL), SW_OK);
+
+    char csv[400], script[400], out[1 << 16];
+    snprintf(csv, sizeof csv, "%s/export.csv", tmpdir);
+    snprintf(script, sizeof script, "%s/read.py", tmpdir);
+    FILE *f = fopen(script, "w");
+    cr_assert_not_null(f);
+    fputs(CSV_READER, f);
+    fclose(f);
+    long n = 0;
+    sw_error e;
+    sw_error_clear(&e);
+    cr_assert_eq(db_export_csv_file(d, NULL, csv, &n, &e), SW_OK, "%s", e.msg);
+    char *argv[] = {"/usr/bin/python3", script, csv, NULL};
+    int st = run_capture(argv, out, sizeof out);
+    cr_assert_eq(st, 0, "python3 csv: %s", out);
+
+    /* The reader's view, line by line, against the cursor's rows. */
+    char *save = NULL, *line = strtok_r(out, "\n", &save);
+    int ncol = 0, nrec = 0;
+    cr_assert_eq(sscanf(line, "%d %d", &ncol, &nrec), 2);
+    cr_assert_eq(ncol, 31);
+    cr_assert_eq(nrec, n);
+    db_cursor *c = NULL;
+    const db_row *r = NULL;
+    cr_assert_eq(db_cursor_open(d, NULL, &c, NULL), SW_OK);
+    int k = 0, tricky = 0;
+    while (db_cursor_next(c, &r, NULL) == SW_OK && r) {
+        line = strtok_r(NULL, "\n", &save);
+        cr_assert_not_null(line, "record %d missing", k);
+        char uid[80], metric[64], value[64], verdict[32], desc[128];
+        int slice = -1, echo = -1;
+        cr_assert_eq(sscanf(line, "%79[^\t]\t%63[^\t]\t%63[^\t]\t%31[^\t]\t%d\t%d\t%127[^\n]", uid,
+                            metric, value, verdict, &slice, &echo, desc), 7, "%s", line);
+        cr_assert_str_eq(uid, r->series_instance_uid);
+        cr_assert_str_eq(metric, r->metric);
+        cr_assert_str_eq(verdict, db_verdict_name(r->verdict));
+        cr_assert_eq(slice, r->slice);
+        cr_assert_eq(echo, r->echo);
+        if (isnan(r->value))
+            cr_assert_str_eq(value, "NULL");
+        else
+            cr_assert_eq(strtod(value, NULL), r->value, "%s reads back exactly", value);
+        if (!strcmp(uid, "1.2.99")) {
+            tricky = 1;
+            cr_assert_str_eq(desc, "'QA, \"weekly\"\\nsecond line'", "quoting survives: %s", desc);
+        }
+        k++;
+    }
+    db_cursor_close(c);
+    cr_assert_eq(k, n);
+    cr_assert(tricky);
+    db_close(d);
+}
