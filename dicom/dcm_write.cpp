@@ -314,7 +314,7 @@ void put_common(W &w, DcmDataset *ds, const dcm_image *im, const Uids &u, const 
     w.put_opt(ds, DCM_SeriesTime, im->series_time);
     w.put_opt(ds, DCM_SeriesDescription, im->series_description);
     w.put_opt(ds, DCM_ProtocolName, im->protocol_name);
-    w.put(ds, DCM_PatientPosition, "HFS");
+    w.put(ds, DCM_PatientPosition, im->patient_position[0] ? im->patient_position : "HFS");
     /* The large phantom is scanned in the head coil as a head; naming the (unpaired) body part
      * also settles whether Laterality is needed. */
     w.put(ds, DCM_BodyPartExamined, "HEAD");
