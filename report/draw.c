@@ -416,6 +416,7 @@ void rp_draw_marker(cairo_t *cr, double x, double y, double s, rp_marker m, rp_r
     cairo_save(cr);
     cairo_new_path(cr);
     switch (m) {
+    case RP_MARK_OPEN_DIAMOND:
     case RP_MARK_DIAMOND:
         cairo_move_to(cr, x, y - s);
         cairo_line_to(cr, x + s, y);
@@ -447,11 +448,21 @@ void rp_draw_marker(cairo_t *cr, double x, double y, double s, rp_marker m, rp_r
         break;
     }
     }
-    cairo_set_source_rgb(cr, c.r, c.g, c.b);
-    cairo_fill_preserve(cr);
-    cairo_set_source_rgba(cr, 0, 0, 0, 0.85);
-    cairo_set_line_width(cr, 1.0);
-    cairo_stroke(cr);
+    if (m == RP_MARK_OPEN_DIAMOND) {
+        cairo_set_line_join(cr, CAIRO_LINE_JOIN_MITER);
+        cairo_set_source_rgba(cr, 0, 0, 0, 0.7);
+        cairo_set_line_width(cr, 4.0);
+        cairo_stroke_preserve(cr);
+        cairo_set_source_rgb(cr, c.r, c.g, c.b);
+        cairo_set_line_width(cr, 2.0);
+        cairo_stroke(cr);
+    } else {
+        cairo_set_source_rgb(cr, c.r, c.g, c.b);
+        cairo_fill_preserve(cr);
+        cairo_set_source_rgba(cr, 0, 0, 0, 0.85);
+        cairo_set_line_width(cr, 1.0);
+        cairo_stroke(cr);
+    }
     cairo_restore(cr);
 }
 

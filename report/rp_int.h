@@ -86,8 +86,15 @@ int rp_text_wrap(rp_canvas *cv, double x, double y, rp_font f, rp_rgb c, rp_alig
 double rp_verdict_chip(rp_canvas *cv, double x, double baseline, rp_font f, an_verdict v);
 
 /* ---- shapes ---- */
-typedef enum rp_marker { RP_MARK_DIAMOND = 0, RP_MARK_CIRCLE, RP_MARK_SQUARE, RP_MARK_CROSS } rp_marker;
-/* A filled marker of half size s centred on (x, y), with a dark rim for contrast. */
+typedef enum rp_marker {
+    RP_MARK_DIAMOND = 0,
+    RP_MARK_CIRCLE,
+    RP_MARK_SQUARE,
+    RP_MARK_CROSS,
+    RP_MARK_OPEN_DIAMOND, /* outline only: the image stays visible inside */
+} rp_marker;
+/* A marker of half size s centred on (x, y): filled with a dark rim, or (open) a coloured outline
+ * over a dark halo, for contrast on any background. */
 void rp_draw_marker(cairo_t *cr, double x, double y, double s, rp_marker m, rp_rgb c);
 /* A line drawn over a wider dark halo, so that it reads on both black and white. */
 void rp_draw_halo_line(cairo_t *cr, double x0, double y0, double x1, double y1, double w, rp_rgb c,

@@ -13,6 +13,7 @@
 #define RIGHT_W 660
 #define PANEL_MIN_H 190
 #define PANEL_MAX_H 340
+#define RP_OPEN_S 6.0 /* half size of the open diamonds that mark 50 % points on the image */
 
 static const rp_font F_TITLE = {20.0, 1};
 static const rp_font F_DATE = {14.0, 0};
@@ -168,35 +169,45 @@ static void draw_strip_overlay(rp_canvas *cv, const scene *sc, const an_strip *s
     double ux = (s->line1.x - s->line0.x) * sc->img->col_mm;
     double uy = (s->line1.y - s->line0.y) * sc->img->row_mm;
     double ul = hypot(ux, uy);
+    /* Thin lines only, no fill: the strip itself must stay visible between them. */
     if (isfinite(s->half_width_mm) && s->half_width_mm > 0 && ul > 0) {
         double nx = -uy / ul * s->half_width_mm / sc->img->col_mm * sc->sx;
         double ny = ux / ul * s->half_width_mm / sc->img->row_mm * sc->sy;
         cairo_save(cr);
         cairo_move_to(cr, X0 + nx, Y0 + ny);
         cairo_line_to(cr, X1 + nx, Y1 + ny);
-        cairo_line_to(cr, X1 - nx, Y1 - ny);
+        cairo_move_to(cr, X1 - nx, Y1 - ny);
         cairo_line_to(cr, X0 - nx, Y0 - ny);
-        cairo_close_path(cr);
-        cairo_set_source_rgba(cr, strip.r, strip.g, strip.b, 0.16);
-        cairo_fill_preserve(cr);
-        cairo_set_source_rgba(cr, strip.r, strip.g, strip.b, 0.85);
+        cairo_set_source_rgba(cr, strip.r, strip.g, strip.b, 0.9);
         cairo_set_line_width(cr, 1.0);
         cairo_stroke(cr);
         cairo_restore(cr);
     }
-    rp_draw_halo_line(cr, X0, Y0, X1, Y1, 1.5, strip, !s->measured);
+    {
+        static const double dash[] = {5.0, 4.0};
+        cairo_save(cr);
+        cairo_set_dash(cr, dash, 2, 0);
+        cairo_move_to(cr, X0, Y0);
+        cairo_line_to(cr, X1, Y1);
+        cairo_set_source_rgb(cr, strip.r, strip.g, strip.b);
+        cairo_set_line_width(cr, 1.0);
+        cairo_stroke(cr);
+        cairo_restore(cr);
+    }
     if (s->measured) {
         if (point_ok(s->cross_lo))
-            rp_draw_marker(cr, DX(sc, s->cross_lo.x), DY(sc, s->cross_lo.y), 5.5, RP_MARK_DIAMOND,
-                           cross);
+            rp_draw_marker(cr, DX(sc, s->cross_lo.x), DY(sc, s->cross_lo.y), RP_OPEN_S,
+                           RP_MARK_OPEN_DIAMOND, cross);
         if (point_ok(s->cross_hi))
-            rp_draw_marker(cr, DX(sc, s->cross_hi.x), DY(sc, s->cross_hi.y), 5.5, RP_MARK_DIAMOND,
-                           cross);
+            rp_draw_marker(cr, DX(sc, s->cross_hi.x), DY(sc, s->cross_hi.y), RP_OPEN_S,
+                           RP_MARK_OPEN_DIAMOND, cross);
     }
     /* Name the strip beyond its right-hand end, outside the band. */
     int right_is_1 = X1 >= X0;
     double ex = right_is_1 ? X1 : X0, ey = right_is_1 ? Y1 : Y0;
-    image_label(cv, ex + 8, ey + 4, RP_LEFT, strip, RP_ROLE_LABEL, name);
+    char label[64];
+    snprintf(label, sizeof label, "%s%s", name, s->measured ? "" : " (not measured)");
+    image_label(cv, ex + 8, ey + 4, RP_LEFT, strip, RP_ROLE_LABEL, label);
 }
 
 static void draw_bar_overlay(rp_canvas *cv, const scene *sc, const an_bar *b, const char *name)
@@ -215,7 +226,7 @@ static void draw_bar_overlay(rp_canvas *cv, const scene *sc, const an_bar *b, co
             double nx = -dy / l * 5, ny = dx / l * 5;
             rp_draw_halo_line(cr, XT - nx, YT - ny, XT + nx, YT + ny, 2.0, bar, 0);
         }
-        rp_draw_marker(cr, XE, YE, 5.5, RP_MARK_DIAMOND, cross);
+        rp_draw_marker(cr, XE, YE, RP_OPEN_S, RP_MARK_OPEN_DIAMOND, cross);
         image_label(cv, XE, YE + 22, RP_CENTRE, bar, RP_ROLE_LABEL, name);
     } else {
         rp_draw_marker(cr, XT, YT, 4, RP_MARK_SQUARE, bar);
@@ -322,18 +333,27 @@ static void draw_swatch(cairo_t *cr, swatch s, double x, double yc)
         cairo_set_line_width(cr, 1.5);
         cairo_stroke(cr);
         break;
-    case SW_BAND:
-        cairo_rectangle(cr, x + 2, yc - 4, 22, 8);
-        cairo_set_source_rgba(cr, strip.r, strip.g, strip.b, 0.3);
-        cairo_fill(cr);
-        rp_draw_halo_line(cr, x + 2, yc, x + 24, yc, 1.5, strip, 0);
+    case SW_BAND: {
+        static const double dash[] = {5.0, 4.0};
+        cairo_set_source_rgba(cr, strip.r, strip.g, strip.b, 0.9);
+        cairo_set_line_width(cr, 1.0);
+        cairo_move_to(cr, x + 2, yc - 4.5);
+        cairo_line_to(cr, x + 24, yc - 4.5);
+        cairo_move_to(cr, x + 2, yc + 4.5);
+        cairo_line_to(cr, x + 24, yc + 4.5);
+        cairo_stroke(cr);
+        cairo_set_dash(cr, dash, 2, 0);
+        cairo_move_to(cr, x + 2, yc + 0.5);
+        cairo_line_to(cr, x + 24, yc + 0.5);
+        cairo_stroke(cr);
         break;
+    }
     case SW_POINT:
-        rp_draw_marker(cr, x + 13, yc, 5.5, RP_MARK_DIAMOND, cross);
+        rp_draw_marker(cr, x + 13, yc, 5.0, RP_MARK_OPEN_DIAMOND, cross);
         break;
     case SW_BAR:
         rp_draw_halo_line(cr, x + 4, yc, x + 20, yc, 2.0, bar, 0);
-        rp_draw_marker(cr, x + 20, yc, 4, RP_MARK_DIAMOND, cross);
+        rp_draw_marker(cr, x + 20, yc, 4, RP_MARK_OPEN_DIAMOND, cross);
         break;
     }
     cairo_restore(cr);
@@ -347,9 +367,10 @@ static double draw_legend(rp_canvas *cv, const scene *sc, double x, double y, do
         const char *text;
     } items[4];
     int n = 0;
-    items[n++] = (struct item){SW_CIRCLE, "phantom outline (fit)"};
+    if (sc->r->phantom[sc->index].found)
+        items[n++] = (struct item){SW_CIRCLE, "phantom outline (fit)"};
     if (sc->th)
-        items[n++] = (struct item){SW_BAND, "ramp strip: sampled line, averaging band"};
+        items[n++] = (struct item){SW_BAND, "ramp strip: sampled line (dashed), averaging band"};
     if (sc->th || sc->n_pos)
         items[n++] = (struct item){SW_POINT, "half-level (50 %) point"};
     if (sc->n_pos)
