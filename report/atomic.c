@@ -107,8 +107,8 @@ sw_status rp_atomic_open(const char *path, rp_atomic **out, sw_error *err)
         }
     }
     if (a->fd < 0) {
-        st = sw_error_set(err, SW_EIO, "report: %s: cannot create a temporary file in %s: %s",
-                          path, a->dir, strerror(last_errno));
+        st = sw_error_set(err, SW_EIO, "report: %s: cannot create a temporary file in %s: %s", path,
+                          a->dir, strerror(last_errno));
         goto out;
     }
     *out = a;
@@ -147,8 +147,8 @@ sw_status rp_atomic_commit(rp_atomic *a, sw_error *err)
     if (!a)
         return sw_error_set(err, SW_EINVAL, "report: atomic commit: no handle");
     if (a->failed) {
-        st = sw_error_set(err, SW_EIO, "report: %s: not written (an earlier write failed)",
-                          a->path);
+        st =
+            sw_error_set(err, SW_EIO, "report: %s: not written (an earlier write failed)", a->path);
         goto out;
     }
     if (fsync(a->fd) != 0) {

@@ -175,8 +175,8 @@ static void set_text(png_text *t, int *n, const char *key, const char *value)
 
 /* The libpng calls; libpng reports errors by longjmp back here, and this returns -1. Nothing
  * changed after setjmp is read after a longjmp. */
-static int png_body(png_structp png, png_infop info, rp_canvas *cv, png_sink *s,
-                    unsigned char *row, png_text *text, int n_text)
+static int png_body(png_structp png, png_infop info, rp_canvas *cv, png_sink *s, unsigned char *row,
+                    png_text *text, int n_text)
 {
     if (setjmp(png_jmpbuf(png)))
         return -1;
@@ -290,8 +290,8 @@ static void log_text(rp_canvas *cv, const char *s, rp_text_role role, double x, 
     t->h = h;
 }
 
-double rp_text(rp_canvas *cv, double x, double y, rp_font f, rp_rgb c, rp_align a, rp_text_role role,
-               const char *s)
+double rp_text(rp_canvas *cv, double x, double y, rp_font f, rp_rgb c, rp_align a,
+               rp_text_role role, const char *s)
 {
     cairo_t *cr = cv->cr;
     cairo_font_extents_t fe;
@@ -316,7 +316,7 @@ static const char *fit(rp_canvas *cv, rp_font f, double max_w, const char *s, ch
         while (len > 0 && ((unsigned char)buf[len - 1] & 0xC0) == 0x80)
             len--; /* continuation bytes */
         if (len > 0)
-            len--; /* the character's lead byte */
+            len--;                            /* the character's lead byte */
         memcpy(buf + len, "\xE2\x80\xA6", 4); /* U+2026 */
         if (rp_text_width(cv, f, buf) <= max_w)
             break;
@@ -424,12 +424,8 @@ void rp_draw_marker(cairo_t *cr, double x, double y, double s, rp_marker m, rp_r
         cairo_line_to(cr, x - s, y);
         cairo_close_path(cr);
         break;
-    case RP_MARK_CIRCLE:
-        cairo_arc(cr, x, y, s, 0, 2 * M_PI);
-        break;
-    case RP_MARK_SQUARE:
-        cairo_rectangle(cr, x - s, y - s, 2 * s, 2 * s);
-        break;
+    case RP_MARK_CIRCLE: cairo_arc(cr, x, y, s, 0, 2 * M_PI); break;
+    case RP_MARK_SQUARE: cairo_rectangle(cr, x - s, y - s, 2 * s, 2 * s); break;
     case RP_MARK_CROSS: {
         double t = s / 3;
         cairo_move_to(cr, x - t, y - s);
@@ -507,6 +503,13 @@ sw_status rp_image_check(const an_image *img, sw_error *err)
     return SW_OK;
 }
 
+static void swap(float *a, float *b)
+{
+    float t = *a;
+    *a = *b;
+    *b = t;
+}
+
 /* Hoare selection: on return a[k] is the k-th smallest and a[i] <= a[k] <= a[j] for i < k < j. */
 static void select_k(float *a, size_t n, size_t k)
 {
@@ -514,9 +517,12 @@ static void select_k(float *a, size_t n, size_t k)
     while (lo < hi) {
         size_t mid = lo + (hi - lo) / 2;
         /* median of three as the pivot */
-        if (a[mid] < a[lo]) { float t = a[mid]; a[mid] = a[lo]; a[lo] = t; }
-        if (a[hi] < a[lo]) { float t = a[hi]; a[hi] = a[lo]; a[lo] = t; }
-        if (a[hi] < a[mid]) { float t = a[hi]; a[hi] = a[mid]; a[mid] = t; }
+        if (a[mid] < a[lo])
+            swap(&a[mid], &a[lo]);
+        if (a[hi] < a[lo])
+            swap(&a[hi], &a[lo]);
+        if (a[hi] < a[mid])
+            swap(&a[hi], &a[mid]);
         float pivot = a[mid];
         size_t i = lo, j = hi;
         for (;;) {
@@ -526,9 +532,7 @@ static void select_k(float *a, size_t n, size_t k)
                 j--;
             if (i >= j)
                 break;
-            float t = a[i];
-            a[i] = a[j];
-            a[j] = t;
+            swap(&a[i], &a[j]);
             i++;
             j--;
         }
@@ -570,8 +574,8 @@ sw_status rp_window(const an_image *img, double q_lo, double q_hi, double *lo, d
     if (st != SW_OK)
         goto out;
     if (!(q_lo >= 0 && q_lo < q_hi && q_hi <= 1)) {
-        st = sw_error_set(err, SW_EINVAL, "report: window quantiles %g..%g are invalid", q_lo,
-                          q_hi);
+        st =
+            sw_error_set(err, SW_EINVAL, "report: window quantiles %g..%g are invalid", q_lo, q_hi);
         goto out;
     }
     sw_mul_size((size_t)img->width, (size_t)img->height, &cap); /* bounded by rp_image_check */

@@ -315,7 +315,8 @@ void rp_plot_note(rp_plot *p, rp_rgb c, const char *text)
     p->cv->log = NULL;
     cairo_save(p->cv->cr);
     cairo_push_group(p->cv->cr);
-    int n = rp_text_wrap(p->cv, 0, 0, NOTE_FONT, c, RP_CENTRE, RP_ROLE_NOTE, max_w, line_h, 3, text);
+    int n =
+        rp_text_wrap(p->cv, 0, 0, NOTE_FONT, c, RP_CENTRE, RP_ROLE_NOTE, max_w, line_h, 3, text);
     cairo_pattern_destroy(cairo_pop_group(p->cv->cr));
     cairo_restore(p->cv->cr);
     p->cv->log = log;

@@ -62,25 +62,25 @@ typedef struct rp_text_item {
  * alternative. A stored pixel centre (x, y) is drawn at PNG (image_x0 + (x + 0.5) * scale_x,
  * image_y0 + (y + 0.5) * scale_y). */
 typedef struct rp_slice_info {
-    int width, height;               /* of the PNG */
-    double image_x0, image_y0;       /* PNG position of the stored image's top-left corner */
-    double scale_x, scale_y;         /* PNG pixels per stored pixel */
-    int nearest;                     /* 1: enlarged by pixel replication, 0: interpolated */
-    double window_lo, window_hi;     /* stored values shown as black and white */
+    int width, height;           /* of the PNG */
+    double image_x0, image_y0;   /* PNG position of the stored image's top-left corner */
+    double scale_x, scale_y;     /* PNG pixels per stored pixel */
+    int nearest;                 /* 1: enlarged by pixel replication, 0: interpolated */
+    double window_lo, window_hi; /* stored values shown as black and white */
     int n_text;
-    int text_truncated;              /* more lines were drawn than RP_TEXT_MAX */
+    int text_truncated; /* more lines were drawn than RP_TEXT_MAX */
     rp_text_item text[RP_TEXT_MAX];
 } rp_slice_info;
 
 /* Writes one annotated PNG for image image_index of r (img is that image). Left: the image as
  * stored (window from the 0.5 and 99.5 percentiles), the found phantom outline, the ramp strips'
- * sampled lines with their averaging bands and half-level crossings, the wedge bars with their found
- * ends, a legend and a scale bar. Right: the ramp and bar profiles with their levels and widths.
- * Top: labels and the key results with uncertainty and verdict; bottom: the review notice and the
- * program version. Parts that were not measured show "not measured: reason" instead of numbers.
- * Overlay coordinates are the stored image's pixels (x column, y row, centres at integers).
- * info may be NULL. Returns SW_EINVAL for bad arguments, SW_ENOMEM, or SW_EIO naming path;
- * on failure an existing file at path is left untouched. */
+ * sampled lines with their averaging bands and half-level crossings, the wedge bars with their
+ * found ends, a legend and a scale bar. Right: the ramp and bar profiles with their levels and
+ * widths. Top: labels and the key results with uncertainty and verdict; bottom: the review notice
+ * and the program version. Parts that were not measured show "not measured: reason" instead of
+ * numbers. Overlay coordinates are the stored image's pixels (x column, y row, centres at
+ * integers). info may be NULL. Returns SW_EINVAL for bad arguments, SW_ENOMEM, or SW_EIO naming
+ * path; on failure an existing file at path is left untouched. */
 sw_status rp_annotate_slice_png(const char *path, const an_image *img, int image_index,
                                 const an_series_result *r, const rp_labels *labels,
                                 rp_slice_info *info, sw_error *err);

@@ -7,16 +7,20 @@
 
 #include "report.h"
 
-/* ---- palette (ours; hues spaced for colour-vision deficiencies, each verdict also printed) ---- */
-typedef struct rp_rgb { double r, g, b; } rp_rgb;
+/* ---- palette (ours; hues spaced for colour-vision deficiencies, each verdict also printed) ----
+ */
+typedef struct rp_rgb {
+    double r, g, b;
+} rp_rgb;
 
-#define RP_HEX(h) ((rp_rgb){((h) >> 16 & 0xff) / 255.0, ((h) >> 8 & 0xff) / 255.0, ((h)&0xff) / 255.0})
+#define RP_HEX(h)                                                                                  \
+    ((rp_rgb){((h) >> 16 & 0xff) / 255.0, ((h) >> 8 & 0xff) / 255.0, ((h)&0xff) / 255.0})
 
 /* Verdict colours (chips and result text accents). */
-#define RP_C_PASS RP_HEX(0x1F6DB0)    /* blue */
-#define RP_C_WARN RP_HEX(0xE59A1A)    /* orange */
-#define RP_C_FAIL RP_HEX(0xC24A0E)    /* vermilion */
-#define RP_C_UNMEAS RP_HEX(0x6B6B6B)  /* grey */
+#define RP_C_PASS RP_HEX(0x1F6DB0)   /* blue */
+#define RP_C_WARN RP_HEX(0xE59A1A)   /* orange */
+#define RP_C_FAIL RP_HEX(0xC24A0E)   /* vermilion */
+#define RP_C_UNMEAS RP_HEX(0x6B6B6B) /* grey */
 /* Overlay colours on the greyscale image. */
 #define RP_C_OUTLINE RP_HEX(0x5CB6E6) /* sky blue: phantom outline */
 #define RP_C_STRIP RP_HEX(0xF0DE3C)   /* yellow: ramp strip line and band */
@@ -24,8 +28,8 @@ typedef struct rp_rgb { double r, g, b; } rp_rgb;
 #define RP_C_BAR RP_HEX(0xD584B8)     /* reddish purple: wedge bar, top to end */
 /* Page and plots. */
 #define RP_C_INK RP_HEX(0x1B1B1B)
-#define RP_C_INK2 RP_HEX(0x555555)    /* secondary text */
-#define RP_C_RULE RP_HEX(0xC8C8C8)    /* separators, plot frames */
+#define RP_C_INK2 RP_HEX(0x555555) /* secondary text */
+#define RP_C_RULE RP_HEX(0xC8C8C8) /* separators, plot frames */
 #define RP_C_GRID RP_HEX(0xEBEBEB)
 #define RP_C_PAGE RP_HEX(0xFFFFFF)
 #define RP_C_PROFILE RP_HEX(0x1A4F86) /* measured profile curve */
@@ -73,8 +77,8 @@ typedef struct rp_font {
 /* Width of s in font f. */
 double rp_text_width(rp_canvas *cv, rp_font f, const char *s);
 /* Draws s with its baseline at y, aligned on x; logs it with role. Returns the width drawn. */
-double rp_text(rp_canvas *cv, double x, double y, rp_font f, rp_rgb c, rp_align a, rp_text_role role,
-               const char *s);
+double rp_text(rp_canvas *cv, double x, double y, rp_font f, rp_rgb c, rp_align a,
+               rp_text_role role, const char *s);
 /* Like rp_text, but shortens s with an ellipsis to fit max_w. */
 double rp_text_fit(rp_canvas *cv, double x, double y, rp_font f, rp_rgb c, rp_align a,
                    rp_text_role role, double max_w, const char *s);
@@ -110,7 +114,8 @@ typedef struct rp_plot {
 /* Picks about target ticks in [lo, hi] with steps 1, 2 or 5 x 10^k. Sets *first and *step and
  * returns the tick count (0 if the range is empty or not finite). */
 int rp_nice_ticks(double lo, double hi, int target, double *first, double *step);
-/* Widens [*lo, *hi] outward to whole steps of a nice tick spacing (a zero-width range is opened). */
+/* Widens [*lo, *hi] outward to whole steps of a nice tick spacing (a zero-width range is opened).
+ */
 void rp_nice_range(double *lo, double *hi, int target);
 
 void rp_plot_init(rp_plot *p, rp_canvas *cv, double x, double y, double w, double h, double x0,

@@ -44,7 +44,7 @@ typedef struct scene {
     const an_image *img;
     const an_series_result *r;
     int index;
-    const an_thickness *th;   /* NULL unless this image is the ramp slice */
+    const an_thickness *th; /* NULL unless this image is the ramp slice */
     const an_position *pos[2];
     int n_pos;
     panel panels[6];
@@ -348,9 +348,7 @@ static void draw_swatch(cairo_t *cr, swatch s, double x, double yc)
         cairo_stroke(cr);
         break;
     }
-    case SW_POINT:
-        rp_draw_marker(cr, x + 13, yc, 5.0, RP_MARK_OPEN_DIAMOND, cross);
-        break;
+    case SW_POINT: rp_draw_marker(cr, x + 13, yc, 5.0, RP_MARK_OPEN_DIAMOND, cross); break;
     case SW_BAR:
         rp_draw_halo_line(cr, x + 4, yc, x + 20, yc, 2.0, bar, 0);
         rp_draw_marker(cr, x + 20, yc, 4, RP_MARK_OPEN_DIAMOND, cross);
@@ -406,8 +404,8 @@ static void profile_range(const an_profile *p, double *vmin, double *vmax)
 }
 
 /* Sets up the plot of a profile (axes drawn) and returns 1, or returns 0 if it has no data. */
-static int profile_plot(rp_plot *pl, rp_canvas *cv, const an_profile *pr, double extra_hi,
-                        double x, double y, double w, double h, const char *xlabel)
+static int profile_plot(rp_plot *pl, rp_canvas *cv, const an_profile *pr, double extra_hi, double x,
+                        double y, double w, double h, const char *xlabel)
 {
     double vmin, vmax;
     if (!profile_ok(pr))
@@ -520,8 +518,7 @@ static void draw_bar_panel(rp_canvas *cv, const panel *pn, double x, double y, d
             rp_plot_samples(&pl, b->profile.start_mm, b->profile.step_mm, b->profile.v,
                             b->profile.n, raw, 1.2);
         snprintf(buf, sizeof buf, "not measured: %s",
-                 reason_or(pn->pos->measured ? NULL : pn->pos->reason, NULL,
-                           "bar end not found"));
+                 reason_or(pn->pos->measured ? NULL : pn->pos->reason, NULL, "bar end not found"));
         rp_plot_note(&pl, grey, buf);
         return;
     }
@@ -731,20 +728,21 @@ static void build_scene(scene *sc)
                                              .th = sc->th,
                                              .part_thickness_mm = sc->th->top_thickness_mm};
         if (!strip_unused(&sc->th->bottom))
-            sc->panels[sc->n_panels++] =
-                (panel){.kind = P_STRIP,
-                        .title = "Bottom ramp profile",
-                        .strip = &sc->th->bottom,
-                        .th = sc->th,
-                        .part_thickness_mm = sc->th->bottom_thickness_mm};
+            sc->panels[sc->n_panels++] = (panel){.kind = P_STRIP,
+                                                 .title = "Bottom ramp profile",
+                                                 .strip = &sc->th->bottom,
+                                                 .th = sc->th,
+                                                 .part_thickness_mm = sc->th->bottom_thickness_mm};
     }
     for (int k = 0; k < sc->n_pos; k++) {
-        sc->panels[sc->n_panels++] =
-            (panel){.kind = P_BAR, .title = "Left bar profile", .bar = &sc->pos[k]->left,
-                    .pos = sc->pos[k]};
-        sc->panels[sc->n_panels++] =
-            (panel){.kind = P_BAR, .title = "Right bar profile", .bar = &sc->pos[k]->right,
-                    .pos = sc->pos[k]};
+        sc->panels[sc->n_panels++] = (panel){.kind = P_BAR,
+                                             .title = "Left bar profile",
+                                             .bar = &sc->pos[k]->left,
+                                             .pos = sc->pos[k]};
+        sc->panels[sc->n_panels++] = (panel){.kind = P_BAR,
+                                             .title = "Right bar profile",
+                                             .bar = &sc->pos[k]->right,
+                                             .pos = sc->pos[k]};
     }
 }
 
@@ -772,7 +770,8 @@ sw_status rp_annotate_slice_png(const char *path, const an_image *img, int image
     rp_rgb ink = RP_C_INK, ink2 = RP_C_INK2;
 
     if (!path || !r) {
-        st = sw_error_set(err, SW_EINVAL, "report: annotate slice: no %s", path ? "result" : "path");
+        st =
+            sw_error_set(err, SW_EINVAL, "report: annotate slice: no %s", path ? "result" : "path");
         goto out;
     }
     if (r->n_images < 1 || r->n_images > AN_MAX_IMAGES || image_index < 0 ||
@@ -845,7 +844,8 @@ sw_status rp_annotate_slice_png(const char *path, const an_image *img, int image
     if (st != SW_OK)
         goto out;
     snprintf(buf, sizeof buf,
-             "Window %.4g\xE2\x80\x93%.4g (0.5\xE2\x80\x93" "99.5 percentile) \xC2\xB7 %d \xC3\x97 %d px"
+             "Window %.4g\xE2\x80\x93%.4g (0.5\xE2\x80\x93"
+             "99.5 percentile) \xC2\xB7 %d \xC3\x97 %d px"
              " of %.3g \xC3\x97 %.3g mm \xC2\xB7 shown as stored, \xC3\x97%.3g",
              sc.lo, sc.hi, img->width, img->height, img->col_mm, img->row_mm, sc.sx);
     rp_text_fit(&cv, MARGIN, sc.y0 + sc.disp_h + 17, F_SMALL, ink2, RP_LEFT, RP_ROLE_LABEL, left_w,
@@ -869,8 +869,9 @@ sw_status rp_annotate_slice_png(const char *path, const an_image *img, int image
     for (int i = 0; i < n_lines; i++) {
         char one[2 * RP_TEXT_LEN + 24];
         if (lines[i].chip)
-            snprintf(one, sizeof one, "%s: %s%s%s", rp_verdict_word(lines[i].measured ? lines[i].v : AN_UNMEASURABLE), lines[i].main,
-                     lines[i].rest[0] ? ", " : "", lines[i].rest);
+            snprintf(one, sizeof one, "%s: %s%s%s",
+                     rp_verdict_word(lines[i].measured ? lines[i].v : AN_UNMEASURABLE),
+                     lines[i].main, lines[i].rest[0] ? ", " : "", lines[i].rest);
         else
             sw_strlcpy(one, lines[i].rest, sizeof one);
         join(desc, sizeof desc, "; ", one);

@@ -291,8 +291,8 @@ static const unsigned char *at(const png_img *p, int x, int y)
 
 static int same_colour(const unsigned char *px, rp_rgb c, int tol)
 {
-    return abs(px[0] - (int)lround(c.r * 255)) <= tol && abs(px[1] - (int)lround(c.g * 255)) <= tol &&
-           abs(px[2] - (int)lround(c.b * 255)) <= tol;
+    return abs(px[0] - (int)lround(c.r * 255)) <= tol &&
+           abs(px[1] - (int)lround(c.g * 255)) <= tol && abs(px[2] - (int)lround(c.b * 255)) <= tol;
 }
 
 /* Is colour c found within rad px of (x, y)? */
@@ -417,13 +417,13 @@ Test(report, ramp_slice_layout_and_pixels)
     cr_assert(info->window_hi < 5000 && info->window_lo < 30);
     for (int dy = 0; dy < 3; dy++)
         for (int dx = 0; dx < 3; dx++) {
-            const unsigned char *p = at(&png, (int)info->image_x0 + 12 * 3 + dx,
-                                        (int)info->image_y0 + 240 * 3 + dy);
+            const unsigned char *p =
+                at(&png, (int)info->image_x0 + 12 * 3 + dx, (int)info->image_y0 + 240 * 3 + dy);
             cr_assert(p[0] == 255 && p[1] == 255 && p[2] == 255, "block pixel %d,%d = %d", dx, dy,
                       p[0]);
         }
-    const unsigned char *dark = at(&png, (int)info->image_x0 + 14 * 3 + 1,
-                                   (int)info->image_y0 + 240 * 3 + 1);
+    const unsigned char *dark =
+        at(&png, (int)info->image_x0 + 14 * 3 + 1, (int)info->image_y0 + 240 * 3 + 1);
     cr_assert(dark[0] < 40 && dark[0] == dark[1] && dark[1] == dark[2], "air = %d", dark[0]);
     /* fluid (1000 +- 10) maps to the top of the window: a light grey */
     const unsigned char *fluid = at(&png, (int)disp_x(info, 100), (int)disp_y(info, 160));
@@ -432,12 +432,12 @@ Test(report, ramp_slice_layout_and_pixels)
     /* overlay colours where the result puts them */
     rp_rgb cross = RP_C_CROSS, outline = RP_C_OUTLINE, strip = RP_C_STRIP, bar = RP_C_BAR;
     const an_strip *top = &r->thickness.top;
-    cr_assert(open_diamond_at(&png, disp_x(info, top->cross_lo.x), disp_y(info, top->cross_lo.y),
-                              cross),
-              "crossing marker missing at the low crossing");
-    cr_assert(open_diamond_at(&png, disp_x(info, top->cross_hi.x), disp_y(info, top->cross_hi.y),
-                              cross),
-              "crossing marker missing at the high crossing");
+    cr_assert(
+        open_diamond_at(&png, disp_x(info, top->cross_lo.x), disp_y(info, top->cross_lo.y), cross),
+        "crossing marker missing at the low crossing");
+    cr_assert(
+        open_diamond_at(&png, disp_x(info, top->cross_hi.x), disp_y(info, top->cross_hi.y), cross),
+        "crossing marker missing at the high crossing");
     /* the sampled line, half way between the low crossing and the line's start */
     double mx = (top->line0.x + top->cross_lo.x) / 2, my = top->line0.y;
     /* a 1 px dashed, antialiased line over the dark insert: its colour at partial coverage */
@@ -457,7 +457,8 @@ Test(report, ramp_slice_layout_and_pixels)
 
     /* the texts: results with uncertainty and verdict, profiles' widths, the footer */
     cr_assert_not_null(find_text(info, RP_ROLE_RESULT, "Slice thickness 5.00 \xC2\xB1 0.05 mm"));
-    cr_assert_not_null(find_text(info, RP_ROLE_RESULT, "Bar length difference +0.00 \xC2\xB1 0.28 mm"));
+    cr_assert_not_null(
+        find_text(info, RP_ROLE_RESULT, "Bar length difference +0.00 \xC2\xB1 0.28 mm"));
     cr_assert_eq(count_text(info, "FWHM 50.00 \xC2\xB1 0.31 mm"), 2);
     cr_assert_eq(count_text(info, "end at 15.00 \xC2\xB1 0.20 mm"), 2);
     cr_assert_eq(count_text(info, "PASS"), 2);
@@ -526,12 +527,12 @@ Test(report, unmeasured_strip_shows_reason)
     png_img png;
     render("unmeasured.png", &img, 0, r, info, &png);
 
-    const rp_text_item *note = find_text(info, RP_ROLE_NOTE,
-                                         "not measured: strip edge outside the insert");
+    const rp_text_item *note =
+        find_text(info, RP_ROLE_NOTE, "not measured: strip edge outside the insert");
     cr_assert_not_null(note, "no 'not measured: reason' note in the top ramp panel");
     cr_assert(ink_fraction(&png, note) > 0.03, "the note's glyphs are not visible");
-    cr_assert_not_null(find_text(info, RP_ROLE_NOTE,
-                                 "Slice thickness not measured: top ramp not measured"));
+    cr_assert_not_null(
+        find_text(info, RP_ROLE_NOTE, "Slice thickness not measured: top ramp not measured"));
     cr_assert_null(find_text(info, -1, "Slice thickness 5.00"));
     /* only the bottom ramp still has a width; the header chip says UNMEASURABLE, not PASS */
     cr_assert_eq(count_text(info, "FWHM"), 1);
@@ -542,8 +543,8 @@ Test(report, unmeasured_strip_shows_reason)
     cr_assert(!colour_near(&png, disp_x(info, top->cross_lo.x), disp_y(info, top->cross_lo.y), 3,
                            cross, 10));
     const an_strip *bot = &r->thickness.bottom;
-    cr_assert(open_diamond_at(&png, disp_x(info, bot->cross_lo.x), disp_y(info, bot->cross_lo.y),
-                              cross));
+    cr_assert(
+        open_diamond_at(&png, disp_x(info, bot->cross_lo.x), disp_y(info, bot->cross_lo.y), cross));
     free(png.rgb);
     free(info);
     free(r);
@@ -625,8 +626,8 @@ Test(report, anisotropic_pixels_keep_proportions)
     /* a circle: the outline 95 mm right of and 95 mm above the centre (row pitch doubled) */
     rp_rgb outline = RP_C_OUTLINE;
     cr_assert(colour_near(&png, disp_x(info, CX + 95 / PX), disp_y(info, CY / 2), 3, outline, 8));
-    cr_assert(colour_near(&png, disp_x(info, CX), disp_y(info, CY / 2 - 95 / (2 * PX)), 3,
-                          outline, 8));
+    cr_assert(
+        colour_near(&png, disp_x(info, CX), disp_y(info, CY / 2 - 95 / (2 * PX)), 3, outline, 8));
     /* image 4 has no measurement: the note says so */
     cr_assert_not_null(find_text(info, RP_ROLE_NOTE, "no thickness or position measurement"));
     free(png.rgb);
@@ -918,11 +919,14 @@ Test(report, palette_survives_colour_vision_deficiency)
 {
     static const double M[4][3][3] = {
         {{1, 0, 0}, {0, 1, 0}, {0, 0, 1}},
-        {{0.152286, 1.052583, -0.204868}, {0.114503, 0.786281, 0.099216},
+        {{0.152286, 1.052583, -0.204868},
+         {0.114503, 0.786281, 0.099216},
          {-0.003882, -0.048116, 1.051998}},
-        {{0.367322, 0.860646, -0.227968}, {0.280085, 0.672501, 0.047413},
+        {{0.367322, 0.860646, -0.227968},
+         {0.280085, 0.672501, 0.047413},
          {-0.011820, 0.042940, 0.968881}},
-        {{1.255528, -0.076749, -0.178779}, {-0.078411, 0.930809, 0.148370},
+        {{1.255528, -0.076749, -0.178779},
+         {-0.078411, 0.930809, 0.148370},
          {0.004733, 0.691367, 0.303900}},
     };
     static const char *names[4] = {"normal", "protan", "deutan", "tritan"};
@@ -935,8 +939,8 @@ Test(report, palette_survives_colour_vision_deficiency)
                 cr_assert(dv >= 12, "%s: verdict colours %d and %d too close (dE %.1f)", names[k],
                           i, j, dv);
                 double dov = delta_e(simulate(overlays[i], M[k]), simulate(overlays[j], M[k]));
-                cr_assert(dov >= 12, "%s: overlay colours %d and %d too close (dE %.1f)",
-                          names[k], i, j, dov);
+                cr_assert(dov >= 12, "%s: overlay colours %d and %d too close (dE %.1f)", names[k],
+                          i, j, dov);
             }
 }
 
@@ -951,12 +955,12 @@ Test(report, nice_ticks)
         double first, step;
         int n;
     } cases[] = {
-        {0, 1, 5, 0, 0.2, 6},      /* raw 0.2 -> 2 x 10^-1 */
-        {0, 47.3, 5, 0, 10, 5},    /* raw 9.46 -> 10: 0..40 */
-        {-3, 7, 4, -2, 2, 5},      /* raw 2.5 -> 2: -2..6 */
-        {-60, 60, 6, -60, 20, 7},  /* raw 20 */
+        {0, 1, 5, 0, 0.2, 6},             /* raw 0.2 -> 2 x 10^-1 */
+        {0, 47.3, 5, 0, 10, 5},           /* raw 9.46 -> 10: 0..40 */
+        {-3, 7, 4, -2, 2, 5},             /* raw 2.5 -> 2: -2..6 */
+        {-60, 60, 6, -60, 20, 7},         /* raw 20 */
         {0.013, 0.087, 3, 0.02, 0.02, 4}, /* raw 0.0247 -> 0.02: 0.02..0.08 */
-        {100, 1100, 5, 200, 200, 5}, /* raw 200: 200..1000 (100 and 1100 are not multiples) */
+        {100, 1100, 5, 200, 200, 5},      /* raw 200: 200..1000 (100 and 1100 are not multiples) */
     };
     for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
         double first, step;
