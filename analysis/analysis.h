@@ -9,7 +9,7 @@
 #include "sw.h"
 
 #define AN_MAX_IMAGES 64    /* images of one series and echo */
-#define AN_PROFILE_MAX 1024 /* samples of a stored profile */
+#define AN_PROFILE_MAX 2048 /* samples of a stored profile (a 140 mm insert at 0.1 mm) */
 #define AN_REASON_MAX 160
 
 /* ---- phantom model (defaults: the large ramp-and-wedge phantom; a site file may change them) ----
@@ -122,6 +122,10 @@ typedef struct an_strip {
     an_point cross_lo, cross_hi;     /* half-level crossings */
     double cross_lo_mm, cross_hi_mm; /* the crossings on the profile's abscissa */
     an_profile profile;              /* along the strip */
+    /* added (additive) */
+    double centre_unc_mm;            /* of centre_u_mm */
+    double plateau_unc;              /* standard uncertainty of the plateau level (plateau_sd is the
+                                        SD of the profile samples about the fitted top) */
 } an_strip;
 
 typedef struct an_thickness {

@@ -1,0 +1,456 @@
+/* phantom.c: the fluid disc on one image (Otsu threshold, largest component, holes filled, circle
+ * fitted to sub-pixel edge points), and the noise and signal levels around and inside it. */
+#include <stdint.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include "an_int.h"
+
+int an_work_reserve(an_work *w, size_t npx)
+{
+    if (npx <= w->cap)
+        return 0;
+    size_t bytes;
+    if (sw_mul_size(npx, sizeof(int), &bytes))
+        return -1;
+    unsigned char *m = realloc(w->mask, npx);
+    if (!m)
+        return -1;
+    w->mask = m;
+    int *s = realloc(w->stack, bytes);
+    if (!s)
+        return -1;
+    w->stack = s;
+    w->cap = npx;
+    return 0;
+}
+
+void an_work_free(an_work *w)
+{
+    if (!w)
+        return;
+    free(w->mask);
+    free(w->stack);
+    memset(w, 0, sizeof *w);
+}
+
+/* Otsu's threshold over a 256-bin histogram between lo and hi. */
+static double otsu(const an_image *im, double lo, double hi)
+{
+    double hist[256] = {0}, scale = 255.999 / (hi - lo);
+    size_t total = 0;
+    for (int y = 0; y < im->height; y++) {
+        const float *r = im->px + (ptrdiff_t)y * im->stride;
+        for (int x = 0; x < im->width; x++)
+            if (isfinite(r[x])) {
+                int b = (int)((r[x] - lo) * scale);
+                hist[b < 0 ? 0 : b > 255 ? 255 : b] += 1;
+                total++;
+            }
+    }
+    double sum = 0;
+    for (int i = 0; i < 256; i++)
+        sum += i * hist[i];
+    double w0 = 0, s0 = 0, best = -1;
+    int bi = 127;
+    for (int i = 0; i < 255; i++) {
+        w0 += hist[i];
+        s0 += i * hist[i];
+        double w1 = (double)total - w0;
+        if (w0 <= 0 || w1 <= 0)
+            continue;
+        double m0 = s0 / w0, m1 = (sum - s0) / w1;
+        double between = w0 * w1 * (m0 - m1) * (m0 - m1);
+        if (between > best) {
+            best = between;
+            bi = i;
+        }
+    }
+    return lo + (bi + 1) / scale;
+}
+
+/* 4-connected flood from seed over pixels whose mask equals `from`, setting them to `to`. */
+static size_t flood(unsigned char *m, int *stack, int w, int h, int seed, unsigned char from,
+                    unsigned char to)
+{
+    size_t top = 0, count = 0;
+    if (m[seed] != from)
+        return 0;
+    m[seed] = to;
+    stack[top++] = seed;
+    while (top) {
+        int p = stack[--top], x = p % w, y = p / w;
+        count++;
+        int nb[4] = {x > 0 ? p - 1 : -1, x < w - 1 ? p + 1 : -1, y > 0 ? p - w : -1,
+                     y < h - 1 ? p + w : -1};
+        for (int k = 0; k < 4; k++)
+            if (nb[k] >= 0 && m[nb[k]] == from) {
+                m[nb[k]] = to;
+                stack[top++] = nb[k];
+            }
+    }
+    return count;
+}
+
+/* Algebraic circle fit (Kasa) of points in mm; returns 0 and centre and radius. */
+static int kasa(const double *X, const double *Y, const unsigned char *use, int n, double *xc,
+                double *yc, double *r)
+{
+    double sx = 0, sy = 0, sxx = 0, syy = 0, sxy = 0, sz = 0, sxz = 0, syz = 0;
+    int c = 0;
+    for (int i = 0; i < n; i++) {
+        if (!use[i])
+            continue;
+        double x = X[i], y = Y[i], z = x * x + y * y;
+        sx += x;
+        sy += y;
+        sxx += x * x;
+        syy += y * y;
+        sxy += x * y;
+        sz += z;
+        sxz += x * z;
+        syz += y * z;
+        c++;
+    }
+    if (c < 5)
+        return -1;
+    /* Solve [sxx sxy sx; sxy syy sy; sx sy c] [D E F]' = -[sxz syz sz]'. */
+    double A[3][4] = {{sxx, sxy, sx, -sxz}, {sxy, syy, sy, -syz}, {sx, sy, (double)c, -sz}};
+    for (int k = 0; k < 3; k++) {
+        int piv = k;
+        for (int i = k + 1; i < 3; i++)
+            if (fabs(A[i][k]) > fabs(A[piv][k]))
+                piv = i;
+        if (fabs(A[piv][k]) < 1e-12)
+            return -1;
+        for (int j = 0; j < 4; j++) {
+            double t = A[k][j];
+            A[k][j] = A[piv][j];
+            A[piv][j] = t;
+        }
+        for (int i = 0; i < 3; i++) {
+            if (i == k)
+                continue;
+            double f = A[i][k] / A[k][k];
+            for (int j = k; j < 4; j++)
+                A[i][j] -= f * A[k][j];
+        }
+    }
+    double D = A[0][3] / A[0][0], E = A[1][3] / A[1][1], F = A[2][3] / A[2][2];
+    *xc = -D / 2;
+    *yc = -E / 2;
+    double rr = *xc * *xc + *yc * *yc - F;
+    if (!(rr > 0))
+        return -1;
+    *r = sqrt(rr);
+    return 0;
+}
+
+#define NRAY 72
+
+int an_find_disc(const an_image *im, const an_model *model, an_work *wk, an_disc *d)
+{
+    memset(d, 0, sizeof *d);
+    d->xc = d->yc = d->r_mm = NAN;
+    size_t npx;
+    if (im->width < 8 || im->height < 8 || sw_mul_size((size_t)im->width, (size_t)im->height, &npx) ||
+        npx > (size_t)INT32_MAX) {
+        sw_strlcpy(d->reason, "phantom not found: image too small or too large", sizeof d->reason);
+        return 0;
+    }
+    if (an_work_reserve(wk, npx))
+        return -1;
+    int w = im->width, h = im->height;
+    double col = im->col_mm > 0 ? im->col_mm : 1, row = im->row_mm > 0 ? im->row_mm : 1;
+    double lo = INFINITY, hi = -INFINITY;
+    for (int y = 0; y < h; y++) {
+        const float *r = im->px + (ptrdiff_t)y * im->stride;
+        for (int x = 0; x < w; x++)
+            if (isfinite(r[x])) {
+                lo = fmin(lo, r[x]);
+                hi = fmax(hi, r[x]);
+            }
+    }
+    if (!(hi > lo)) {
+        sw_strlcpy(d->reason, "phantom not found: the image is uniform", sizeof d->reason);
+        return 0;
+    }
+    double t = otsu(im, lo, hi);
+    d->thresh = t;
+    unsigned char *m = wk->mask;
+    for (int y = 0; y < h; y++) {
+        const float *r = im->px + (ptrdiff_t)y * im->stride;
+        for (int x = 0; x < w; x++)
+            m[(size_t)y * w + x] = r[x] > t;
+    }
+    size_t best = 0;
+    int seed = -1;
+    for (size_t p = 0; p < npx; p++)
+        if (m[p] == 1) {
+            size_t c = flood(m, wk->stack, w, h, (int)p, 1, 2);
+            if (c > best) {
+                best = c;
+                seed = (int)p;
+            }
+        }
+    if (seed < 0) {
+        sw_strlcpy(d->reason, "phantom not found: nothing above the threshold", sizeof d->reason);
+        return 0;
+    }
+    flood(m, wk->stack, w, h, seed, 2, 3);
+    /* Holes: whatever the outside cannot reach through non-phantom pixels. */
+    for (int x = 0; x < w; x++) {
+        if (m[x] != 3 && m[x] != 4)
+            flood(m, wk->stack, w, h, x, m[x], 4);
+        size_t q = (size_t)(h - 1) * w + x;
+        if (m[q] != 3 && m[q] != 4)
+            flood(m, wk->stack, w, h, (int)q, m[q], 4);
+    }
+    for (int y = 0; y < h; y++) {
+        size_t q0 = (size_t)y * w, q1 = q0 + w - 1;
+        if (m[q0] != 3 && m[q0] != 4)
+            flood(m, wk->stack, w, h, (int)q0, m[q0], 4);
+        if (m[q1] != 3 && m[q1] != 4)
+            flood(m, wk->stack, w, h, (int)q1, m[q1], 4);
+    }
+    double sx = 0, sy = 0;
+    size_t cnt = 0;
+    for (int y = 0; y < h; y++)
+        for (int x = 0; x < w; x++)
+            if (m[(size_t)y * w + x] != 4) {
+                sx += x;
+                sy += y;
+                cnt++;
+            }
+    if (cnt < 200 || cnt > npx * 0.95) {
+        sw_strlcpy(d->reason, "phantom not found: no disc-like object", sizeof d->reason);
+        return 0;
+    }
+    double xc = sx / cnt, yc = sy / cnt, R = sqrt(cnt * col * row / M_PI);
+    /* Fluid level: median inside 0.6 R (the mask's inside). */
+    {
+        float *buf = (float *)wk->stack; /* the stack is free now; npx ints hold npx floats */
+        size_t nb = 0;
+        double r6 = 0.6 * R;
+        for (int y = (int)fmax(0, yc - r6 / row); y <= (int)fmin(h - 1, yc + r6 / row); y++)
+            for (int x = (int)fmax(0, xc - r6 / col); x <= (int)fmin(w - 1, xc + r6 / col); x++) {
+                double dx = (x - xc) * col, dy = (y - yc) * row;
+                float v = im->px[(ptrdiff_t)y * im->stride + x];
+                if (dx * dx + dy * dy <= r6 * r6 && isfinite(v))
+                    buf[nb++] = v;
+            }
+        d->fluid = an_median(buf, nb);
+    }
+    /* Sub-pixel edge points along rays: the crossing of the level halfway between the local fluid
+     * and air, found walking inward from outside. */
+    double X[NRAY], Y[NRAY];
+    unsigned char use[NRAY];
+    int ne = 0;
+    double step = 0.5, r0 = 0.7 * R, r1 = 1.3 * R;
+    int ns = (int)((r1 - r0) / step) + 1;
+    double prof[512];
+    if (ns > 512)
+        ns = 512, step = (r1 - r0) / (ns - 1);
+    double Xc = xc * col, Yc = yc * row;
+    for (int k = 0; k < NRAY; k++) {
+        double ph = 2 * M_PI * k / NRAY, cx = cos(ph), cy = sin(ph);
+        for (int i = 0; i < ns; i++) {
+            double rr = r0 + i * step;
+            prof[i] = an_bilinear(im, (Xc + rr * cx) / col, (Yc + rr * cy) / row);
+        }
+        double in = an_mean_range(prof, ns, (int)((0.02 * R) / step), (int)((0.18 * R) / step));
+        double out = an_mean_range(prof, ns, (int)((0.42 * R) / step), ns - 1);
+        if (!isfinite(in) || !isfinite(out) || !(in - out > 0.25 * (d->fluid - lo)))
+            continue;
+        double lev = 0.5 * (in + out);
+        int start = ns - 1;
+        while (start > 0 && !isfinite(prof[start]))
+            start--;
+        double fi = an_walk_cross(prof, ns, start, -1, lev, 0);
+        if (!isfinite(fi))
+            continue;
+        double rr = r0 + fi * step;
+        X[ne] = Xc + rr * cx;
+        Y[ne] = Yc + rr * cy;
+        use[ne] = 1;
+        ne++;
+    }
+    double fx = NAN, fy = NAN, fr = NAN;
+    for (int round = 0; round < 3; round++) {
+        if (kasa(X, Y, use, ne, &fx, &fy, &fr)) {
+            sw_strlcpy(d->reason, "phantom not found: the edge is not a circle", sizeof d->reason);
+            return 0;
+        }
+        double res[NRAY];
+        float ab[NRAY];
+        int nu = 0;
+        for (int i = 0; i < ne; i++) {
+            res[i] = hypot(X[i] - fx, Y[i] - fy) - fr;
+            if (use[i])
+                ab[nu++] = (float)fabs(res[i]);
+        }
+        double mad = an_median(ab, (size_t)nu);
+        double lim = fmax(3 * 1.4826 * mad, 0.4);
+        for (int i = 0; i < ne; i++)
+            use[i] = fabs(res[i]) <= lim;
+    }
+    /* Geometric refinement (Gauss-Newton on the distances) over the inliers. */
+    for (int it = 0; it < 5; it++) {
+        double JtJ[3][3] = {{0}}, Jtr[3] = {0};
+        for (int i = 0; i < ne; i++) {
+            if (!use[i])
+                continue;
+            double dx = X[i] - fx, dy = Y[i] - fy, di = hypot(dx, dy);
+            if (di <= 0)
+                continue;
+            double J[3] = {-dx / di, -dy / di, -1}, r = di - fr;
+            for (int a = 0; a < 3; a++) {
+                Jtr[a] += J[a] * r;
+                for (int b = 0; b < 3; b++)
+                    JtJ[a][b] += J[a] * J[b];
+            }
+        }
+        /* Solve JtJ delta = -Jtr (3x3, Cramer). */
+        double (*A)[3] = JtJ;
+        double det = A[0][0] * (A[1][1] * A[2][2] - A[1][2] * A[2][1]) -
+                     A[0][1] * (A[1][0] * A[2][2] - A[1][2] * A[2][0]) +
+                     A[0][2] * (A[1][0] * A[2][1] - A[1][1] * A[2][0]);
+        if (!(fabs(det) > 1e-12))
+            break;
+        double b[3] = {-Jtr[0], -Jtr[1], -Jtr[2]}, dl[3];
+        for (int c = 0; c < 3; c++) {
+            double M[3][3];
+            memcpy(M, A, sizeof M);
+            for (int r = 0; r < 3; r++)
+                M[r][c] = b[r];
+            dl[c] = (M[0][0] * (M[1][1] * M[2][2] - M[1][2] * M[2][1]) -
+                     M[0][1] * (M[1][0] * M[2][2] - M[1][2] * M[2][0]) +
+                     M[0][2] * (M[1][0] * M[2][1] - M[1][1] * M[2][0])) / det;
+        }
+        fx += dl[0];
+        fy += dl[1];
+        fr += dl[2];
+        if (fabs(dl[0]) + fabs(dl[1]) + fabs(dl[2]) < 1e-6)
+            break;
+    }
+    int ni = 0;
+    double ss = 0;
+    for (int i = 0; i < ne; i++)
+        if (use[i]) {
+            double r = hypot(X[i] - fx, Y[i] - fy) - fr;
+            ss += r * r;
+            ni++;
+        }
+    d->n_edge = ni;
+    d->rms_mm = ni ? sqrt(ss / ni) : NAN;
+    double rmod = model->radius_mm;
+    double fill = cnt * col * row / (M_PI * fr * fr);
+    if (ni < NRAY / 3 || !(d->rms_mm < 1.5) || !(fr > 0.6 * rmod && fr < 1.4 * rmod) ||
+        !(fill > 0.8 && fill < 1.15)) {
+        sw_strlcpy(d->reason, "phantom not found: no disc of the model's size", sizeof d->reason);
+        return 0;
+    }
+    d->xc = fx / col;
+    d->yc = fy / row;
+    d->r_mm = fr;
+    d->found = 1;
+    return 0;
+}
+
+/* Pixels of the air around the disc, in four bands (left, right, top, bottom of the stored image). */
+double an_noise_air(const an_image *im, const an_disc *d, float *scratch)
+{
+    if (!d->found)
+        return NAN;
+    int w = im->width, h = im->height;
+    double col = im->col_mm > 0 ? im->col_mm : 1, row = im->row_mm > 0 ? im->row_mm : 1;
+    double rmin = d->r_mm + fmax(10.0, 0.1 * d->r_mm);
+    size_t quarter = (size_t)w * h / 4, cnt[4] = {0}, zeros = 0, total = 0;
+    for (int y = 2; y < h - 2; y++)
+        for (int x = 2; x < w - 2; x++) {
+            double dx = (x - d->xc) * col, dy = (y - d->yc) * row;
+            if (dx * dx + dy * dy < rmin * rmin)
+                continue;
+            float v = im->px[(ptrdiff_t)y * im->stride + x];
+            if (!isfinite(v))
+                continue;
+            int b = fabs(dx) >= fabs(dy) ? (dx < 0 ? 0 : 1) : (dy < 0 ? 2 : 3);
+            total++;
+            if (v == 0)
+                zeros++;
+            if (cnt[b] < quarter)
+                scratch[b * quarter + cnt[b]++] = v;
+        }
+    if (total < 400 || zeros > total * 0.3)
+        return NAN;
+    double s[4];
+    int ns = 0;
+    for (int b = 0; b < 4; b++)
+        if (cnt[b] >= 200)
+            s[ns++] = an_median(scratch + b * quarter, cnt[b]) / sqrt(2 * log(2.0));
+    if (ns == 0)
+        return NAN;
+    /* Sort ascending; ghosts raise the bands they fall in. */
+    for (int i = 1; i < ns; i++)
+        for (int j = i; j > 0 && s[j] < s[j - 1]; j--) {
+            double t = s[j];
+            s[j] = s[j - 1];
+            s[j - 1] = t;
+        }
+    return ns >= 2 ? 0.5 * (s[0] + s[1]) : s[0];
+}
+
+double an_noise_fluid(const an_image *im, const an_disc *d, float *scratch)
+{
+    if (!d->found)
+        return NAN;
+    double col = im->col_mm > 0 ? im->col_mm : 1, row = im->row_mm > 0 ? im->row_mm : 1;
+    double rr = 0.5 * d->r_mm;
+    size_t n = 0;
+    for (int y = (int)fmax(0, d->yc - rr / row); y <= (int)fmin(im->height - 1, d->yc + rr / row);
+         y++)
+        for (int x = (int)fmax(0, d->xc - rr / col);
+             x < (int)fmin(im->width - 1, d->xc + rr / col); x++) {
+            double dx = (x - d->xc) * col, dy = (y - d->yc) * row;
+            if (dx * dx + dy * dy > rr * rr)
+                continue;
+            const float *p = im->px + (ptrdiff_t)y * im->stride + x;
+            if (isfinite(p[0]) && isfinite(p[1]))
+                scratch[n++] = p[1] - p[0];
+        }
+    if (n < 100)
+        return NAN;
+    double med = an_median(scratch, n);
+    for (size_t i = 0; i < n; i++)
+        scratch[i] = (float)fabs(scratch[i] - med);
+    return 1.4826 * an_median(scratch, n) / sqrt(2.0);
+}
+
+double an_fluid_mean(const an_image *im, const an_disc *d, double frac, float *scratch)
+{
+    if (!d->found)
+        return NAN;
+    double col = im->col_mm > 0 ? im->col_mm : 1, row = im->row_mm > 0 ? im->row_mm : 1;
+    double rr = frac * d->r_mm;
+    size_t n = 0;
+    for (int y = (int)fmax(0, d->yc - rr / row); y <= (int)fmin(im->height - 1, d->yc + rr / row);
+         y++)
+        for (int x = (int)fmax(0, d->xc - rr / col); x <= (int)fmin(im->width - 1, d->xc + rr / col);
+             x++) {
+            double dx = (x - d->xc) * col, dy = (y - d->yc) * row;
+            float v = im->px[(ptrdiff_t)y * im->stride + x];
+            if (dx * dx + dy * dy <= rr * rr && isfinite(v))
+                scratch[n++] = v;
+        }
+    if (n < 20)
+        return NAN;
+    double med = an_median(scratch, n), s = 0;
+    size_t c = 0;
+    /* an_median reorders; the values are all still there. */
+    for (size_t i = 0; i < n; i++)
+        if (scratch[i] >= 0.5 * med) {
+            s += scratch[i];
+            c++;
+        }
+    return c ? s / c : NAN;
+}

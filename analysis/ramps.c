@@ -1,0 +1,658 @@
+/* ramps.c: the thickness insert on the ramp slice: its rotation from the long edges, its ends, the
+ * strips found inside it, and each strip's FWHM and FWTM with their uncertainties. */
+#include <stdio.h> /* snprintf only: no I/O here */
+#include <stdlib.h>
+#include <string.h>
+
+#include "an_int.h"
+
+int an_dark_axis(const an_image *im, const an_geom *g, const an_disc *d, double *angle_deg,
+                 double *elong, double *area_mm2, double *off_mm)
+{
+    if (!d->found)
+        return -1;
+    double col = im->col_mm > 0 ? im->col_mm : 1, row = im->row_mm > 0 ? im->row_mm : 1;
+    double R = d->r_mm, lim = 0.5 * d->fluid;
+    double s0 = 0, sa = 0, sb = 0, saa = 0, sbb = 0, sab = 0;
+    int x0 = (int)fmax(0, d->xc - R / col), x1 = (int)fmin(im->width - 1, d->xc + R / col);
+    int y0 = (int)fmax(0, d->yc - R / row), y1 = (int)fmin(im->height - 1, d->yc + R / row);
+    for (int y = y0; y <= y1; y++) {
+        const float *r = im->px + (ptrdiff_t)y * im->stride;
+        double dy = y - d->yc;
+        for (int x = x0; x <= x1; x++) {
+            if (!(r[x] < lim))
+                continue;
+            double dx = x - d->xc;
+            double a = g->d[0] * dx + g->d[1] * dy, b = g->d[2] * dx + g->d[3] * dy;
+            if (a * a + b * b > 0.64 * R * R || fabs(b) > 0.5 * R)
+                continue;
+            s0 += 1;
+            sa += a;
+            sb += b;
+            saa += a * a;
+            sbb += b * b;
+            sab += a * b;
+        }
+    }
+    if (s0 < 20)
+        return -1;
+    double ma = sa / s0, mb = sb / s0;
+    double caa = saa / s0 - ma * ma, cbb = sbb / s0 - mb * mb, cab = sab / s0 - ma * mb;
+    double tr = caa + cbb, det = caa * cbb - cab * cab, disc = sqrt(fmax(0, tr * tr / 4 - det));
+    double l1 = tr / 2 + disc, l2 = tr / 2 - disc;
+    *angle_deg = 0.5 * atan2(2 * cab, caa - cbb) * AN_DEG;
+    *elong = l2 > 1e-9 ? sqrt(l1 / l2) : 1e9;
+    *area_mm2 = s0 * col * row;
+    *off_mm = hypot(ma, mb);
+    return 0;
+}
+
+/* Robust straight-line fit y = a + b x (two rounds of rejecting residuals above 3 MADs). */
+static int line_fit(const double *x, const double *y, int n, double *a, double *b, double *sb,
+                    double *rms)
+{
+    unsigned char use[256];
+    if (n > 256)
+        n = 256;
+    for (int i = 0; i < n; i++)
+        use[i] = isfinite(x[i]) && isfinite(y[i]);
+    for (int round = 0; round < 3; round++) {
+        double s0 = 0, sx = 0, sy = 0, sxx = 0, sxy = 0;
+        for (int i = 0; i < n; i++)
+            if (use[i]) {
+                s0++;
+                sx += x[i];
+                sy += y[i];
+                sxx += x[i] * x[i];
+                sxy += x[i] * y[i];
+            }
+        double den = s0 * sxx - sx * sx;
+        if (s0 < 5 || !(den > 0))
+            return -1;
+        *b = (s0 * sxy - sx * sy) / den;
+        *a = (sy - *b * sx) / s0;
+        float ab[256];
+        int m = 0;
+        double ss = 0;
+        for (int i = 0; i < n; i++)
+            if (use[i]) {
+                double r = y[i] - *a - *b * x[i];
+                ab[m++] = (float)fabs(r);
+                ss += r * r;
+            }
+        *rms = sqrt(ss / (s0 > 2 ? s0 - 2 : 1));
+        *sb = *rms * sqrt(s0 / den);
+        if (round == 2)
+            break;
+        double lim = fmax(3 * 1.4826 * an_median(ab, (size_t)m), 0.3);
+        for (int i = 0; i < n; i++)
+            if (use[i] && fabs(y[i] - *a - *b * x[i]) > lim)
+                use[i] = 0;
+    }
+    return 0;
+}
+
+static void line_init(an_line *l, const an_image *im, const an_pose *p, double u0, double v0,
+                      double du, double dv, double step, int n)
+{
+    memset(l, 0, sizeof *l);
+    l->img = im;
+    l->pose = *p;
+    l->u0 = u0;
+    l->v0 = v0;
+    l->du = du;
+    l->dv = dv;
+    l->pu = -dv;
+    l->pv = du;
+    l->step = step;
+    l->n = n;
+    l->k = 1;
+}
+
+#define EDGE_MAX 128
+
+/* The two long edges along u at the current pose: fitted lines v = a + b u. */
+static int long_edges(const an_image *im, const an_pose *pose, const an_model *m, double *at,
+                      double *bt, double *sbt, double *ab, double *bb, double *sbb, double *buf)
+{
+    double U = 0.5 * (m->insert_u_max - m->insert_u_min), uc = 0.5 * (m->insert_u_max + m->insert_u_min);
+    double Vh = 0.5 * (m->insert_v_max - m->insert_v_min), vc = 0.5 * (m->insert_v_max + m->insert_v_min);
+    double ut[EDGE_MAX], vt[EDGE_MAX], ub[EDGE_MAX], vb[EDGE_MAX];
+    int nt = 0, nb = 0;
+    double span = Vh + 14, step = 0.25;
+    int n = (int)(2 * span / step) + 1;
+    for (double u = uc - 0.75 * U; u <= uc + 0.75 * U + 1e-9 && nt < EDGE_MAX; u += 2.5) {
+        an_line l;
+        line_init(&l, im, pose, u, vc - span, 0, 1, step, n);
+        an_line_offsets(&l, 0.5, 0.5);
+        l.pu = 1;
+        l.pv = 0;
+        if (an_line_sample(&l, buf))
+            continue;
+        double fb = an_mean_range(buf, n, 0, 15), ft = an_mean_range(buf, n, n - 16, n - 1);
+        double it = an_walk_cross(buf, n, n - 1, -1, 0.5 * ft, 1);
+        double ib = an_walk_cross(buf, n, 0, +1, 0.5 * fb, 1);
+        if (!isfinite(it) || !isfinite(ib))
+            continue;
+        double vtop = vc - span + it * step, vbot = vc - span + ib * step;
+        if (!(vtop - vbot > 0.4 * 2 * Vh && vtop - vbot < 2.5 * 2 * Vh))
+            continue;
+        ut[nt] = u;
+        vt[nt++] = vtop;
+        ub[nb] = u;
+        vb[nb++] = vbot;
+    }
+    double r1, r2;
+    if (line_fit(ut, vt, nt, at, bt, sbt, &r1) || line_fit(ub, vb, nb, ab, bb, sbb, &r2))
+        return -1;
+    return 0;
+}
+
+int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const an_model *m,
+                   double rot0, int want_strips, an_insert *ins)
+{
+    memset(ins, 0, sizeof *ins);
+    ins->rot_deg = rot0;
+    int rc = 0;
+    double *buf = NULL, *grid = NULL;
+    buf = malloc(4096 * sizeof *buf);
+    if (!buf) {
+        rc = -1;
+        goto out;
+    }
+    an_pose pose;
+    double rot = rot0, at = NAN, bt = NAN, sbt = NAN, ab = NAN, bb = NAN, sbb = NAN;
+    for (int it = 0; it < 4; it++) {
+        an_pose_make(g, d->xc, d->yc, rot, &pose);
+        if (long_edges(im, &pose, m, &at, &bt, &sbt, &ab, &bb, &sbb, buf)) {
+            sw_strlcpy(ins->reason, "insert not found: no straight long edges", sizeof ins->reason);
+            goto out;
+        }
+        double slope = 0.5 * (bt + bb);
+        rot += atan(slope) * AN_DEG;
+        if (fabs(slope) < 1e-5)
+            break;
+    }
+    an_pose_make(g, d->xc, d->yc, rot, &pose);
+    if (long_edges(im, &pose, m, &at, &bt, &sbt, &ab, &bb, &sbb, buf)) {
+        sw_strlcpy(ins->reason, "insert not found: no straight long edges", sizeof ins->reason);
+        goto out;
+    }
+    rot += atan(0.5 * (bt + bb)) * AN_DEG;
+    an_pose_make(g, d->xc, d->yc, rot, &pose);
+    ins->rot_deg = rot;
+    ins->rot_unc_deg = 0.5 * hypot(sbt, sbb) * AN_DEG;
+    ins->v_top = at;
+    ins->v_bot = ab;
+    double Vh = 0.5 * (at - ab), vc = 0.5 * (at + ab);
+    if (!(Vh > 1.0)) {
+        sw_strlcpy(ins->reason, "insert not found: edges too close", sizeof ins->reason);
+        goto out;
+    }
+    /* Ends: rows inside the plastic (between the strips and beside them); median of the rows. */
+    double U = 0.5 * (m->insert_u_max - m->insert_u_min), uc = 0.5 * (m->insert_u_max + m->insert_u_min);
+    double reach = fmin(U + 25, 0.92 * d->r_mm), step = 0.25;
+    int n = (int)(2 * reach / step) + 1;
+    if (n > 4096)
+        n = 4096, step = 2 * reach / (n - 1);
+    float los[3], his[3];
+    int ne = 0;
+    double fr[3] = {-0.7, 0.0, 0.7};
+    for (int r = 0; r < 3; r++) {
+        an_line l;
+        line_init(&l, im, &pose, uc - reach, vc + fr[r] * Vh, 1, 0, step, n);
+        an_line_offsets(&l, 0.5, 0.5);
+        if (an_line_sample(&l, buf) > n / 10)
+            continue;
+        int i0 = (int)lround(reach / step);
+        double lo = an_walk_cross(buf, n, i0, -1, 0.5 * d->fluid, 0);
+        double hi = an_walk_cross(buf, n, i0, +1, 0.5 * d->fluid, 0);
+        if (isfinite(lo) && isfinite(hi)) {
+            los[ne] = (float)(uc - reach + lo * step);
+            his[ne++] = (float)(uc - reach + hi * step);
+        }
+    }
+    if (ne == 0) {
+        sw_strlcpy(ins->reason, "insert not found: its ends are not visible", sizeof ins->reason);
+        goto out;
+    }
+    ins->u_lo = an_median(los, (size_t)ne);
+    ins->u_hi = an_median(his, (size_t)ne);
+    if (!(ins->u_hi - ins->u_lo > 4 * Vh)) {
+        sw_strlcpy(ins->reason, "insert not found: too short for its width", sizeof ins->reason);
+        goto out;
+    }
+    ins->found = 1;
+    if (!want_strips)
+        goto out;
+    if (m->method == AN_METHOD_SINGLE_WEDGE) {
+        /* The wedge's band holds an edge, not a peak: take it from the model relative to the
+         * found insert (or the insert's middle when the model gives none). */
+        double mc = 0.5 * (m->insert_v_max + m->insert_v_min);
+        if (m->n_ramps >= 1) {
+            ins->strip_v[0] = vc + 0.5 * (m->ramp[0].v_min + m->ramp[0].v_max) - mc;
+            ins->strip_w[0] = m->ramp[0].v_max - m->ramp[0].v_min;
+        } else {
+            ins->strip_v[0] = vc;
+            ins->strip_w[0] = Vh;
+        }
+        ins->n_strips = 1;
+        goto out;
+    }
+    /* Strips: the mean over u of the insert's interior, as a function of v, peaks at each strip. */
+    double ga = ins->u_lo + 3, gb = ins->u_hi - 3, vs = 0.25;
+    int nu = (int)((gb - ga) / 1.0) + 1, nv = (int)((at - ab - 1.0) / vs) + 1;
+    if (nu < 5 || nv < 8 || nv > 4096) {
+        ins->found = 0;
+        sw_strlcpy(ins->reason, "insert not found: interior too small", sizeof ins->reason);
+        goto out;
+    }
+    double A[4096];
+    for (int j = 0; j < nv; j++) {
+        an_line l;
+        line_init(&l, im, &pose, ga, ab + 0.5 + j * vs, 1, 0, 1.0, nu);
+        an_line_sample(&l, buf);
+        A[j] = an_mean_range(buf, nu, 0, nu - 1);
+    }
+    double As[4096];
+    an_smooth(A, nv, 3, As);
+    double floor = INFINITY;
+    for (int j = 0; j < nv; j++)
+        floor = fmin(floor, As[j]);
+    int jc = (int)((vc - ab - 0.5) / vs);
+    int want = m->n_ramps >= 2 ? 2 : 1;
+    ins->n_strips = 0;
+    for (int s = 0; s < want; s++) {
+        int j0 = want == 1 ? 0 : s == 0 ? jc + 2 : 0, j1 = want == 1 ? nv - 1 : s == 0 ? nv - 1 : jc - 2;
+        int jp = -1;
+        for (int j = j0; j <= j1; j++)
+            if (jp < 0 || As[j] > As[jp])
+                jp = j;
+        if (jp < 0 || !(As[jp] - floor > 0.02 * d->fluid) ||
+            !(As[jp] > fmax(As[j0], As[j1]) + 0.01 * d->fluid)) {
+            ins->found = 0;
+            snprintf(ins->reason, sizeof ins->reason, "strip not found: no %s strip in the insert",
+                     want == 1 ? "" : s == 0 ? "top" : "bottom");
+            goto out;
+        }
+        double vpk = ab + 0.5 + jp * vs;
+        /* Extent along u at the peak row, then the across profile over the strip's middle. */
+        double ustep = 0.5;
+        int nu2 = (int)((ins->u_hi - ins->u_lo) / ustep) + 1;
+        if (nu2 > 4096)
+            nu2 = 4096;
+        an_line l;
+        line_init(&l, im, &pose, ins->u_lo, vpk, 1, 0, ustep, nu2);
+        an_line_offsets(&l, 0.75, 0.5);
+        an_line_sample(&l, buf);
+        double sm[4096];
+        an_smooth(buf, nu2, 9, sm);
+        int ip = 0;
+        for (int i = 1; i < nu2; i++)
+            if (sm[i] > sm[ip])
+                ip = i;
+        double half = 0.5 * (sm[ip] + floor);
+        double ia = an_walk_cross(sm, nu2, ip, -1, half, 1), ib = an_walk_cross(sm, nu2, ip, +1, half, 1);
+        if (!isfinite(ia))
+            ia = 0;
+        if (!isfinite(ib))
+            ib = nu2 - 1;
+        double ua = ins->u_lo + ia * ustep, ub = ins->u_lo + ib * ustep, len = ub - ua;
+        double wa = s == 0 && want == 2 ? vc : ab, wb = s == 1 || want == 1 ? (want == 1 ? at : vc) : at;
+        int nvv = (int)((wb - wa) / 0.1) + 1;
+        int nuu = (int)(0.5 * len / 1.0) + 1;
+        if (nvv < 5 || nvv > 4096) {
+            ins->found = 0;
+            sw_strlcpy(ins->reason, "strip not found: no room across the strip", sizeof ins->reason);
+            goto out;
+        }
+        double Bv[4096];
+        for (int j = 0; j < nvv; j++) {
+            an_line lu;
+            line_init(&lu, im, &pose, ua + 0.25 * len, wa + j * 0.1, 1, 0, 1.0, nuu);
+            an_line_sample(&lu, buf);
+            Bv[j] = an_mean_range(buf, nuu, 0, nuu - 1);
+        }
+        double Bs[4096];
+        an_smooth(Bv, nvv, 5, Bs);
+        int kp = 0;
+        double bmin = INFINITY;
+        for (int j = 0; j < nvv; j++) {
+            if (Bs[j] > Bs[kp])
+                kp = j;
+            bmin = fmin(bmin, Bs[j]);
+        }
+        double hb = 0.5 * (Bs[kp] + bmin);
+        double ja = an_walk_cross(Bs, nvv, kp, -1, hb, 1), jb = an_walk_cross(Bs, nvv, kp, +1, hb, 1);
+        double cen, wid;
+        if (isfinite(ja) && isfinite(jb)) {
+            cen = wa + 0.5 * (ja + jb) * 0.1;
+            wid = (jb - ja) * 0.1;
+        } else {
+            cen = vpk;
+            wid = m->ramp[s < m->n_ramps ? s : 0].v_max - m->ramp[s < m->n_ramps ? s : 0].v_min;
+        }
+        ins->strip_v[s] = cen;
+        ins->strip_w[s] = wid;
+        ins->n_strips++;
+    }
+out:
+    free(buf);
+    free(grid);
+    return rc;
+}
+
+/* The half level of a profile whose plateau is P (and whose background beside the strip is B) by
+ * the chosen method, with its derivative with respect to P. frac is 0.5 for FWHM, 0.1 for FWTM. */
+static double level_for(an_half_level how, double P, double B, double sigma, double frac,
+                        double *dldp)
+{
+    switch (how) {
+    case AN_HALF_FLOOR_MODEL:
+        if (sigma > 0) {
+            /* The magnitude of a signal a has mean M(a); the profile shows M(a(u)), so the crossing
+             * of a = frac A_P is where the profile equals M(frac M^-1(P)). */
+            double ap = an_rice_invert(P, sigma), l = an_rice_mean(frac * ap, sigma);
+            double e = 1e-4 * fmax(P, sigma);
+            double ap2 = an_rice_invert(P + e, sigma);
+            *dldp = (an_rice_mean(frac * ap2, sigma) - l) / e;
+            return l;
+        }
+        break;
+    case AN_HALF_BACKGROUND:
+        if (isfinite(B)) {
+            *dldp = frac;
+            return B + frac * (P - B);
+        }
+        return NAN;
+    case AN_HALF_TRUE_ZERO:
+        break;
+    }
+    *dldp = frac;
+    return frac * P;
+}
+
+/* Effective SD of a magnitude sample whose mean is m. */
+static double sd_at(double m, double sigma)
+{
+    if (!(sigma > 0))
+        return NAN;
+    return an_rice_sd(an_rice_invert(m, sigma), sigma);
+}
+
+int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *ins, int s,
+                     double sigma, const an_params *par, an_strip *out)
+{
+    int rc = 0;
+    double *p = NULL, *ps = NULL, *g = NULL;
+    memset(out, 0, sizeof *out);
+    out->length_mm = out->length_unc_mm = out->fwtm_mm = out->centre_u_mm = NAN;
+    out->plateau = out->plateau_sd = out->half_level = out->floor = NAN;
+    out->cross_lo_mm = out->cross_hi_mm = out->plateau_unc = NAN;
+    double step = par->sample_step_mm > 0 ? par->sample_step_mm : 0.1;
+    double span = ins->u_hi - ins->u_lo;
+    if (span / step + 1 > AN_PROFILE_MAX)
+        step = span / (AN_PROFILE_MAX - 1);
+    int n = (int)(span / step) + 1;
+    if (n > AN_PROFILE_MAX)
+        n = AN_PROFILE_MAX;
+    p = malloc((size_t)n * sizeof *p);
+    ps = malloc((size_t)n * sizeof *ps);
+    g = malloc((size_t)n * sizeof *g);
+    if (!p || !ps || !g) {
+        rc = -1;
+        goto out;
+    }
+    an_line l;
+    line_init(&l, im, pose, ins->u_lo, ins->strip_v[s], 1, 0, step, n);
+    double hw = fmin(fmax(0.3 * ins->strip_w[s], 0.5), 3.0);
+    an_line_offsets(&l, hw, 0.5);
+    out->half_width_mm = hw;
+    an_pose_to_px(pose, ins->u_lo, ins->strip_v[s], &out->line0.x, &out->line0.y);
+    an_pose_to_px(pose, ins->u_lo + (n - 1) * step, ins->strip_v[s], &out->line1.x, &out->line1.y);
+    if (an_line_sample(&l, p)) {
+        sw_strlcpy(out->reason, "strip not measurable: its line leaves the image", sizeof out->reason);
+        goto out;
+    }
+    out->profile.n = n;
+    out->profile.start_mm = ins->u_lo;
+    out->profile.step_mm = step;
+    for (int i = 0; i < n; i++)
+        out->profile.v[i] = (float)p[i];
+    int w = (int)(2.0 / step) | 1;
+    an_smooth(p, n, w, ps);
+    int ip = 0;
+    for (int i = 1; i < n; i++)
+        if (ps[i] > ps[ip])
+            ip = i;
+    double pmax = ps[ip];
+    int edge = (int)ceil(1.0 / step); /* samples within 1 mm of an end of the insert */
+    double lo0 = an_walk_cross(ps, n, ip, -1, 0.5 * pmax, 1);
+    double hi0 = an_walk_cross(ps, n, ip, +1, 0.5 * pmax, 1);
+    if (!isfinite(lo0) || !isfinite(hi0) || lo0 < edge || hi0 > n - 1 - edge) {
+        sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
+        goto out;
+    }
+    double c0 = 0.5 * (lo0 + hi0), L0 = (hi0 - lo0) * step;
+    if (!(L0 > 3.0) || !(pmax > 0)) {
+        sw_strlcpy(out->reason, "profile malformed: no strip plateau", sizeof out->reason);
+        goto out;
+    }
+    /* Plateau: a quadratic fitted over the middle 60 % of the strip, evaluated at its centre, so that
+     * neither a noisy maximum nor the rounded top of a smooth profile biases it. */
+    int a0 = (int)floor(c0 - 0.3 * L0 / step), a1 = (int)ceil(c0 + 0.3 * L0 / step);
+    double cq[3];
+    if (an_quad_fit(p, a0, a1, c0, step, cq, 0, g)) {
+        sw_strlcpy(out->reason, "profile malformed: plateau fit failed", sizeof out->reason);
+        goto out;
+    }
+    double P = cq[0], ssP = an_line_weight_ss(&l, a0, a1 - a0 + 1, g), sres = 0;
+    for (int i = a0; i <= a1; i++) {
+        double t = (i - c0) * step, r = p[i] - (cq[0] + cq[1] * t + cq[2] * t * t);
+        sres += r * r;
+    }
+    out->plateau = P;
+    out->plateau_sd = sqrt(sres / (a1 - a0 - 2 > 0 ? a1 - a0 - 2 : 1));
+    double sdP = sd_at(P, sigma);
+    out->plateau_unc = sdP * sqrt(ssP);
+    if (!(P > 0)) {
+        sw_strlcpy(out->reason, "profile malformed: plateau at or below zero", sizeof out->reason);
+        goto out;
+    }
+    /* Background beside the strip (the floor), beyond its tenth-maximum points. */
+    double lo10 = an_walk_cross(ps, n, ip, -1, 0.1 * pmax, 1);
+    double hi10 = an_walk_cross(ps, n, ip, +1, 0.1 * pmax, 1);
+    int mg = (int)(2.0 / step);
+    double bs = 0;
+    int bc = 0;
+    if (isfinite(lo10))
+        for (int i = 2 * edge; i < (int)lo10 - mg; i++)
+            bs += p[i], bc++;
+    if (isfinite(hi10))
+        for (int i = (int)hi10 + mg; i < n - 2 * edge; i++)
+            bs += p[i], bc++;
+    double B = bc >= 10 ? bs / bc : NAN;
+    out->floor = B;
+    double dldp;
+    double lvl = level_for(par->half_level, P, B, sigma, 0.5, &dldp);
+    if (!isfinite(lvl)) {
+        sw_strlcpy(out->reason, "profile malformed: no background beside the strip", sizeof out->reason);
+        goto out;
+    }
+    out->half_level = lvl;
+    /* Edge windows: the 25-75 % rise on each side sets the fit's half width. */
+    double r25 = an_walk_cross(ps, n, ip, -1, 0.25 * pmax, 1), r75 = an_walk_cross(ps, n, ip, -1, 0.75 * pmax, 1);
+    double s25 = an_walk_cross(ps, n, ip, +1, 0.25 * pmax, 1), s75 = an_walk_cross(ps, n, ip, +1, 0.75 * pmax, 1);
+    double rise = 0.5 * ((isfinite(r25) && isfinite(r75) ? r75 - r25 : 4 / step) +
+                         (isfinite(s25) && isfinite(s75) ? s25 - s75 : 4 / step)) * step;
+    double h = fmin(fmax(0.6 * rise, 1.0), 0.2 * L0);
+    an_xing xl, xh;
+    double glo = an_walk_cross(ps, n, ip, -1, lvl, 1), ghi = an_walk_cross(ps, n, ip, +1, lvl, 1);
+    if (!isfinite(glo) || !isfinite(ghi)) {
+        sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
+        goto out;
+    }
+    if (an_xing_find(&l, p, n, glo, lvl, h, +1, &xl) || an_xing_find(&l, p, n, ghi, lvl, h, -1, &xh)) {
+        sw_strlcpy(out->reason, "profile malformed: no clean half-level crossing", sizeof out->reason);
+        goto out;
+    }
+    if (xl.i0 < edge || xh.i1 > n - 1 - edge) {
+        sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
+        goto out;
+    }
+    if (!(xh.idx > xl.idx)) {
+        sw_strlcpy(out->reason, "profile malformed: crossings out of order", sizeof out->reason);
+        goto out;
+    }
+    out->cross_lo_mm = ins->u_lo + xl.idx * step;
+    out->cross_hi_mm = ins->u_lo + xh.idx * step;
+    out->length_mm = (xh.idx - xl.idx) * step;
+    out->centre_u_mm = 0.5 * (out->cross_lo_mm + out->cross_hi_mm);
+    an_pose_to_px(pose, out->cross_lo_mm, ins->strip_v[s], &out->cross_lo.x, &out->cross_lo.y);
+    an_pose_to_px(pose, out->cross_hi_mm, ins->strip_v[s], &out->cross_hi.x, &out->cross_hi.y);
+    /* Uncertainty: each crossing's own noise over its slope, plus the level's (shared) noise. */
+    double sdl = sd_at(lvl, sigma);
+    double vlo = sdl * sdl * xl.ss / (xl.slope * xl.slope), vhi = sdl * sdl * xh.ss / (xh.slope * xh.slope);
+    double vlev = dldp * dldp * sdP * sdP * ssP;
+    if (par->half_level == AN_HALF_BACKGROUND)
+        vlev += 0.25 * sdl * sdl / (bc > 0 ? bc * step : 1); /* about one independent sample per mm */
+    double k = 1 / fabs(xl.slope) + 1 / fabs(xh.slope);
+    out->length_unc_mm = sqrt(vlo + vhi + vlev * k * k);
+    out->centre_unc_mm = 0.5 * sqrt(vlo + vhi + vlev * pow(1 / xl.slope + 1 / xh.slope, 2));
+    /* FWTM on the same profile (NAN when the tenth-level points are not both inside). */
+    double dl10;
+    double l10 = level_for(par->half_level, P, B, sigma, 0.1, &dl10);
+    double t0 = an_walk_cross(ps, n, ip, -1, l10, 1), t1 = an_walk_cross(ps, n, ip, +1, l10, 1);
+    an_xing tl, th;
+    if (isfinite(l10) && isfinite(t0) && isfinite(t1) && !an_xing_find(&l, p, n, t0, l10, h, +1, &tl) &&
+        !an_xing_find(&l, p, n, t1, l10, h, -1, &th) && tl.i0 >= edge && th.i1 <= n - 1 - edge)
+        out->fwtm_mm = (th.idx - tl.idx) * step;
+    out->measured = 1;
+out:
+    free(p);
+    free(ps);
+    free(g);
+    return rc;
+}
+
+/* NEMA MS 5 single wedge: along u in the wedge's band the signal is the integral of the slice
+ * profile (an edge response); its derivative is the profile stretched by 1 / tan(angle). The
+ * derivative is taken by a local quadratic (Savitzky-Golay) fit over +-1 mm, and its FWHM found with
+ * the same crossing fits as a strip. The uncertainty uses the derivative's own scatter measured away
+ * from the edge, with neighbouring samples treated as independent over 1 mm. */
+int an_wedge_edge_measure(const an_image *im, const an_pose *pose, const an_insert *ins,
+                          double sigma, const an_params *par, an_strip *out)
+{
+    int rc = 0;
+    double *p = NULL, *dp = NULL, *ds = NULL;
+    memset(out, 0, sizeof *out);
+    out->length_mm = out->length_unc_mm = out->fwtm_mm = out->centre_u_mm = NAN;
+    out->plateau = out->plateau_sd = out->half_level = out->floor = NAN;
+    out->cross_lo_mm = out->cross_hi_mm = out->plateau_unc = out->centre_unc_mm = NAN;
+    (void)sigma;
+    double step = par->sample_step_mm > 0 ? par->sample_step_mm : 0.1;
+    double span = ins->u_hi - ins->u_lo - 2.0;
+    if (span / step + 1 > AN_PROFILE_MAX)
+        step = span / (AN_PROFILE_MAX - 1);
+    int n = (int)(span / step) + 1;
+    if (n > AN_PROFILE_MAX)
+        n = AN_PROFILE_MAX;
+    p = malloc((size_t)n * sizeof *p);
+    dp = malloc((size_t)n * sizeof *dp);
+    ds = malloc((size_t)n * sizeof *ds);
+    if (!p || !dp || !ds) {
+        rc = -1;
+        goto out;
+    }
+    an_line l;
+    line_init(&l, im, pose, ins->u_lo + 1.0, ins->strip_v[0], 1, 0, step, n);
+    double hw = fmin(fmax(0.3 * ins->strip_w[0], 0.5), 3.0);
+    an_line_offsets(&l, hw, 0.5);
+    out->half_width_mm = hw;
+    an_pose_to_px(pose, l.u0, l.v0, &out->line0.x, &out->line0.y);
+    an_pose_to_px(pose, l.u0 + (n - 1) * step, l.v0, &out->line1.x, &out->line1.y);
+    if (an_line_sample(&l, p)) {
+        sw_strlcpy(out->reason, "wedge not measurable: its line leaves the image", sizeof out->reason);
+        goto out;
+    }
+    out->profile.n = n;
+    out->profile.start_mm = l.u0;
+    out->profile.step_mm = step;
+    for (int i = 0; i < n; i++)
+        out->profile.v[i] = (float)p[i];
+    int hn = (int)lround(1.0 / step);
+    if (hn < 2)
+        hn = 2;
+    for (int i = 0; i < n; i++) {
+        double c[3];
+        int i0 = i - hn < 0 ? 0 : i - hn, i1 = i + hn > n - 1 ? n - 1 : i + hn;
+        dp[i] = an_quad_fit(p, i0, i1, i, step, c, 0, NULL) ? NAN : c[1];
+    }
+    /* The edge may rise either way along u; use the derivative's sign at its largest magnitude. */
+    int ip = 0;
+    for (int i = 1; i < n; i++)
+        if (fabs(dp[i]) > fabs(dp[ip]))
+            ip = i;
+    double sgn = dp[ip] >= 0 ? 1 : -1;
+    for (int i = 0; i < n; i++)
+        dp[i] *= sgn;
+    an_smooth(dp, n, (int)(1.0 / step) | 1, ds);
+    double pk = ds[ip];
+    double lo0 = an_walk_cross(ds, n, ip, -1, 0.5 * pk, 1), hi0 = an_walk_cross(ds, n, ip, +1, 0.5 * pk, 1);
+    int edge = (int)ceil(1.0 / step);
+    if (!isfinite(lo0) || !isfinite(hi0) || lo0 < edge || hi0 > n - 1 - edge) {
+        sw_strlcpy(out->reason, "wedge edge runs into the end of the insert", sizeof out->reason);
+        goto out;
+    }
+    double c0 = 0.5 * (lo0 + hi0), L0 = (hi0 - lo0) * step, cq[3];
+    int a0 = (int)floor(c0 - 0.3 * L0 / step), a1 = (int)ceil(c0 + 0.3 * L0 / step);
+    if (a1 - a0 < 4 || an_quad_fit(dp, a0, a1, c0, step, cq, 0, NULL) || !(cq[0] > 0)) {
+        sw_strlcpy(out->reason, "profile malformed: no peak in the wedge's derivative", sizeof out->reason);
+        goto out;
+    }
+    double P = cq[0], lvl = 0.5 * P;
+    out->plateau = P;
+    out->half_level = lvl;
+    out->floor = 0;
+    double h = fmin(fmax(0.25 * L0, 1.0), 5.0);
+    an_xing xl, xh;
+    if (an_xing_find(NULL, dp, n, lo0, lvl, h / step, +1, &xl) ||
+        an_xing_find(NULL, dp, n, hi0, lvl, h / step, -1, &xh) || !(xh.idx > xl.idx)) {
+        sw_strlcpy(out->reason, "profile malformed: no clean half-level crossing", sizeof out->reason);
+        goto out;
+    }
+    out->length_mm = (xh.idx - xl.idx) * step;
+    out->cross_lo_mm = l.u0 + xl.idx * step;
+    out->cross_hi_mm = l.u0 + xh.idx * step;
+    out->centre_u_mm = 0.5 * (out->cross_lo_mm + out->cross_hi_mm);
+    an_pose_to_px(pose, out->cross_lo_mm, l.v0, &out->cross_lo.x, &out->cross_lo.y);
+    an_pose_to_px(pose, out->cross_hi_mm, l.v0, &out->cross_hi.x, &out->cross_hi.y);
+    /* Scatter of the derivative away from the edge (beyond three widths on either side). */
+    double ss = 0;
+    int cnt = 0;
+    for (int i = 0; i < n; i++)
+        if (fabs(i - c0) * step > 1.5 * L0 + 3 && isfinite(dp[i])) {
+            ss += dp[i] * dp[i];
+            cnt++;
+        }
+    if (cnt > 20) {
+        double sd = sqrt(ss / cnt), nind = 2.0 * h; /* about one independent sample per mm */
+        double sx = sd / sqrt(nind);
+        double sl = xl.slope / step, sh = xh.slope / step; /* per mm */
+        double vlo = sx * sx / (sl * sl), vhi = sx * sx / (sh * sh);
+        double vp = sd * sd / fmax(1.0, 0.6 * L0);
+        double k = 1 / fabs(sl) + 1 / fabs(sh);
+        out->length_unc_mm = sqrt(vlo + vhi + 0.25 * vp * k * k);
+        out->centre_unc_mm = 0.5 * sqrt(vlo + vhi);
+        out->plateau_unc = sqrt(vp);
+    }
+    double t0 = an_walk_cross(ds, n, ip, -1, 0.1 * P, 1), t1 = an_walk_cross(ds, n, ip, +1, 0.1 * P, 1);
+    if (isfinite(t0) && isfinite(t1))
+        out->fwtm_mm = (t1 - t0) * step;
+    out->measured = 1;
+out:
+    free(p);
+    free(dp);
+    free(ds);
+    return rc;
+}

@@ -1,0 +1,255 @@
+/* wedges.c: the two dark bars under the bridge on a wedge slice: the bridge's lower edge (the bars'
+ * top), each bar's place across, and each bar's end at the 50 % level of its own edge. */
+#include <stdio.h> /* snprintf only: no I/O here */
+#include <stdlib.h>
+#include <string.h>
+
+#include "an_int.h"
+
+static void line_set(an_line *l, const an_image *im, const an_pose *p, double u0, double v0,
+                     double du, double dv, double step, int n)
+{
+    memset(l, 0, sizeof *l);
+    l->img = im;
+    l->pose = *p;
+    l->u0 = u0;
+    l->v0 = v0;
+    l->du = du;
+    l->dv = dv;
+    l->pu = -dv;
+    l->pv = du;
+    l->step = step;
+    l->n = n;
+    l->k = 1;
+}
+
+static double sd_at(double m, double sigma)
+{
+    if (!(sigma > 0))
+        return NAN;
+    return an_rice_sd(an_rice_invert(m, sigma), sigma);
+}
+
+/* Variance gain of the mean of samples i0..i1 of l. */
+static double mean_ss(const an_line *l, int i0, int i1, double *g)
+{
+    if (i0 < 0)
+        i0 = 0;
+    if (i1 > l->n - 1)
+        i1 = l->n - 1;
+    if (i1 < i0)
+        return NAN;
+    for (int i = i0; i <= i1; i++)
+        g[i - i0] = 1.0 / (i1 - i0 + 1);
+    return an_line_weight_ss(l, i0, i1 - i0 + 1, g);
+}
+
+#define NMAX 1024
+
+/* The bridge's lower edge at column u: walking up from the fluid under the bridge. Returns v or NAN;
+ * *var its variance. */
+static double bridge_edge(const an_image *im, const an_pose *pose, const an_model *m, double u,
+                          double hw, double sigma, double *var, double *buf, double *g)
+{
+    double v0 = m->bar_top_v - 25, v1 = m->bar_top_v + 0.5 * (m->bridge_v_max - m->bar_top_v);
+    double step = 0.1;
+    int n = (int)((v1 - v0) / step) + 1;
+    if (n > NMAX || n < 50)
+        return NAN;
+    an_line l;
+    line_set(&l, im, pose, u, v0, 0, 1, step, n);
+    an_line_offsets(&l, hw, 0.5);
+    if (an_line_sample(&l, buf))
+        return NAN;
+    double sm[NMAX];
+    an_smooth(buf, n, 11, sm);
+    double fl = an_mean_range(buf, n, 0, (int)(10 / step)), dk = an_mean_range(buf, n, n - (int)(3 / step), n - 1);
+    if (!(fl - dk > 0.3 * fl))
+        return NAN;
+    double lev = 0.5 * (fl + dk);
+    double gi = an_walk_cross(sm, n, 0, +1, lev, 1);
+    if (!isfinite(gi))
+        return NAN;
+    /* Refine the levels around the found edge, then the crossing. */
+    int e = (int)gi;
+    fl = an_mean_range(buf, n, e - (int)(10 / step), e - (int)(3 / step));
+    dk = an_mean_range(buf, n, e + (int)(2 / step), n - 1);
+    lev = 0.5 * (fl + dk);
+    an_xing x;
+    if (an_xing_find(&l, buf, n, gi, lev, 1.0, -1, &x))
+        return NAN;
+    double sd = sd_at(lev, sigma);
+    *var = sd * sd * x.ss / (x.slope * x.slope);
+    (void)g;
+    return v0 + x.idx * step;
+}
+
+/* One bar's end along -v at column u below the top; fills b. */
+static int bar_end(const an_image *im, const an_pose *pose, double u, double hw, double top,
+                   double reach, double sigma, an_bar *b, double *buf, double *g, double *var_end)
+{
+    double step = 0.1;
+    int n = (int)(reach / step) + 1;
+    if (n > NMAX)
+        n = NMAX, step = reach / (n - 1);
+    an_line l;
+    line_set(&l, im, pose, u, top - 1.0, 0, -1, step, n);
+    an_line_offsets(&l, hw, 0.5);
+    if (an_line_sample(&l, buf))
+        return -1;
+    b->profile.n = n;
+    b->profile.start_mm = 1.0;
+    b->profile.step_mm = step;
+    for (int i = 0; i < n; i++)
+        b->profile.v[i] = (float)buf[i];
+    double sm[NMAX];
+    an_smooth(buf, n, (int)(1.0 / step) | 1, sm);
+    double dk = an_mean_range(buf, n, 0, (int)(4 / step)), fl = an_mean_range(buf, n, n - (int)(8 / step), n - 1);
+    if (!(fl - dk > 0.3 * fl))
+        return -1;
+    double lev = 0.5 * (dk + fl);
+    double e0 = an_walk_cross(sm, n, 0, +1, lev, 0);
+    if (!isfinite(e0))
+        return -1;
+    double r25 = an_walk_cross(sm, n, 0, +1, dk + 0.25 * (fl - dk), 0);
+    double r75 = an_walk_cross(sm, n, 0, +1, dk + 0.75 * (fl - dk), 0);
+    double rise = isfinite(r25) && isfinite(r75) ? (r75 - r25) * step : 3.0;
+    int ie = (int)e0, mg = (int)((1.5 * rise + 1.0) / step);
+    int d0 = 0, d1 = ie - mg, f0 = ie + mg, f1 = ie + mg + (int)(8 / step);
+    if (d1 - d0 < (int)(1 / step))
+        d1 = d0 + (int)(1 / step);
+    if (f1 > n - 1)
+        f1 = n - 1;
+    if (f1 - f0 < (int)(2 / step))
+        return -1;
+    dk = an_mean_range(buf, n, d0, d1);
+    fl = an_mean_range(buf, n, f0, f1);
+    lev = 0.5 * (dk + fl);
+    double gi = an_walk_cross(sm, n, 0, +1, lev, 0);
+    double h = fmin(fmax(0.6 * rise, 1.0), 4.0);
+    an_xing x;
+    if (!isfinite(gi) || an_xing_find(&l, buf, n, gi, lev, h, +1, &x))
+        return -1;
+    double vend = top - 1.0 - x.idx * step;
+    double sdl = sd_at(lev, sigma), sdd = sd_at(dk, sigma), sdf = sd_at(fl, sigma);
+    double vlev = 0.25 * (sdd * sdd * mean_ss(&l, d0, d1, g) + sdf * sdf * mean_ss(&l, f0, f1, g));
+    *var_end = (sdl * sdl * x.ss + vlev) / (x.slope * x.slope);
+    b->level_lo = dk;
+    b->level_hi = fl;
+    an_pose_to_px(pose, u, vend, &b->end.x, &b->end.y);
+    b->length_mm = top - vend;
+    return 0;
+}
+
+int an_bars_measure(const an_image *im, const an_pose *pose, const an_model *m, double sigma,
+                    double nominal_mm, an_position *out, double *v_end_mm)
+{
+    int rc = 0;
+    double *buf = malloc(NMAX * sizeof *buf), *g = malloc(NMAX * sizeof *g);
+    an_bar *bars[2] = {&out->left, &out->right};
+    for (int i = 0; i < 2; i++) {
+        memset(bars[i], 0, sizeof *bars[i]);
+        bars[i]->length_mm = bars[i]->unc_mm = bars[i]->level_hi = bars[i]->level_lo = NAN;
+    }
+    *v_end_mm = NAN;
+    if (!buf || !g) {
+        rc = -1;
+        goto out;
+    }
+    /* Bar tops: the bridge's lower edge on both sides, outside the bars. */
+    double uo[2], vt[2], vv[2];
+    uo[0] = 0.5 * (m->bridge_u_min + m->bar_u_min[0]);
+    uo[1] = 0.5 * (m->bridge_u_max + m->bar_u_max[1]);
+    for (int s = 0; s < 2; s++) {
+        double hw = fmax(0.5, 0.25 * fabs(m->bridge_u_max - m->bar_u_max[1]));
+        vt[s] = bridge_edge(im, pose, m, uo[s], hw, sigma, &vv[s], buf, g);
+        if (!isfinite(vt[s])) {
+            sw_strlcpy(out->reason, "bridge not found: no lower edge beside the bars", sizeof out->reason);
+            goto out;
+        }
+    }
+    double top_mid = 0.5 * (vt[0] + vt[1]);
+    /* Bars across: dark runs under the bridge, 4 mm below its edge. */
+    double ua = m->bridge_u_min, ub = m->bridge_u_max, step = 0.1;
+    int n = (int)((ub - ua) / step) + 1;
+    if (n > NMAX) {
+        sw_strlcpy(out->reason, "bars not found: bridge too wide", sizeof out->reason);
+        goto out;
+    }
+    an_line l;
+    line_set(&l, im, pose, ua, top_mid - 4.0, 1, 0, step, n);
+    an_line_offsets(&l, 1.0, 0.5);
+    if (an_line_sample(&l, buf)) {
+        sw_strlcpy(out->reason, "bars not found: outside the image", sizeof out->reason);
+        goto out;
+    }
+    double sm[NMAX];
+    an_smooth(buf, n, 5, sm);
+    double fl = 0.5 * (an_mean_range(buf, n, 0, (int)(3 / step)) + an_mean_range(buf, n, n - 1 - (int)(3 / step), n - 1));
+    double dk = INFINITY;
+    for (int i = 0; i < n; i++)
+        dk = fmin(dk, sm[i]);
+    double lev = 0.5 * (fl + dk);
+    int imid = (int)((0.5 * (m->bar_u_max[0] + m->bar_u_min[1]) - ua) / step);
+    double outer[2], inner[2];
+    outer[0] = an_walk_cross(sm, n, 0, +1, lev, 1);
+    outer[1] = an_walk_cross(sm, n, n - 1, -1, lev, 1);
+    /* The gap between the bars: its brightest sample, if it rises above the level. */
+    int gs = imid - (int)(2 / step), ge = imid + (int)(2 / step), gm = imid;
+    for (int i = gs; i <= ge; i++)
+        if (i >= 0 && i < n && sm[i] > sm[gm])
+            gm = i;
+    if (sm[gm] > lev) {
+        inner[0] = an_walk_cross(sm, n, gm, -1, lev, 1);
+        inner[1] = an_walk_cross(sm, n, gm, +1, lev, 1);
+    } else {
+        inner[0] = inner[1] = gm;
+    }
+    double uc[2], wid[2];
+    for (int s = 0; s < 2; s++) {
+        if (!isfinite(outer[s]) || !isfinite(inner[s])) {
+            snprintf(out->reason, sizeof out->reason, "bars not found: no %s bar under the bridge",
+                     s ? "right" : "left");
+            goto out;
+        }
+        uc[s] = ua + 0.5 * (outer[s] + inner[s]) * step;
+        wid[s] = fabs(outer[s] - inner[s]) * step;
+        if (!(wid[s] > 1.0)) {
+            snprintf(out->reason, sizeof out->reason, "bars not found: %s bar too narrow",
+                     s ? "right" : "left");
+            goto out;
+        }
+    }
+    /* Ends: each bar's own edge; the length is taken from the bridge line at the bar's column, so a
+     * small residual rotation cancels. */
+    double var_end[2], var_top[2], reach = m->bar_len0_mm + 3 * nominal_mm + 20;
+    for (int s = 0; s < 2; s++) {
+        double f = (uc[s] - uo[0]) / (uo[1] - uo[0]);
+        double top = vt[0] + f * (vt[1] - vt[0]);
+        var_top[s] = (1 - f) * (1 - f) * vv[0] + f * f * vv[1];
+        double hw = fmax(0.5, 0.3 * wid[s]);
+        an_pose_to_px(pose, uc[s], top, &bars[s]->top.x, &bars[s]->top.y);
+        if (bar_end(im, pose, uc[s], hw, top, reach, sigma, bars[s], buf, g, &var_end[s])) {
+            snprintf(out->reason, sizeof out->reason, "bar end not found: %s bar", s ? "right" : "left");
+            goto out;
+        }
+        bars[s]->unc_mm = sqrt(var_end[s] + var_top[s]);
+        bars[s]->measured = 1;
+    }
+    out->bar_difference_mm = out->right.length_mm - out->left.length_mm;
+    out->displacement_mm = -0.5 * out->bar_difference_mm;
+    /* The two tops share the bridge line, so their noise enters the difference through the slope. */
+    double ft = (uc[1] - uc[0]) / (uo[1] - uo[0]);
+    out->uncertainty_mm = sqrt(var_end[0] + var_end[1] + ft * ft * (vv[0] + vv[1]));
+    {
+        double u, v0, v1;
+        an_pose_to_ph(pose, out->left.end.x, out->left.end.y, &u, &v0);
+        an_pose_to_ph(pose, out->right.end.x, out->right.end.y, &u, &v1);
+        *v_end_mm = 0.5 * (v0 + v1);
+    }
+    out->measured = 1;
+out:
+    free(buf);
+    free(g);
+    return rc;
+}
