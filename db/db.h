@@ -82,17 +82,18 @@ typedef int (*db_scanner_cb)(void *ctx, const db_scanner_rec *r);
 sw_status db_scanners_each(db *d, db_scanner_cb cb, void *ctx, sw_error *err);
 
 /* ---- series and their life cycle ----
+ * Every move is made by db_series_set_state(id, from, to, reason); the new series by
+ * db_series_upsert.
  *
- *   db_series_upsert                db_series_set_state
- *   ----------------> collecting ------------------------> complete (all images x echoes arrived)
- *                       |   ^    \                             |
- *   db_series_set_state |   |     \ db_series_set_state        | db_series_set_state
- *     (quiet period)    v   |      `--------------------.      v
- *                      quiet -- db_series_set_state --> measured -- db_series_set_state --> stored
- *                        \         (late images complete it:   ^
- *                         \          quiet -> complete)        | db_series_set_state
- *                          `- any of collecting, quiet,        |  (a re-analysis that succeeds)
- *                             complete, measured ---------> failed (with a reason)
+ *   db_series_upsert
+ *   ----------------> collecting ---(all images x echoes arrived)---> complete
+ *                       |    ^                                     ^     |
+ *       (quiet period)  |    | (a late image)                      |     |
+ *                       v    |                                     |     v
+ *                       quiet ---(late images complete it)---------'   measured ----> stored
+ *                         |                                              ^   ^
+ *                         `------------(measured as it is)---------------'   |
+ *   collecting | quiet | complete | measured --(a reason)--> failed --(re-analysis)--'
  *
  * Legal: collecting -> complete | quiet | failed; quiet -> collecting | complete | measured | failed;
  * complete -> measured | failed; measured -> stored | failed; failed -> measured. stored is final:

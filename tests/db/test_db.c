@@ -937,6 +937,24 @@ Test(db, a_fault_anywhere_in_a_series_leaves_no_partial_rows)
     db_close(d);
 }
 
+/* A commit that fails rolls back by itself: the caller finds no transaction and no rows. */
+Test(db, a_failed_commit_rolls_back)
+{
+    db *d = open_rw();
+    int64_t id = 0;
+    sw_error e;
+    cr_assert_eq(db_begin(d, NULL), SW_OK);
+    cr_assert_eq(db_scanner_upsert(d, &SCANNER1, &id, NULL), SW_OK);
+    d->fault_at = d->steps + 1; /* the COMMIT itself */
+    sw_error_clear(&e);
+    cr_assert_eq(db_commit(d, &e), SW_EIO);
+    cr_assert(strstr(e.msg, "injected fault"), "%s", e.msg);
+    cr_assert(!db_in_transaction(d));
+    cr_assert_eq(count(d, "SELECT count(*) FROM scanners"), 0);
+    cr_assert_eq(db_commit(d, NULL), SW_EINVAL, "nothing left to commit");
+    db_close(d);
+}
+
 /* Inside the caller's transaction a failed call undoes only itself. */
 Test(db, a_failed_call_in_a_transaction_undoes_only_itself)
 {
@@ -953,9 +971,21 @@ Test(db, a_failed_call_in_a_transaction_undoes_only_itself)
         cr_assert_eq(count(d, "SELECT count(*) FROM files"), 1, "step %ld", n);
     }
     d->fault_at = 0;
+    /* The mechanism itself: a group that wrote and then failed is undone, the transaction stays. */
+    cr_assert_eq(db_atomic_begin(d, NULL), SW_OK);
+    cr_assert_eq(sqlite3_exec(d->sql, "INSERT INTO meta VALUES ('x', '1', 'now')", NULL, NULL,
+                              NULL), SQLITE_OK);
+    cr_assert_eq(db_atomic_end(d, SW_EIO, NULL), SW_EIO);
+    cr_assert(db_in_transaction(d));
+    cr_assert_eq(count(d, "SELECT count(*) FROM meta WHERE key = 'x'"), 0);
+    cr_assert_eq(db_atomic_begin(d, NULL), SW_OK);
+    cr_assert_eq(sqlite3_exec(d->sql, "INSERT INTO meta VALUES ('y', '1', 'now')", NULL, NULL,
+                              NULL), SQLITE_OK);
+    cr_assert_eq(db_atomic_end(d, SW_OK, NULL), SW_OK);
     cr_assert_eq(db_commit(d, NULL), SW_OK);
     cr_assert_eq(count(d, "SELECT count(*) FROM files"), 1);
     cr_assert_eq(count(d, "SELECT count(*) FROM files WHERE path = 'a.dcm'"), 1);
+    cr_assert_eq(count(d, "SELECT count(*) FROM meta WHERE key = 'y'"), 1);
     db_close(d);
 }
 
