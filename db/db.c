@@ -10,9 +10,9 @@
 
 #include "dbint.h"
 
-/* The statement cache: one text per db_stmt_id, prepared on first use with SQLITE_PREPARE_PERSISTENT.
- * Selects that feed callbacks are here too; db_stmt_iter gives a fresh copy when the cached one is
- * in use by an outer iteration on the same handle. */
+/* The statement cache: one text per db_stmt_id, prepared on first use with
+ * SQLITE_PREPARE_PERSISTENT. Selects that feed callbacks are here too; db_stmt_iter gives a fresh
+ * copy when the cached one is in use by an outer iteration on the same handle. */
 static const char *const SQL[ST_COUNT] = {
     [ST_BEGIN] = "BEGIN IMMEDIATE",
     [ST_COMMIT] = "COMMIT",
@@ -184,8 +184,8 @@ sw_status db_stmt(db *d, db_stmt_id id, sqlite3_stmt **out, sw_error *err)
     if ((unsigned)id >= ST_COUNT || !SQL[id])
         return sw_error_set(err, SW_EINVAL, "db: %s: no statement %d", d->path, (int)id);
     if (!d->stmt[id]) {
-        int rc = sqlite3_prepare_v3(d->sql, SQL[id], -1, SQLITE_PREPARE_PERSISTENT, &d->stmt[id],
-                                    NULL);
+        int rc =
+            sqlite3_prepare_v3(d->sql, SQL[id], -1, SQLITE_PREPARE_PERSISTENT, &d->stmt[id], NULL);
         if (rc != SQLITE_OK) {
             d->stmt[id] = NULL;
             return db_sqlerr(d, rc, err);
@@ -482,8 +482,8 @@ sw_status db_open_ex(const char *path, int flags, const db_open_opts *o, db **ou
     if (!path || !*path || !out)
         return sw_error_set(err, SW_EINVAL, "db: no path given");
     int ro = (flags & DB_OPEN_RO) != 0, rw = (flags & DB_OPEN_RW) != 0;
-    if (ro == rw || (ro && (flags & DB_OPEN_CREATE)) || (flags & ~(DB_OPEN_RO | DB_OPEN_RW |
-                                                                    DB_OPEN_CREATE)))
+    if (ro == rw || (ro && (flags & DB_OPEN_CREATE)) ||
+        (flags & ~(DB_OPEN_RO | DB_OPEN_RW | DB_OPEN_CREATE)))
         return sw_error_set(err, SW_EINVAL, "db: %s: open needs one of read-only or read-write",
                             path);
     if (!(flags & DB_OPEN_CREATE) && stat(path, &sb) != 0) {
@@ -618,8 +618,8 @@ sw_status db_meta_set(db *d, const char *key, const char *value, sw_error *err)
 
 /* ---- names ---- */
 
-static const char *const SERIES_STATE[DB_SERIES_NSTATES] = {
-    "collecting", "complete", "quiet", "measured", "stored", "failed"};
+static const char *const SERIES_STATE[DB_SERIES_NSTATES] = {"collecting", "complete", "quiet",
+                                                            "measured",   "stored",   "failed"};
 static const char *const FILE_STATE[DB_FILE_NSTATES] = {"seen",   "parsed",      "measured",
                                                         "stored", "quarantined", "ignored"};
 static const char *const VERDICT[DB_NVERDICTS] = {"pass", "warn", "fail", "unmeasurable", "info"};

@@ -18,16 +18,16 @@ typedef struct db db;
 
 /* ---- opening ----
  * DB_OPEN_RW opens for writing and brings the schema up to DB_SCHEMA_VERSION (forward migrations,
- * all pending steps in one transaction); DB_OPEN_CREATE also creates a missing file. DB_OPEN_RO opens
- * read-only (SQLITE_OPEN_READONLY): readers see committed rows while a writer works (WAL); the
- * schema must already be current. */
+ * all pending steps in one transaction); DB_OPEN_CREATE also creates a missing file. DB_OPEN_RO
+ * opens read-only (SQLITE_OPEN_READONLY): readers see committed rows while a writer works (WAL);
+ * the schema must already be current. */
 enum { DB_OPEN_RO = 1, DB_OPEN_RW = 2, DB_OPEN_CREATE = 4 };
 
 /* Opens path. On success *out is a new handle the caller closes with db_close; on failure *out is
- * NULL, nothing was created or changed (a failed migration rolls back whole), and err names the file
- * and the reason ("db: /x/y.sqlite: database is locked"). SQLITE_BUSY maps to SW_EBUSY (retry later);
- * a missing file without DB_OPEN_CREATE to SW_ENOTFOUND; a file that is not a slicewarden database,
- * or a schema newer than this program, to SW_EFORMAT / SW_EUNSUPPORTED. */
+ * NULL, nothing was created or changed (a failed migration rolls back whole), and err names the
+ * file and the reason ("db: /x/y.sqlite: database is locked"). SQLITE_BUSY maps to SW_EBUSY (retry
+ * later); a missing file without DB_OPEN_CREATE to SW_ENOTFOUND; a file that is not a slicewarden
+ * database, or a schema newer than this program, to SW_EFORMAT / SW_EUNSUPPORTED. */
 sw_status db_open(const char *path, int flags, db **out, sw_error *err);
 /* Finalizes the cached statements and closes; an open transaction is rolled back. Accepts NULL. */
 void db_close(db *d);
@@ -60,9 +60,9 @@ typedef struct db_scanner_info {
     const char *station_name;  /* StationName */
     const char *device_serial; /* DeviceSerialNumber */
     const char *manufacturer;
-    const char *model;         /* ManufacturerModelName */
-    const char *institution;   /* InstitutionName */
-    const char *site_alias;    /* the site's own name for it (config); NULL or "" keeps the stored one */
+    const char *model;       /* ManufacturerModelName */
+    const char *institution; /* InstitutionName */
+    const char *site_alias;  /* the site's own name (config); NULL or "" keeps the stored one */
 } db_scanner_info;
 
 /* Finds or creates the scanner; refreshes last_seen, and manufacturer, model, institution and alias
@@ -76,8 +76,8 @@ typedef struct db_scanner_rec {
 } db_scanner_rec;
 
 /* Callbacks receive records whose strings stay valid during the call only; they return 0 to go on,
- * anything else to stop (the iteration then returns SW_OK). They may call any db_ function on the same
- * handle, including writes. */
+ * anything else to stop (the iteration then returns SW_OK). They may call any db_ function on the
+ * same handle, including writes. */
 typedef int (*db_scanner_cb)(void *ctx, const db_scanner_rec *r);
 sw_status db_scanners_each(db *d, db_scanner_cb cb, void *ctx, sw_error *err);
 
@@ -95,10 +95,10 @@ sw_status db_scanners_each(db *d, db_scanner_cb cb, void *ctx, sw_error *err);
  *                         `------------(measured as it is)---------------'   |
  *   collecting | quiet | complete | measured --(a reason)--> failed --(re-analysis)--'
  *
- * Legal: collecting -> complete | quiet | failed; quiet -> collecting | complete | measured | failed;
- * complete -> measured | failed; measured -> stored | failed; failed -> measured. stored is final:
- * a re-analysis adds a run (db_run_begin) and never changes or overwrites what is stored. A trigger
- * in the database enforces the same table (series_transitions). */
+ * Legal: collecting -> complete | quiet | failed; quiet -> collecting | complete | measured |
+ * failed; complete -> measured | failed; measured -> stored | failed; failed -> measured. stored is
+ * final: a re-analysis adds a run (db_run_begin) and never changes or overwrites what is stored. A
+ * trigger in the database enforces the same table (series_transitions). */
 typedef enum db_series_state {
     DB_SERIES_COLLECTING = 0,
     DB_SERIES_COMPLETE,
@@ -126,10 +126,11 @@ typedef struct db_series_info {
     int echoes_expected;             /* echoes expected, 0 when unknown */
 } db_series_info;
 
-/* Finds the series by its UID or creates it in state collecting. *created (may be NULL) is 1 when it
- * was new. A known UID is returned as it is (the first file's attributes stand), except that a
+/* Finds the series by its UID or creates it in state collecting. *created (may be NULL) is 1 when
+ * it was new. A known UID is returned as it is (the first file's attributes stand), except that a
  * different study UID or scanner is refused (SW_EINVAL): a UID collision or a mixed-up file. */
-sw_status db_series_upsert(db *d, const db_series_info *s, int64_t *id, int *created, sw_error *err);
+sw_status db_series_upsert(db *d, const db_series_info *s, int64_t *id, int *created,
+                           sw_error *err);
 
 /* Moves a series from state `from` to `to`. reason is required for DB_SERIES_FAILED and stored (or
  * cleared) otherwise. SW_EINVAL for an illegal transition or when the series is not in `from` (the
@@ -150,21 +151,23 @@ typedef struct db_series_rec {
 
 /* Looks a series up by UID: SW_ENOTFOUND when unknown. cb is called once. */
 typedef int (*db_series_cb)(void *ctx, const db_series_rec *r);
-sw_status db_series_by_uid(db *d, const char *series_uid, db_series_cb cb, void *ctx, sw_error *err);
+sw_status db_series_by_uid(db *d, const char *series_uid, db_series_cb cb, void *ctx,
+                           sw_error *err);
 sw_status db_series_get(db *d, int64_t id, db_series_cb cb, void *ctx, sw_error *err);
 /* Series not in a final state (collecting, quiet, complete, measured), oldest first: what a restart
  * must finish. */
 sw_status db_series_pending(db *d, db_series_cb cb, void *ctx, sw_error *err);
 /* The series' latest run that finished successfully: *run_id > 0, or 0 when there is none (so the
- * daemon never measures a series twice after a restart; a re-analysis asks for a new run anyway). */
+ * daemon never measures a series twice after a restart; a re-analysis asks for a new run anyway).
+ */
 sw_status db_series_stored_run(db *d, int64_t series_id, int64_t *run_id, sw_error *err);
 
 /* ---- files and their life cycle ----
  *
  *   db_file_add          db_file_parsed          db_file_transition        db_file_transition
- *   -----------> seen -----------------> parsed -------------------> measured ----------------> stored
- *                  |                       |      (or db_series_files_     |  (or db_series_files_
- *                  |                       |       transition)            |   transition)
+ *   -----------> seen -----------------> parsed -------------------> measured ---------------->
+ * stored |                       |      (or db_series_files_     |  (or db_series_files_ | |
+ * transition)            |   transition)
  *                  `-----------------------+------------------------------'
  *                           db_file_transition (with a reason)
  *                                          |
@@ -206,14 +209,14 @@ typedef enum db_file_outcome {
 } db_file_outcome;
 
 /* Idempotent: a file seen again after a restart (same path and content hash) returns its existing
- * row. When f->sop_instance_uid is given and a live file (not quarantined or ignored) already holds it,
- * the new file is recorded as ignored, a duplicate. original may be NULL. */
+ * row. When f->sop_instance_uid is given and a live file (not quarantined or ignored) already holds
+ * it, the new file is recorded as ignored, a duplicate. original may be NULL. */
 sw_status db_file_add(db *d, const db_file_info *f, int64_t *id, db_file_outcome *outcome,
                       int64_t *original, sw_error *err);
 
 /* seen -> parsed: records the SOP instance UID and the series. When another live file already holds
- * that SOP instance, nothing changes and SW_EINVAL says which file (de-duplicate with db_file_by_sop
- * first and move the newcomer to ignored). */
+ * that SOP instance, nothing changes and SW_EINVAL says which file (de-duplicate with
+ * db_file_by_sop first and move the newcomer to ignored). */
 sw_status db_file_parsed(db *d, int64_t id, const char *sop_instance_uid, int64_t series_id,
                          sw_error *err);
 /* Moves a file from `from` to `to` (any legal edge but seen -> parsed). reason is required for
@@ -228,12 +231,12 @@ sw_status db_file_set_location(db *d, int64_t id, const char *location, sw_error
 
 typedef struct db_file_rec {
     int64_t id;
-    int64_t series_id;            /* 0 before parsed */
+    int64_t series_id;                                  /* 0 before parsed */
     const char *path, *content_hash, *sop_instance_uid; /* "" when absent */
     int64_t size;
     db_file_state state;
     const char *reason;
-    const char *location;         /* "" until db_file_set_location */
+    const char *location; /* "" until db_file_set_location */
     const char *seen_at, *updated_at;
 } db_file_rec;
 typedef int (*db_file_cb)(void *ctx, const db_file_rec *r);
@@ -274,17 +277,17 @@ sw_status db_run_finish(db *d, int64_t run_id, int ok, db_verdict verdict, const
 
 /* One measured quantity. NAN numbers are stored as NULL. */
 typedef struct db_measurement {
-    const char *metric;       /* required, e.g. "slice_thickness", "bar_length_difference" */
-    int slice;                /* slice ordinal, 0 when the value is not of one slice */
-    int echo;                 /* echo number, 0 when not per echo */
-    double value;             /* NAN only when unmeasurable */
-    double uncertainty;       /* standard uncertainty, same unit, or NAN */
-    const char *unit;         /* "mm", "deg", "%", "" ... */
+    const char *metric; /* required, e.g. "slice_thickness", "bar_length_difference" */
+    int slice;          /* slice ordinal, 0 when the value is not of one slice */
+    int echo;           /* echo number, 0 when not per echo */
+    double value;       /* NAN only when unmeasurable */
+    double uncertainty; /* standard uncertainty, same unit, or NAN */
+    const char *unit;   /* "mm", "deg", "%", "" ... */
     db_verdict verdict;
-    const char *reason;       /* required when unmeasurable */
-    double nominal;           /* the value expected, or NAN */
+    const char *reason;        /* required when unmeasurable */
+    double nominal;            /* the value expected, or NAN */
     double limit_lo, limit_hi; /* the verdict's pass limits, or NAN */
-    const char *details_json; /* NULL or a JSON text (crossings, levels ...) */
+    const char *details_json;  /* NULL or a JSON text (crossings, levels ...) */
 } db_measurement;
 
 /* Adds a row to a running run. SW_EINVAL for a bad row (missing metric, NAN value that is not
@@ -325,8 +328,9 @@ typedef struct db_row {
 } db_row;
 
 /* A cursor over measurement rows joined with their run, series and scanner, ordered by acquisition
- * time, series, run and row. db_cursor_next sets *row to the next row (valid until the next call) or
- * to NULL at the end. The cursor holds a read snapshot until closed; close it before db_close. */
+ * time, series, run and row. db_cursor_next sets *row to the next row (valid until the next call)
+ * or to NULL at the end. The cursor holds a read snapshot until closed; close it before db_close.
+ */
 typedef struct db_cursor db_cursor;
 sw_status db_cursor_open(db *d, const db_filter *f, db_cursor **out, sw_error *err);
 sw_status db_cursor_next(db_cursor *c, const db_row **row, sw_error *err);
@@ -348,20 +352,24 @@ sw_status db_export_csv_file(db *d, const db_filter *f, const char *path, long *
  *                     failed ------------------------'  (retried while attempts < the limit)
  */
 typedef enum db_alert_kind { DB_ALERT_BREACH = 0, DB_ALERT_WARN, DB_ALERT_DRIFT } db_alert_kind;
-typedef enum db_alert_status { DB_ALERT_PENDING = 0, DB_ALERT_SENT, DB_ALERT_FAILED } db_alert_status;
+typedef enum db_alert_status {
+    DB_ALERT_PENDING = 0,
+    DB_ALERT_SENT,
+    DB_ALERT_FAILED
+} db_alert_status;
 const char *db_alert_kind_name(db_alert_kind k);     /* "breach", "warn", "drift" */
 const char *db_alert_status_name(db_alert_status s); /* "pending", "sent", "failed" */
 
 typedef struct db_alert_info {
     db_alert_kind kind;
-    int64_t scanner_id;  /* required */
-    int64_t series_id;   /* 0 when the alert is not about one series */
-    int64_t run_id;      /* 0 when not about one run */
-    const char *metric;  /* required */
-    double value;        /* or NAN */
-    double limit;        /* the limit crossed, or NAN */
+    int64_t scanner_id; /* required */
+    int64_t series_id;  /* 0 when the alert is not about one series */
+    int64_t run_id;     /* 0 when not about one run */
+    const char *metric; /* required */
+    double value;       /* or NAN */
+    double limit;       /* the limit crossed, or NAN */
     db_verdict verdict;
-    const char *message; /* one line for people */
+    const char *message;  /* one line for people */
     const char *png_path; /* NULL or the chart or annotated image to attach */
 } db_alert_info;
 sw_status db_alert_add(db *d, const db_alert_info *a, int64_t *id, sw_error *err);

@@ -56,13 +56,13 @@ struct db {
     sqlite3 *sql;
     char *path;
     int readonly;
-    int savepoint_depth;        /* nesting of internal savepoints */
+    int savepoint_depth; /* nesting of internal savepoints */
     sqlite3_stmt *stmt[ST_COUNT];
     /* Fault injection (tests): when fault_at > 0, the fault_at-th call of db_step on this handle
      * (counting from the open) fails with SQLITE_IOERR without running. steps counts every call. */
     long steps;
     long fault_at;
-    int fault_fired;            /* the last failure was injected */
+    int fault_fired; /* the last failure was injected */
 };
 
 /* Options of db_open_ex; db_open uses the defaults (zeros). */
@@ -85,8 +85,8 @@ sw_status db_migrate(db *d, int target, sw_error *err);
 
 /* The prepared statement for id (prepared on first use), reset and unbound. */
 sw_status db_stmt(db *d, db_stmt_id id, sqlite3_stmt **out, sw_error *err);
-/* For selects that feed callbacks: the cached statement, or a fresh one (*owned = 1) when the cached
- * one is still stepping for an outer iteration on this handle. Release with db_stmt_done. */
+/* For selects that feed callbacks: the cached statement, or a fresh one (*owned = 1) when the
+ * cached one is still stepping for an outer iteration on this handle. Release with db_stmt_done. */
 sw_status db_stmt_iter(db *d, db_stmt_id id, sqlite3_stmt **out, int *owned, sw_error *err);
 void db_stmt_done(sqlite3_stmt *st, int owned);
 /* sqlite3_step through the fault-injection hook. */
@@ -105,11 +105,11 @@ sw_status db_atomic_begin(db *d, sw_error *err);
 sw_status db_atomic_end(db *d, sw_status st, sw_error *err);
 
 /* Binding helpers: NULL or "" text and NAN doubles bind NULL where allowed. */
-int db_bind_text(sqlite3_stmt *st, int i, const char *s);      /* NULL binds NULL, "" binds "" */
+int db_bind_text(sqlite3_stmt *st, int i, const char *s);         /* NULL binds NULL, "" binds "" */
 int db_bind_text_or_null(sqlite3_stmt *st, int i, const char *s); /* NULL and "" bind NULL */
 int db_bind_double_or_null(sqlite3_stmt *st, int i, double v);
-int db_bind_id_or_null(sqlite3_stmt *st, int i, int64_t id);   /* 0 binds NULL */
-const char *db_col_text(sqlite3_stmt *st, int i);              /* "" for NULL */
-double db_col_double(sqlite3_stmt *st, int i);                 /* NAN for NULL */
+int db_bind_id_or_null(sqlite3_stmt *st, int i, int64_t id); /* 0 binds NULL */
+const char *db_col_text(sqlite3_stmt *st, int i);            /* "" for NULL */
+double db_col_double(sqlite3_stmt *st, int i);               /* NAN for NULL */
 
 #endif

@@ -11,14 +11,37 @@
 #include "dbint.h"
 
 static const char *const COLUMNS[] = {
-    "station_name",   "device_serial",   "manufacturer",      "model",
-    "institution",    "site_alias",      "series_instance_uid", "study_instance_uid",
-    "series_number",  "acquired_at",     "series_description", "protocol",
-    "series_type",    "run_id",          "program_version",   "config_hash",
-    "phantom_model",  "tolerance_set",   "run_finished_at",   "metric",
-    "slice",          "echo",            "value",             "uncertainty",
-    "unit",           "nominal",         "limit_lo",          "limit_hi",
-    "verdict",        "reason",          "details",
+    "station_name",
+    "device_serial",
+    "manufacturer",
+    "model",
+    "institution",
+    "site_alias",
+    "series_instance_uid",
+    "study_instance_uid",
+    "series_number",
+    "acquired_at",
+    "series_description",
+    "protocol",
+    "series_type",
+    "run_id",
+    "program_version",
+    "config_hash",
+    "phantom_model",
+    "tolerance_set",
+    "run_finished_at",
+    "metric",
+    "slice",
+    "echo",
+    "value",
+    "uncertainty",
+    "unit",
+    "nominal",
+    "limit_lo",
+    "limit_hi",
+    "verdict",
+    "reason",
+    "details",
 };
 #define NCOLUMNS (sizeof COLUMNS / sizeof COLUMNS[0])
 
@@ -59,9 +82,9 @@ static void put_int(FILE *f, long long v, int null_if_zero)
 
 static void put_row(FILE *f, const db_row *r)
 {
-    const char *text[] = {r->station_name, r->device_serial, r->manufacturer, r->model,
-                          r->institution, r->site_alias, r->series_instance_uid,
-                          r->study_instance_uid};
+    const char *text[] = {
+        r->station_name, r->device_serial, r->manufacturer,        r->model,
+        r->institution,  r->site_alias,    r->series_instance_uid, r->study_instance_uid};
     for (size_t i = 0; i < sizeof text / sizeof text[0]; i++) {
         put_text(f, text[i]);
         fputc(',', f);
@@ -75,8 +98,8 @@ static void put_row(FILE *f, const db_row *r)
     }
     put_int(f, r->run_id, 0);
     fputc(',', f);
-    const char *text3[] = {r->program_version, r->config_hash, r->phantom_model, r->tolerance_set,
-                           r->run_finished_at, r->metric};
+    const char *text3[] = {r->program_version, r->config_hash,     r->phantom_model,
+                           r->tolerance_set,   r->run_finished_at, r->metric};
     for (size_t i = 0; i < sizeof text3 / sizeof text3[0]; i++) {
         put_text(f, text3[i]);
         fputc(',', f);

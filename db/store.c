@@ -9,25 +9,27 @@
 
 /* The edges of the two state machines; schema.c holds the same rows for the triggers, and a test
  * checks that both agree on every pair. */
+/* clang-format off */
 static const unsigned char SERIES_EDGE[DB_SERIES_NSTATES][DB_SERIES_NSTATES] = {
-    /* to:               coll compl quiet meas stored failed */
-    [DB_SERIES_COLLECTING] = {0, 1, 1, 0, 0, 1},
-    [DB_SERIES_COMPLETE] = {0, 0, 0, 1, 0, 1},
-    [DB_SERIES_QUIET] = {1, 1, 0, 1, 0, 1},
-    [DB_SERIES_MEASURED] = {0, 0, 0, 0, 1, 1},
-    [DB_SERIES_STORED] = {0, 0, 0, 0, 0, 0},
-    [DB_SERIES_FAILED] = {0, 0, 0, 1, 0, 0},
+    /* to:                   coll compl quiet meas stored failed */
+    [DB_SERIES_COLLECTING] = {0,   1,    1,    0,   0,     1},
+    [DB_SERIES_COMPLETE]   = {0,   0,    0,    1,   0,     1},
+    [DB_SERIES_QUIET]      = {1,   1,    0,    1,   0,     1},
+    [DB_SERIES_MEASURED]   = {0,   0,    0,    0,   1,     1},
+    [DB_SERIES_STORED]     = {0,   0,    0,    0,   0,     0},
+    [DB_SERIES_FAILED]     = {0,   0,    0,    1,   0,     0},
 };
 
 static const unsigned char FILE_EDGE[DB_FILE_NSTATES][DB_FILE_NSTATES] = {
-    /* to:              seen parsed meas stored quar ign */
-    [DB_FILE_SEEN] = {0, 1, 0, 0, 1, 1},
-    [DB_FILE_PARSED] = {0, 0, 1, 0, 1, 1},
-    [DB_FILE_MEASURED] = {0, 0, 0, 1, 1, 1},
-    [DB_FILE_STORED] = {0, 0, 0, 0, 0, 0},
-    [DB_FILE_QUARANTINED] = {0, 0, 0, 0, 0, 0},
-    [DB_FILE_IGNORED] = {0, 0, 0, 0, 0, 0},
+    /* to:                  seen parsed meas stored quar ign */
+    [DB_FILE_SEEN]        = {0,   1,     0,   0,     1,   1},
+    [DB_FILE_PARSED]      = {0,   0,     1,   0,     1,   1},
+    [DB_FILE_MEASURED]    = {0,   0,     0,   1,     1,   1},
+    [DB_FILE_STORED]      = {0,   0,     0,   0,     0,   0},
+    [DB_FILE_QUARANTINED] = {0,   0,     0,   0,     0,   0},
+    [DB_FILE_IGNORED]     = {0,   0,     0,   0,     0,   0},
 };
+/* clang-format on */
 
 int db_series_transition_legal(db_series_state from, db_series_state to)
 {
@@ -214,8 +216,7 @@ sw_status db_series_upsert(db *d, const db_series_info *s, int64_t *id, int *cre
     if (empty(s->series_instance_uid) || empty(s->study_instance_uid) || s->scanner_id <= 0 ||
         s->images_expected < 0 || s->echoes_expected < 0)
         return sw_error_set(err, SW_EINVAL,
-                            "db: %s: a series needs its UID, its study UID and a scanner",
-                            d->path);
+                            "db: %s: a series needs its UID, its study UID and a scanner", d->path);
     if ((rc = db_atomic_begin(d, err)) != SW_OK)
         return rc;
     if ((rc = db_stmt(d, ST_SERIES_FIND, &st, err)) != SW_OK)
@@ -228,9 +229,8 @@ sw_status db_series_upsert(db *d, const db_series_info *s, int64_t *id, int *cre
         int64_t scanner = sqlite3_column_int64(st, 2);
         sqlite3_reset(st);
         if (!same_study || scanner != s->scanner_id) {
-            rc = sw_error_set(err, SW_EINVAL,
-                              "db: %s: series %s is already held by another %s", d->path,
-                              s->series_instance_uid, same_study ? "scanner" : "study");
+            rc = sw_error_set(err, SW_EINVAL, "db: %s: series %s is already held by another %s",
+                              d->path, s->series_instance_uid, same_study ? "scanner" : "study");
             found = 0;
         }
         goto out;
@@ -343,8 +343,8 @@ static int series_cb(void *unused, sqlite3_stmt *st, void *cb, void *ctx)
     return ((db_series_cb)cb)(ctx, &r);
 }
 
-static sw_status series_query(db *d, db_stmt_id id, const char *uid, int64_t key,
-                              db_series_cb cb, void *ctx, int must_find, sw_error *err)
+static sw_status series_query(db *d, db_stmt_id id, const char *uid, int64_t key, db_series_cb cb,
+                              void *ctx, int must_find, sw_error *err)
 {
     sqlite3_stmt *st = NULL;
     int owned = 0, rows = 0;
@@ -362,8 +362,7 @@ static sw_status series_query(db *d, db_stmt_id id, const char *uid, int64_t key
         if (uid)
             rc = sw_error_set(err, SW_ENOTFOUND, "db: %s: no series %s", d->path, uid);
         else
-            rc = sw_error_set(err, SW_ENOTFOUND, "db: %s: no series %lld", d->path,
-                              (long long)key);
+            rc = sw_error_set(err, SW_ENOTFOUND, "db: %s: no series %lld", d->path, (long long)key);
     }
     return rc;
 }
@@ -450,8 +449,8 @@ sw_status db_file_add(db *d, const db_file_info *f, int64_t *id, db_file_outcome
     if (original)
         *original = 0;
     if (empty(f->path) || empty(f->content_hash) || f->size < 0)
-        return sw_error_set(err, SW_EINVAL, "db: %s: a file needs a path, a content hash and a size",
-                            d->path);
+        return sw_error_set(err, SW_EINVAL,
+                            "db: %s: a file needs a path, a content hash and a size", d->path);
     if ((rc = db_atomic_begin(d, err)) != SW_OK)
         return rc;
     if ((rc = db_stmt(d, ST_FILE_FIND_PATH, &st, err)) != SW_OK)
@@ -493,8 +492,8 @@ static sw_status file_not_in(db *d, int64_t id, db_file_state from, sw_error *er
     char cur[32];
     sw_status rc = one_text(d, ST_FILE_STATE_GET, id, "file", cur, sizeof cur, err);
     if (rc == SW_OK)
-        rc = sw_error_set(err, SW_EINVAL, "db: %s: file %lld is %s, not %s", d->path,
-                          (long long)id, cur, db_file_state_name(from));
+        rc = sw_error_set(err, SW_EINVAL, "db: %s: file %lld is %s, not %s", d->path, (long long)id,
+                          cur, db_file_state_name(from));
     return rc;
 }
 
@@ -506,7 +505,8 @@ sw_status db_file_parsed(db *d, int64_t id, const char *sop_instance_uid, int64_
     char now[32];
     int64_t holder = 0;
     if (!d || empty(sop_instance_uid) || series_id <= 0)
-        return sw_error_set(err, SW_EINVAL, "db: file_parsed: needs a SOP instance UID and a series");
+        return sw_error_set(err, SW_EINVAL,
+                            "db: file_parsed: needs a SOP instance UID and a series");
     if ((rc = db_atomic_begin(d, err)) != SW_OK)
         return rc;
     if ((rc = db_file_by_sop(d, sop_instance_uid, &holder, err)) != SW_OK)
@@ -765,8 +765,10 @@ sw_status db_measurement_add(db *d, int64_t run_id, const db_measurement *m, sw_
         return sw_error_set(err, SW_EINVAL, "db: measurement_add: bad arguments");
     const char *metric = nz(m->metric);
     if (!*metric || !db_verdict_name(m->verdict) || m->slice < 0 || m->echo < 0)
-        return sw_error_set(err, SW_EINVAL, "db: %s: run %lld: a measurement needs a metric and a "
-                            "verdict", d->path, (long long)run_id);
+        return sw_error_set(err, SW_EINVAL,
+                            "db: %s: run %lld: a measurement needs a metric and a "
+                            "verdict",
+                            d->path, (long long)run_id);
     if (isinf(m->value) || isinf(m->uncertainty) || isinf(m->nominal) || isinf(m->limit_lo) ||
         isinf(m->limit_hi) || (!isnan(m->uncertainty) && m->uncertainty < 0))
         return sw_error_set(err, SW_EINVAL, "db: %s: run %lld: %s: infinite or negative numbers",
@@ -785,8 +787,8 @@ sw_status db_measurement_add(db *d, int64_t run_id, const db_measurement *m, sw_
         json_decref(j);
         if (!object)
             return sw_error_set(err, SW_EINVAL,
-                                "db: %s: run %lld: %s: details are not a JSON object (%s)",
-                                d->path, (long long)run_id, metric, j ? "not an object" : je.text);
+                                "db: %s: run %lld: %s: details are not a JSON object (%s)", d->path,
+                                (long long)run_id, metric, j ? "not an object" : je.text);
     }
     if ((rc = db_refuse_readonly(d, err)) != SW_OK)
         return rc;

@@ -42,13 +42,17 @@ int main(int argc, char **argv)
         char uid[64], sop[80], path[96], hash[32], date[24];
         int64_t sc = 0, se = 0, f = 0, run = 0;
         db_file_outcome how;
-        snprintf(uid, sizeof uid, "1.2.826.0.1.3680043.9.7433.9.%d", s);
+        snprintf(uid, sizeof uid, "2.25.4711.9.%d", s);
         /* one series a week per station, from 2015 */
         int day = (s / 3) * 7;
         snprintf(date, sizeof date, "%04d%02d%02d", 2015 + day / 365, 1 + (day % 365) / 31 % 12,
                  1 + day % 28);
-        db_scanner_info si = {stations[s % 3], "SWS-0001", "Slicewarden Simulator", "SW-SIM 3T",
-                              "Alderbrook Regional Hospital", ""};
+        db_scanner_info si = {stations[s % 3],
+                              "SWS-0001",
+                              "Slicewarden Simulator",
+                              "SW-SIM 3T",
+                              "Alderbrook Regional Hospital",
+                              ""};
         if (db_begin(d, &e) || db_scanner_upsert(d, &si, &sc, &e))
             return fail(&e);
         db_series_info ser = {uid, "1.2.3", sc, 1, date, "090000", "ACR T1", "ACR_T1", "t1", 11, 1};
@@ -66,8 +70,17 @@ int main(int argc, char **argv)
             db_run_begin(d, se, &ri, &run, &e))
             return fail(&e);
         for (int k = 0; k < 30; k++) {
-            db_measurement m = {k ? "strip_fwtm" : "slice_thickness", 1, 1, 5.0 + 0.01 * (s % 50),
-                                0.05, "mm", k ? DB_INFO : DB_PASS, "", 5.0, 4.3, 5.7,
+            db_measurement m = {k ? "strip_fwtm" : "slice_thickness",
+                                1,
+                                1,
+                                5.0 + 0.01 * (s % 50),
+                                0.05,
+                                "mm",
+                                k ? DB_INFO : DB_PASS,
+                                "",
+                                5.0,
+                                4.3,
+                                5.7,
                                 k ? NULL : "{\"top_mm\":50.1,\"bottom_mm\":49.8}"};
             if (db_measurement_add(d, run, &m, &e))
                 return fail(&e);
@@ -123,7 +136,6 @@ int main(int argc, char **argv)
     printf("cursor, every row: %ld rows in %.3f s\n", rows, t3 - t2);
     printf("cursor, one station, metric and year: %ld rows in %.4f s\n", frows, t4 - t3);
     printf("CSV export, every row: %ld rows in %.3f s\n", crows, t5 - t4);
-    printf("database: %.1f MB (%.0f bytes per series)\n", sb.st_size / 1e6,
-           (double)sb.st_size / n);
+    printf("database: %.1f MB (%.0f bytes per series)\n", sb.st_size / 1e6, (double)sb.st_size / n);
     return 0;
 }

@@ -1,5 +1,5 @@
-/* test_db.c: the store: migrations, state machines, de-duplication and resume, WAL readers, lock
- * contention, fault injection and a crash mid-series, queries, and the sqlite3 shell's view of it. */
+/* test_db.c: the store: migrations, state machines, de-duplication and resume, WAL readers, locks,
+ * fault injection and a crash mid-series, queries, CSV, and the sqlite3 shell's view of it. */
 #include <criterion/criterion.h>
 #include <dirent.h>
 #include <errno.h>
@@ -81,15 +81,17 @@ static long long count(db *d, const char *sql)
     return raw_int(d->sql, sql);
 }
 
-/* ---- a series as the daemon writes it ---- */
+/* ---- a series as the daemon writes it (UIDs in the 2.25 scheme of DICOM PS3.5 B.2) ---- */
 
 #define N_IMAGES 11
 #define N_ROWS 14
 
-static const db_scanner_info SCANNER1 = {"ALDMR1", "SWS-0001", "Slicewarden Simulator",
-                                         "SW-SIM 1.5T", "Alderbrook Regional Hospital", "MR1"};
-static const db_scanner_info SCANNER2 = {"ALDMR2", "SWS-0002", "Slicewarden Simulator",
-                                         "SW-SIM 3T", "Alderbrook Regional Hospital", "MR2"};
+static const db_scanner_info SCANNER1 = {
+    "ALDMR1", "SWS-0001", "Slicewarden Simulator", "SW-SIM 1.5T", "Alderbrook Regional Hospital",
+    "MR1"};
+static const db_scanner_info SCANNER2 = {
+    "ALDMR2", "SWS-0002", "Slicewarden Simulator", "SW-SIM 3T", "Alderbrook Regional Hospital",
+    "MR2"};
 static const db_run_info RUN = {SW_VERSION, "sha256:0f1e2d", "large-ramp-wedge", "acr-default"};
 
 typedef struct series_spec {
@@ -97,8 +99,8 @@ typedef struct series_spec {
     const char *uid;
     const char *date, *time;
     const char *protocol;
-    int runs;          /* 1, or 2 for a re-analysis */
-    double thickness;  /* the first run's value; a re-analysis adds 0.1 mm */
+    int runs;         /* 1, or 2 for a re-analysis */
+    double thickness; /* the first run's value; a re-analysis adds 0.1 mm */
 } series_spec;
 
 static db_verdict thickness_verdict(double t)
@@ -173,8 +175,8 @@ static sw_status write_series(db *d, const series_spec *sp, sw_error *e)
         return rc;
     if ((rc = db_scanner_upsert(d, sp->scanner, &scanner, e)) != SW_OK)
         goto out;
-    db_series_info si = {sp->uid, "1.2.826.0.1.3680043.9.7433.1.1", scanner, 3, sp->date,
-                         sp->time, "ACR T1", sp->protocol, "t1", N_IMAGES, 1};
+    db_series_info si = {sp->uid,  "2.25.4711.1.1", scanner, 3,        sp->date, sp->time,
+                         "ACR T1", sp->protocol,    "t1",    N_IMAGES, 1};
     if ((rc = db_series_upsert(d, &si, &series, NULL, e)) != SW_OK)
         goto out;
     for (int i = 0; i < N_IMAGES; i++) {
@@ -216,8 +218,8 @@ out:
     return rc;
 }
 
-static const series_spec SPEC1 = {&SCANNER1, "1.2.826.0.1.3680043.9.7433.2.1", "20240105",
-                                  "101530.25", "ACR_T1", 1, 5.1};
+static const series_spec SPEC1 = {&SCANNER1, "2.25.4711.2.1", "20240105", "101530.25", "ACR_T1", 1,
+                                  5.1};
 
 static long long rows_total(db *d)
 {
@@ -259,8 +261,9 @@ static int shell(const char *sql, char *out, size_t n)
 {
     char *argv[] = {"sqlite3", "-batch", dbfile, (char *)sql, NULL};
     int st = run_capture(argv, out, n);
-    cr_assert_neq(st, 127, "Debian's sqlite3 shell is needed for this check (apt-get install "
-                           "sqlite3)");
+    cr_assert_neq(st, 127,
+                  "Debian's sqlite3 shell is needed for this check (apt-get install "
+                  "sqlite3)");
     return st;
 }
 
@@ -327,7 +330,8 @@ Test(db, migrates_forward_step_by_step)
     db_close(d);
 }
 
-/* A fault at any step of the migration leaves the file without a schema, and a later open succeeds. */
+/* A fault at any step of the migration leaves the file without a schema, and a later open succeeds.
+ */
 Test(db, a_failed_migration_leaves_nothing)
 {
     db *d = open_rw();
@@ -409,8 +413,11 @@ Test(db, foreign_keys_are_enforced)
     sw_error_clear(&e);
     cr_assert_eq(db_file_parsed(d, id, "1.2.3.4.5", 999, &e), SW_EINVAL, "a missing series");
     cr_assert_eq(db_run_begin(d, 999, &RUN, &id, NULL), SW_EINVAL);
-    cr_assert_eq(count(d, "SELECT count(*) FROM measurements") + count(d, "SELECT count(*) FROM "
-                 "series") + count(d, "SELECT count(*) FROM runs"), 0);
+    cr_assert_eq(count(d, "SELECT count(*) FROM measurements") +
+                     count(d, "SELECT count(*) FROM "
+                              "series") +
+                     count(d, "SELECT count(*) FROM runs"),
+                 0);
     cr_assert_eq(count(d, "SELECT count(*) FROM files WHERE state = 'seen'"), 1);
     db_close(d);
 }
@@ -502,8 +509,8 @@ Test(db, file_state_machine)
     for (int a = 0; a < DB_FILE_NSTATES; a++) {
         for (int b = 0; b < DB_FILE_NSTATES; b++) {
             int want = file_edge_spec(a, b);
-            cr_assert_eq(db_file_transition_legal(a, b), want, "%s -> %s",
-                         db_file_state_name(a), db_file_state_name(b));
+            cr_assert_eq(db_file_transition_legal(a, b), want, "%s -> %s", db_file_state_name(a),
+                         db_file_state_name(b));
             /* Bring a new file to state a through legal moves (the database keeps the path). */
             snprintf(path, sizeof path, "f%d.dcm", k);
             snprintf(sop, sizeof sop, "1.2.3.9.%d", ++k);
@@ -513,11 +520,11 @@ Test(db, file_state_machine)
             if (a != DB_FILE_SEEN && a != DB_FILE_QUARANTINED && a != DB_FILE_IGNORED)
                 cr_assert_eq(db_file_parsed(d, id, sop, series, NULL), SW_OK);
             if (a == DB_FILE_MEASURED || a == DB_FILE_STORED)
-                cr_assert_eq(db_file_transition(d, id, DB_FILE_PARSED, DB_FILE_MEASURED, NULL,
-                                                NULL), SW_OK);
+                cr_assert_eq(
+                    db_file_transition(d, id, DB_FILE_PARSED, DB_FILE_MEASURED, NULL, NULL), SW_OK);
             if (a == DB_FILE_STORED)
-                cr_assert_eq(db_file_transition(d, id, DB_FILE_MEASURED, DB_FILE_STORED, NULL,
-                                                NULL), SW_OK);
+                cr_assert_eq(
+                    db_file_transition(d, id, DB_FILE_MEASURED, DB_FILE_STORED, NULL, NULL), SW_OK);
             if (a == DB_FILE_QUARANTINED || a == DB_FILE_IGNORED)
                 cr_assert_eq(db_file_transition(d, id, DB_FILE_SEEN, a, "set up", NULL), SW_OK);
             /* The trigger: a raw UPDATE succeeds exactly on the legal edges. */
@@ -556,7 +563,8 @@ Test(db, file_state_machine)
     cr_assert(strstr(e.msg, "is seen, not parsed"), "%s", e.msg);
     cr_assert_eq(db_file_transition(d, id, DB_FILE_SEEN, DB_FILE_QUARANTINED, "", NULL), SW_EINVAL);
     cr_assert_eq(db_file_transition(d, id, DB_FILE_SEEN, DB_FILE_QUARANTINED,
-                                    "JPEG 2000 is not supported", NULL), SW_OK);
+                                    "JPEG 2000 is not supported", NULL),
+                 SW_OK);
     cr_assert_eq(db_file_transition(d, 99999, DB_FILE_SEEN, DB_FILE_IGNORED, "x", NULL),
                  SW_ENOTFOUND);
     db_close(d);
@@ -590,16 +598,17 @@ Test(db, series_state_machine)
             db_series_info si = {uid, "1.2.3", scanner, 0, NULL, NULL, NULL, NULL, NULL, 11, 1};
             cr_assert_eq(db_series_upsert(d, &si, &id, NULL, NULL), SW_OK);
             for (int i = 1; i < path_len[a]; i++)
-                cr_assert_eq(db_series_set_state(d, id, path_to[a][i - 1], path_to[a][i], "why",
-                                                 NULL), SW_OK);
+                cr_assert_eq(
+                    db_series_set_state(d, id, path_to[a][i - 1], path_to[a][i], "why", NULL),
+                    SW_OK);
             snprintf(sql, sizeof sql,
                      "SAVEPOINT t; UPDATE series SET state = '%s' WHERE id = %lld;",
                      db_series_state_name(b), (long long)id);
             int raw = sqlite3_exec(d->sql, sql, NULL, NULL, NULL);
             sqlite3_exec(d->sql, "ROLLBACK TO t; RELEASE t;", NULL, NULL, NULL);
             if (a != b)
-                cr_assert_eq(raw == SQLITE_OK, want, "trigger on %s -> %s",
-                             db_series_state_name(a), db_series_state_name(b));
+                cr_assert_eq(raw == SQLITE_OK, want, "trigger on %s -> %s", db_series_state_name(a),
+                             db_series_state_name(b));
             sw_error_clear(&e);
             sw_status st = db_series_set_state(d, id, a, b, "a reason", &e);
             cr_assert_eq(st == SW_OK, want, "%s -> %s: %s", db_series_state_name(a),
@@ -668,8 +677,10 @@ Test(db, files_are_deduplicated)
     cr_assert_eq(orig, a);
     cr_assert_neq(b, a);
     char sql[160];
-    snprintf(sql, sizeof sql, "SELECT state = 'ignored' AND reason LIKE 'duplicate of file %lld' "
-                              "FROM files WHERE id = %lld", (long long)a, (long long)b);
+    snprintf(sql, sizeof sql,
+             "SELECT state = 'ignored' AND reason LIKE 'duplicate of file %lld' "
+             "FROM files WHERE id = %lld",
+             (long long)a, (long long)b);
     cr_assert_eq(count(d, sql), 1);
 
     /* A copy found only when parsed cannot take the SOP instance either. */
@@ -679,8 +690,10 @@ Test(db, files_are_deduplicated)
     cr_assert_eq(db_file_parsed(d, c, "1.2.5.1", series, &e), SW_EINVAL);
     cr_assert(strstr(e.msg, "already file"), "%s", e.msg);
     /* and the database refuses it by itself (files_live_sop) */
-    snprintf(sql, sizeof sql, "UPDATE files SET state = 'parsed', sop_instance_uid = '1.2.5.1', "
-                              "series_id = %lld WHERE id = %lld", (long long)series, (long long)c);
+    snprintf(sql, sizeof sql,
+             "UPDATE files SET state = 'parsed', sop_instance_uid = '1.2.5.1', "
+             "series_id = %lld WHERE id = %lld",
+             (long long)series, (long long)c);
     cr_assert_neq(sqlite3_exec(d->sql, sql, NULL, NULL, NULL), SQLITE_OK);
     cr_assert_eq(db_file_transition(d, c, DB_FILE_SEEN, DB_FILE_IGNORED, "duplicate", NULL), SW_OK);
 
@@ -725,8 +738,8 @@ Test(db, resumes_exactly_after_kill_9)
         int64_t run = 0;
         if (db_open(dbfile, DB_OPEN_RW, &c, NULL) != SW_OK || db_begin(c, NULL) != SW_OK ||
             db_file_parsed(c, f2, "1.2.7.2", series, NULL) != SW_OK ||
-            db_series_set_state(c, series, DB_SERIES_COLLECTING, DB_SERIES_COMPLETE, NULL,
-                                NULL) != SW_OK ||
+            db_series_set_state(c, series, DB_SERIES_COLLECTING, DB_SERIES_COMPLETE, NULL, NULL) !=
+                SW_OK ||
             db_run_begin(c, series, &RUN, &run, NULL) != SW_OK)
             _exit(3);
         db_measurement rows[N_ROWS];
@@ -755,7 +768,8 @@ Test(db, resumes_exactly_after_kill_9)
     cr_assert_eq(ids[1], series);
     cr_assert_eq(count(d, "SELECT count(*) FROM series WHERE state = 'collecting'"), 1);
     cr_assert_eq(count(d, "SELECT count(*) FROM runs") + count(d, "SELECT count(*) FROM "
-                 "measurements"), 0);
+                                                                  "measurements"),
+                 0);
     cr_assert_eq(db_series_stored_run(d, series, &run, NULL), SW_OK);
     cr_assert_eq(run, 0, "nothing stored: the series is measured again");
     sqlite3_stmt *st = NULL;
@@ -814,7 +828,7 @@ Test(db, a_reader_sees_committed_rows_while_a_writer_works)
 
     /* The writer opens a transaction and adds a second series, uncommitted. */
     series_spec sp2 = SPEC1;
-    sp2.uid = "1.2.826.0.1.3680043.9.7433.2.2";
+    sp2.uid = "2.25.4711.2.2";
     int64_t scanner = 0, s2 = 0;
     cr_assert_eq(db_begin(w, NULL), SW_OK);
     cr_assert_eq(db_scanner_upsert(w, &SCANNER1, &scanner, NULL), SW_OK);
@@ -973,14 +987,16 @@ Test(db, a_failed_call_in_a_transaction_undoes_only_itself)
     d->fault_at = 0;
     /* The mechanism itself: a group that wrote and then failed is undone, the transaction stays. */
     cr_assert_eq(db_atomic_begin(d, NULL), SW_OK);
-    cr_assert_eq(sqlite3_exec(d->sql, "INSERT INTO meta VALUES ('x', '1', 'now')", NULL, NULL,
-                              NULL), SQLITE_OK);
+    cr_assert_eq(
+        sqlite3_exec(d->sql, "INSERT INTO meta VALUES ('x', '1', 'now')", NULL, NULL, NULL),
+        SQLITE_OK);
     cr_assert_eq(db_atomic_end(d, SW_EIO, NULL), SW_EIO);
     cr_assert(db_in_transaction(d));
     cr_assert_eq(count(d, "SELECT count(*) FROM meta WHERE key = 'x'"), 0);
     cr_assert_eq(db_atomic_begin(d, NULL), SW_OK);
-    cr_assert_eq(sqlite3_exec(d->sql, "INSERT INTO meta VALUES ('y', '1', 'now')", NULL, NULL,
-                              NULL), SQLITE_OK);
+    cr_assert_eq(
+        sqlite3_exec(d->sql, "INSERT INTO meta VALUES ('y', '1', 'now')", NULL, NULL, NULL),
+        SQLITE_OK);
     cr_assert_eq(db_atomic_end(d, SW_OK, NULL), SW_OK);
     cr_assert_eq(db_commit(d, NULL), SW_OK);
     cr_assert_eq(count(d, "SELECT count(*) FROM files"), 1);
@@ -994,11 +1010,11 @@ Test(db, a_failed_call_in_a_transaction_undoes_only_itself)
  * ============================================================================================== */
 
 static const series_spec FIXTURE[] = {
-    {&SCANNER1, "1.2.826.0.1.3680043.9.7433.3.1", "20240105", "101530", "ACR_T1", 1, 5.1},
-    {&SCANNER1, "1.2.826.0.1.3680043.9.7433.3.2", "20240112", "093000", "ACR_T1", 2, 5.6},
-    {&SCANNER2, "1.2.826.0.1.3680043.9.7433.3.3", "20240112", "110000", "ACR_T1", 1, 4.2},
-    {&SCANNER2, "1.2.826.0.1.3680043.9.7433.3.4", "20240201", "070000", "ACR_T2", 1, 5.0},
-    {&SCANNER1, "1.2.826.0.1.3680043.9.7433.3.5", "", "", "ACR_T1", 1, 5.8},
+    {&SCANNER1, "2.25.4711.3.1", "20240105", "101530", "ACR_T1", 1, 5.1},
+    {&SCANNER1, "2.25.4711.3.2", "20240112", "093000", "ACR_T1", 2, 5.6},
+    {&SCANNER2, "2.25.4711.3.3", "20240112", "110000", "ACR_T1", 1, 4.2},
+    {&SCANNER2, "2.25.4711.3.4", "20240201", "070000", "ACR_T2", 1, 5.0},
+    {&SCANNER1, "2.25.4711.3.5", "", "", "ACR_T1", 1, 5.8},
 };
 #define N_FIXTURE (int)(sizeof FIXTURE / sizeof FIXTURE[0])
 
@@ -1055,9 +1071,13 @@ Test(db, the_cursor_filters_rows)
         {"up to the 12th at 10:00", {.to = "2024-01-12T10:00"}},
         {"one metric", {.metric = "slice_thickness"}},
         {"failures", {.verdict_mask = 1u << DB_FAIL}},
-        {"warn or fail, all runs", {.verdict_mask = (1u << DB_WARN) | (1u << DB_FAIL), .all_runs = 1}},
+        {"warn or fail, all runs",
+         {.verdict_mask = (1u << DB_WARN) | (1u << DB_FAIL), .all_runs = 1}},
         {"thickness on ALDMR1 in January",
-         {.station_name = "ALDMR1", .metric = "slice_thickness", .from = "2024-01", .to = "2024-02"}},
+         {.station_name = "ALDMR1",
+          .metric = "slice_thickness",
+          .from = "2024-01",
+          .to = "2024-02"}},
         {"no such metric", {.metric = "nothing"}},
     };
     for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
@@ -1120,7 +1140,8 @@ static int nested_cb(void *ctx, const db_series_rec *r)
     /* Re-entrant: the same iteration from inside, and a write. */
     cr_assert_eq(db_series_pending(d, collect_series, ids, NULL), SW_OK);
     cr_assert_geq(ids[0], 1);
-    return db_series_set_state(d, r->id, DB_SERIES_COLLECTING, DB_SERIES_QUIET, NULL, NULL) != SW_OK;
+    return db_series_set_state(d, r->id, DB_SERIES_COLLECTING, DB_SERIES_QUIET, NULL, NULL) !=
+           SW_OK;
 }
 
 Test(db, callbacks_may_reenter_and_write)
@@ -1161,10 +1182,19 @@ Test(db, alert_commands_are_retried_then_given_up)
 {
     db *d = open_rw();
     cr_assert_eq(write_series(d, &SPEC1, NULL), SW_OK);
-    int64_t scanner = count(d, "SELECT id FROM scanners"), series = count(d, "SELECT id FROM series");
+    int64_t scanner = count(d, "SELECT id FROM scanners"),
+            series = count(d, "SELECT id FROM series");
     int64_t a1 = 0, a2 = 0, bad = -1;
-    db_alert_info ai = {DB_ALERT_BREACH, scanner, series, 0, "slice_thickness", 5.9, 5.7, DB_FAIL,
-                        "ALDMR1: slice thickness 5.9 mm above 5.7 mm", "alerts/1.png"};
+    db_alert_info ai = {DB_ALERT_BREACH,
+                        scanner,
+                        series,
+                        0,
+                        "slice_thickness",
+                        5.9,
+                        5.7,
+                        DB_FAIL,
+                        "ALDMR1: slice thickness 5.9 mm above 5.7 mm",
+                        "alerts/1.png"};
     cr_assert_eq(db_alert_add(d, &ai, &a1, NULL), SW_OK);
     ai.kind = DB_ALERT_DRIFT;
     ai.series_id = 0;
@@ -1193,7 +1223,8 @@ Test(db, alert_commands_are_retried_then_given_up)
     cr_assert_eq(s.n, 0, "given up after two attempts");
     cr_assert_eq(db_alert_mark(d, a2, 0, "late", NULL), SW_EINVAL, "a sent alert stays sent");
     cr_assert_eq(count(d, "SELECT count(*) FROM alerts WHERE last_error = 'exit status 1' "
-                          "AND command_status = 'failed' AND attempts = 2"), 1);
+                          "AND command_status = 'failed' AND attempts = 2"),
+                 1);
     db_close(d);
 }
 
@@ -1314,7 +1345,8 @@ Test(db, the_sqlite3_shell_agrees)
                        "JOIN measurements m ON m.run_id = r.id "
                        "WHERE m.metric = 'slice_thickness' AND r.id = (SELECT max(id) FROM runs "
                        "WHERE series_id = s.id AND status = 'done') ORDER BY s.id;",
-                       out, sizeof out), 0, "%s", out);
+                       out, sizeof out),
+                 0, "%s", out);
     want[0] = '\0';
     for (int s = 0; s < N_FIXTURE; s++) {
         char line[200];
@@ -1327,7 +1359,9 @@ Test(db, the_sqlite3_shell_agrees)
 
     /* details is JSON that SQLite's own JSON functions read. */
     cr_assert_eq(shell("SELECT DISTINCT json_extract(details, '$.crossings[1]') FROM measurements "
-                       "WHERE details IS NOT NULL;", out, sizeof out), 0);
+                       "WHERE details IS NOT NULL;",
+                       out, sizeof out),
+                 0);
     cr_assert_str_eq(out, "62.6\n");
 
     /* Another writer cannot break the life cycle: the trigger refuses, the row stays. */
@@ -1354,7 +1388,8 @@ static const char CSV_READER[] =
     "ix = {n: i for i, n in enumerate(head)}\n"
     "for r in rows[1:]:\n"
     "    assert len(r) == len(head), r\n"
-    "    print('\\t'.join([r[ix['series_instance_uid']], r[ix['metric']], r[ix['value']] or 'NULL',\n"
+    "    print('\\t'.join([r[ix['series_instance_uid']], r[ix['metric']], r[ix['value']] or "
+    "'NULL',\n"
     "                     r[ix['verdict']], r[ix['slice']] or '0', r[ix['echo']] or '0',\n"
     "                     repr(r[ix['series_description']])]))\n";
 
@@ -1366,8 +1401,9 @@ Test(db, csv_export_reads_back)
     /* A description that needs quoting: comma, quote and a line break. */
     int64_t scanner = 0, series = 0, run = 0;
     cr_assert_eq(db_scanner_upsert(d, &SCANNER2, &scanner, NULL), SW_OK);
-    db_series_info si = {"1.2.99", "1.2", scanner, 7, "20240301", "120000",
-                         "QA, \"weekly\"\nsecond line", "ACR_T1", "t1", 11, 1};
+    db_series_info si = {
+        "1.2.99", "1.2", scanner, 7, "20240301", "120000", "QA, \"weekly\"\nsecond line",
+        "ACR_T1", "t1",  11,      1};
     cr_assert_eq(db_series_upsert(d, &si, &series, NULL, NULL), SW_OK);
     cr_assert_eq(db_run_begin(d, series, &RUN, &run, NULL), SW_OK);
     db_measurement rows[N_ROWS];
@@ -1408,7 +1444,8 @@ Test(db, csv_export_reads_back)
         char uid[80], metric[64], value[64], verdict[32], desc[128];
         int slice = -1, echo = -1;
         cr_assert_eq(sscanf(line, "%79[^\t]\t%63[^\t]\t%63[^\t]\t%31[^\t]\t%d\t%d\t%127[^\n]", uid,
-                            metric, value, verdict, &slice, &echo, desc), 7, "%s", line);
+                            metric, value, verdict, &slice, &echo, desc),
+                     7, "%s", line);
         cr_assert_str_eq(uid, r->series_instance_uid);
         cr_assert_str_eq(metric, r->metric);
         cr_assert_str_eq(verdict, db_verdict_name(r->verdict));
