@@ -96,7 +96,7 @@ void rp_plot_axes(rp_plot *p, const char *xlabel, const char *ylabel)
     cairo_fill(cr);
     cairo_set_line_width(cr, 1.0);
 
-    int n = rp_nice_ticks(p->x0, p->x1, (int)fmax(2, p->w / 90), &first, &step);
+    int n = rp_nice_ticks(p->x0, p->x1, (int)fmax(3, p->w / 75), &first, &step);
     for (int i = 0; i < n; i++) {
         double v = first + i * step;
         double X = round(rp_plot_px(p, v)) + 0.5;

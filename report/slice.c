@@ -12,7 +12,7 @@
 #define GAP 30
 #define RIGHT_W 660
 #define PANEL_MIN_H 190
-#define PANEL_MAX_H 340
+#define PANEL_MAX_H 400
 #define RP_OPEN_S 6.0 /* half size of the open diamonds that mark 50 % points on the image */
 
 static const rp_font F_TITLE = {20.0, 1};
@@ -29,7 +29,7 @@ static const rp_font F_ONIMG = {12.0, 1};
 
 /* ---- what this image shows ---- */
 
-typedef enum panel_kind { P_STRIP, P_BAR, P_EMPTY } panel_kind;
+typedef enum panel_kind { P_STRIP, P_ZPROFILE, P_BAR } panel_kind;
 typedef struct panel {
     panel_kind kind;
     const char *title;
@@ -505,12 +505,12 @@ static void draw_bar_panel(rp_canvas *cv, const panel *pn, double x, double y, d
     rp_text(cv, x, y + 15, F_PANEL, ink, RP_LEFT, RP_ROLE_TITLE, pn->title);
     if (b->measured) {
         fmt_pm(a, sizeof a, "%.2f", b->length_mm, b->unc_mm, "mm");
-        snprintf(buf, sizeof buf, "bar length %s", a);
+        snprintf(buf, sizeof buf, "length %s", a);
         rp_text(cv, x + w - 12, y + 15, F_SMALL, ink2, RP_RIGHT, RP_ROLE_RESULT, buf);
     }
     double top_level = b->measured ? fmax(b->level_hi, b->level_lo) : NAN;
-    int has = profile_plot(&pl, cv, &b->profile, top_level, dx, dy, dw, dh,
-                           "distance from the bar top (mm)");
+    int has =
+        profile_plot(&pl, cv, &b->profile, top_level, dx, dy, dw, dh, "from the bar top (mm)");
     if (!has)
         empty_frame(&pl, cv, dx, dy, dw, dh);
     if (!b->measured) {
@@ -540,14 +540,70 @@ static void draw_bar_panel(rp_canvas *cv, const panel *pn, double x, double y, d
     }
     rp_plot_vline(&pl, b->length_mm, cross, 1.0, 1, NULL);
     rp_plot_marker(&pl, b->length_mm, mid, RP_MARK_DIAMOND, 5.5, cross);
-    fmt_pm(a, sizeof a, "%.2f", b->length_mm, b->unc_mm, "mm");
-    snprintf(buf, sizeof buf, "end at %s", a);
+    /* short: the panel's title line carries the value with its uncertainty */
+    snprintf(buf, sizeof buf, "end %.2f mm", b->length_mm);
     double X = rp_plot_px(&pl, b->length_mm), Y = rp_plot_py(&pl, mid);
     if (isfinite(X) && isfinite(Y)) {
         double tw = rp_text_width(cv, F_SMALL, buf);
         int left = X + 10 + tw > pl.x + pl.w - 4; /* no room on the right */
-        rp_text(cv, left ? X - 10 : X + 10, Y + 16, F_SMALL, ink, left ? RP_RIGHT : RP_LEFT,
+        rp_text(cv, left ? X - 10 : X + 10, Y + 18, F_SMALL, ink, left ? RP_RIGHT : RP_LEFT,
                 RP_ROLE_LABEL, buf);
+    }
+}
+
+/* The slice profile along the normal that the analysis combined from the ramps (peak 1). */
+static void draw_zprofile_panel(rp_canvas *cv, const panel *pn, double x, double y, double w,
+                                double h)
+{
+    const an_thickness *t = pn->th;
+    const an_profile *z = &t->zprofile;
+    rp_rgb ink = RP_C_INK, ink2 = RP_C_INK2, prof = RP_C_PROFILE, level = RP_C_LEVEL,
+           plateau = RP_C_PLATEAU;
+    char buf[RP_TEXT_LEN], a[64], b[64];
+    rp_plot pl;
+    double dx = x + 62, dy = y + 28, dw = w - 62 - 12, dh = h - 28 - 44;
+
+    rp_text(cv, x, y + 15, F_PANEL, ink, RP_LEFT, RP_ROLE_TITLE, pn->title);
+    fmt_pm(a, sizeof a, "%.2f", t->corrected_mm, t->uncertainty_mm, "mm");
+    fmt_pm(b, sizeof b, "%.2f", t->fwtm_mm, NAN, "mm");
+    snprintf(buf, sizeof buf, "thickness %s \xC2\xB7 FWTM %s", a, b);
+    rp_text(cv, x + w - 12, y + 15, F_SMALL, ink2, RP_RIGHT, RP_ROLE_RESULT, buf);
+    double x0 = z->start_mm, x1 = z->start_mm + (z->n - 1) * z->step_mm, y0 = 0, y1 = 1.1;
+    double vmin, vmax;
+    profile_range(z, &vmin, &vmax);
+    if (isfinite(vmin)) {
+        y0 = fmin(0, vmin);
+        y1 = fmax(1.1, vmax * 1.05);
+    }
+    rp_plot_init(&pl, cv, dx, dy, dw, dh, x0, x1, y0, y1);
+    rp_plot_axes(&pl, "position along the slice normal (mm)", "relative");
+    rp_plot_hline(&pl, 1.0, plateau, 1.0, 1, NULL);
+    rp_plot_hline(&pl, 0.1, plateau, 1.0, 1, "10 %");
+    rp_plot_samples(&pl, z->start_mm, z->step_mm, z->v, z->n, prof, 1.6);
+    rp_plot_hline(&pl, 0.5, level, 1.2, 1, NULL);
+    double Y = rp_plot_py(&pl, 0.5);
+    rp_text(cv, pl.x + 6, Y - 4, F_SMALL, level, RP_LEFT, RP_ROLE_LABEL, "50 %");
+}
+
+/* Rows of panels: a wedge slice's two bars share a row. */
+static int panel_rows(const scene *sc)
+{
+    int rows = 0;
+    for (int i = 0; i < sc->n_panels; i++) {
+        if (sc->panels[i].kind == P_BAR && i + 1 < sc->n_panels &&
+            sc->panels[i + 1].kind == P_BAR && sc->panels[i + 1].pos == sc->panels[i].pos)
+            i++;
+        rows++;
+    }
+    return rows;
+}
+
+static void draw_panel(rp_canvas *cv, const panel *pn, double x, double y, double w, double h)
+{
+    switch (pn->kind) {
+    case P_STRIP: draw_strip_panel(cv, pn, x, y, w, h); break;
+    case P_ZPROFILE: draw_zprofile_panel(cv, pn, x, y, w, h); break;
+    case P_BAR: draw_bar_panel(cv, pn, x, y, w, h); break;
     }
 }
 
@@ -560,14 +616,18 @@ static void draw_panels(rp_canvas *cv, const scene *sc, double x, double y, doub
         rp_plot_note(&pl, grey, "no thickness or position measurement on this slice");
         return;
     }
-    double ph = fmin(PANEL_MAX_H, h / sc->n_panels);
+    double ph = fmin(PANEL_MAX_H, h / panel_rows(sc)), py = y;
     for (int i = 0; i < sc->n_panels; i++) {
         const panel *pn = &sc->panels[i];
-        double py = y + i * ph;
-        if (pn->kind == P_STRIP)
-            draw_strip_panel(cv, pn, x, py, w, ph - 8);
-        else if (pn->kind == P_BAR)
-            draw_bar_panel(cv, pn, x, py, w, ph - 8);
+        if (pn->kind == P_BAR && i + 1 < sc->n_panels && sc->panels[i + 1].kind == P_BAR &&
+            sc->panels[i + 1].pos == pn->pos) {
+            double hw = (w - 16) / 2;
+            draw_panel(cv, pn, x, py, hw, ph - 8);
+            draw_panel(cv, &sc->panels[++i], x + hw + 16, py, hw, ph - 8);
+        } else {
+            draw_panel(cv, pn, x, py, w, ph - 8);
+        }
+        py += ph;
     }
 }
 
@@ -734,15 +794,14 @@ static void build_scene(scene *sc)
                                                  .th = sc->th,
                                                  .part_thickness_mm = sc->th->bottom_thickness_mm};
     }
+    if (sc->th && sc->th->measured && profile_ok(&sc->th->zprofile))
+        sc->panels[sc->n_panels++] =
+            (panel){.kind = P_ZPROFILE, .title = "Slice profile from the ramps", .th = sc->th};
     for (int k = 0; k < sc->n_pos; k++) {
-        sc->panels[sc->n_panels++] = (panel){.kind = P_BAR,
-                                             .title = "Left bar profile",
-                                             .bar = &sc->pos[k]->left,
-                                             .pos = sc->pos[k]};
-        sc->panels[sc->n_panels++] = (panel){.kind = P_BAR,
-                                             .title = "Right bar profile",
-                                             .bar = &sc->pos[k]->right,
-                                             .pos = sc->pos[k]};
+        sc->panels[sc->n_panels++] = (panel){
+            .kind = P_BAR, .title = "Left bar", .bar = &sc->pos[k]->left, .pos = sc->pos[k]};
+        sc->panels[sc->n_panels++] = (panel){
+            .kind = P_BAR, .title = "Right bar", .bar = &sc->pos[k]->right, .pos = sc->pos[k]};
     }
 }
 
@@ -802,7 +861,7 @@ sw_status rp_annotate_slice_png(const char *path, const an_image *img, int image
     int width = (int)(right_x + RIGHT_W + MARGIN);
     double legend_top = sc.y0 + sc.disp_h + 30;
     double left_h = sc.disp_h + 30 + 58;
-    double right_h = sc.n_panels > 0 ? sc.n_panels * PANEL_MIN_H : PANEL_MIN_H;
+    double right_h = sc.n_panels > 0 ? panel_rows(&sc) * PANEL_MIN_H : PANEL_MIN_H;
     double body_h = fmax(left_h, right_h);
     double footer_y = sc.y0 + body_h + 14;
     int height = (int)(footer_y + 40);

@@ -215,6 +215,8 @@ static an_series_result *make_result(void)
     t->nominal_mm = 5.0;
     t->limit_lo_mm = 4.3;
     t->limit_hi_mm = 5.7;
+    t->fwtm_mm = 6.1;
+    edge_profile(&t->zprofile, -7.5, 0.05, 301, -2.5, 2.5, 1.0, 0.0, 0.6);
     t->verdict = AN_PASS;
     for (int k = 0; k < 2; k++) {
         an_position *p = &r->position[k];
@@ -344,6 +346,22 @@ static const rp_text_item *find_text(const rp_slice_info *info, rp_text_role rol
     return NULL;
 }
 
+/* Occurrences of needle in the notes, with wrapped lines joined again by spaces. */
+static int count_in_notes(const rp_slice_info *info, const char *needle)
+{
+    static char all[RP_TEXT_MAX * (RP_TEXT_LEN + 1)];
+    all[0] = '\0';
+    for (int i = 0; i < info->n_text; i++)
+        if (info->text[i].role == RP_ROLE_NOTE) {
+            strcat(all, " ");
+            strcat(all, info->text[i].text);
+        }
+    int n = 0;
+    for (const char *p = strstr(all, needle); p; p = strstr(p + 1, needle))
+        n++;
+    return n;
+}
+
 static int count_text(const rp_slice_info *info, const char *needle)
 {
     int n = 0;
@@ -460,7 +478,10 @@ Test(report, ramp_slice_layout_and_pixels)
     cr_assert_not_null(
         find_text(info, RP_ROLE_RESULT, "Bar length difference +0.00 \xC2\xB1 0.28 mm"));
     cr_assert_eq(count_text(info, "FWHM 50.00 \xC2\xB1 0.31 mm"), 2);
-    cr_assert_eq(count_text(info, "end at 15.00 \xC2\xB1 0.20 mm"), 2);
+    cr_assert_eq(count_text(info, "length 15.00 \xC2\xB1 0.20 mm"), 2);
+    cr_assert_eq(count_text(info, "end 15.00 mm"), 2);
+    cr_assert_not_null(find_text(info, RP_ROLE_TITLE, "Slice profile from the ramps"));
+    cr_assert_not_null(find_text(info, RP_ROLE_RESULT, "thickness 5.00 \xC2\xB1 0.05 mm"));
     cr_assert_eq(count_text(info, "PASS"), 2);
     cr_assert_not_null(find_text(info, RP_ROLE_FOOTER,
                                  "Supports, does not replace, review by a qualified medical "
@@ -495,7 +516,8 @@ Test(report, wedge_slice_only_bars)
     render("slice11.png", &img, 10, r, info, &png);
     cr_assert_null(find_text(info, -1, "Slice thickness"));
     cr_assert_null(find_text(info, -1, "ramp profile"));
-    cr_assert_not_null(find_text(info, RP_ROLE_TITLE, "Left bar profile"));
+    cr_assert_not_null(find_text(info, RP_ROLE_TITLE, "Left bar"));
+    cr_assert_null(find_text(info, -1, "Slice profile"));
     cr_assert_not_null(find_text(info, RP_ROLE_TITLE, "Slice 11"));
     cr_assert_not_null(find_text(info, RP_ROLE_RESULT, "Position model"));
     rp_rgb cross = RP_C_CROSS;
@@ -566,9 +588,10 @@ Test(report, unmeasured_bar_and_phantom_not_found)
     rp_slice_info *info = calloc(1, sizeof *info);
     png_img png;
     render("nobar.png", &img, 10, r, info, &png);
-    cr_assert_eq(count_text(info, "not measured: bridge not found"), 3); /* header + two panels */
+    cr_assert_eq(count_in_notes(info, "not measured: bridge not found"), 3); /* header, 2 panels */
     cr_assert_not_null(find_text(info, RP_ROLE_NOTE, "phantom not found"));
-    cr_assert_null(find_text(info, -1, "end at"));
+    cr_assert_null(find_text(info, -1, "end "));
+    cr_assert_null(find_text(info, -1, "length "));
     cr_assert_null(find_text(info, -1, "Bar length difference"));
     rp_rgb outline = RP_C_OUTLINE;
     cr_assert(!colour_near(&png, disp_x(info, CX + 95 / PX), disp_y(info, CY), 3, outline, 10));
