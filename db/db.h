@@ -203,7 +203,8 @@ typedef struct db_file_info {
 
 typedef enum db_file_outcome {
     DB_FILE_ADDED = 0, /* a new row in state seen */
-    DB_FILE_KNOWN,     /* this path with this content is already known: *id is that row */
+    DB_FILE_KNOWN,     /* this path with this content is already known: *id is that row, which
+                          may be in a final state (the file came back); see db_file_get */
     DB_FILE_DUPLICATE, /* the SOP instance is already held by another file: *id is a new row in
                           state ignored, *original that file */
 } db_file_outcome;
