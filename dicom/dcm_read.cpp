@@ -144,8 +144,14 @@ void elem_text(DcmElement *e, char *dst, size_t n)
     dst[0] = '\0';
     OFString s;
     /* Only text VRs: an unconverted UN or binary value is no text (DCMTK would give hex). */
-    if (e && DcmVR(e->getVR()).isaString() && e->getOFStringArray(s).good())
-        dcm_copy_text(dst, n, s.c_str());
+    if (!e || !DcmVR(e->getVR()).isaString() || e->getOFStringArray(s).bad())
+        return;
+    /* PN: trailing empty components and groups carry nothing (PS3.5 6.2.1.1). */
+    if (e->ident() == EVR_PN)
+        while (!s.empty() && (s[s.size() - 1] == '^' || s[s.size() - 1] == '=' ||
+                              s[s.size() - 1] == ' '))
+            s.erase(s.size() - 1);
+    dcm_copy_text(dst, n, s.c_str());
 }
 
 void get_text(DcmItem *item, const DcmTagKey &tag, char *dst, size_t n)

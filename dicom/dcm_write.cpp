@@ -30,6 +30,45 @@
 
 namespace {
 
+/* Maximum value length in characters, PS3.5 Table 6.2-1 (PN: per component group). 0: no
+ * check here. */
+size_t vr_max_chars(DcmEVR vr)
+{
+    switch (vr) {
+    case EVR_AE: return 16;
+    case EVR_AS: return 4;
+    case EVR_CS: return 16;
+    case EVR_DA: return 8;
+    case EVR_DS: return 16;
+    case EVR_DT: return 26;
+    case EVR_IS: return 12;
+    case EVR_LO: return 64;
+    case EVR_PN: return 64;
+    case EVR_SH: return 16;
+    case EVR_TM: return 14;
+    case EVR_UI: return 64;
+    default: return 0;
+    }
+}
+
+/* Length in characters (UTF-8 code points) of the longest of the '\'-separated values (for PN, of
+ * the '='-separated component groups). */
+size_t longest_value(const char *s, bool pn)
+{
+    size_t best = 0, cur = 0;
+    for (const unsigned char *p = reinterpret_cast<const unsigned char *>(s); *p; p++) {
+        if (*p == '\\' || (pn && *p == '=')) {
+            cur = 0;
+            continue;
+        }
+        if ((*p & 0xC0) != 0x80)
+            cur++;
+        if (cur > best)
+            best = cur;
+    }
+    return best;
+}
+
 /* The writer's state for one file: the first failure wins and stops further puts. */
 struct W {
     const char *name;
@@ -63,9 +102,15 @@ struct W {
             c = it->findAndGetElement(tag, e);
         if (c.good() && e && val && *val)
             c = e->checkValue(vm);
-        if (c.bad())
+        if (c.bad()) {
             fail(SW_EINVAL, "bad value '%.64s' for %s: %s", val ? val : "", t.getTagName(),
                  c.text());
+            return;
+        }
+        size_t maxlen = vr_max_chars(t.getEVR());
+        if (maxlen && val && longest_value(val, t.getEVR() == EVR_PN) > maxlen)
+            fail(SW_EINVAL, "value '%.64s' for %s is longer than %zu characters", val,
+                 t.getTagName(), maxlen);
     }
     /* Type 3: only when there is a value. */
     void put_opt(DcmItem *it, const DcmTagKey &tag, const char *val, const char *vm = "1-n")
@@ -360,6 +405,28 @@ mode_t current_umask(void)
     return m;
 }
 
+/* The file meta information (PS3.10 7.1) with our implementation class UID and version name:
+ * DCMTK fills it in and would put its own names there, so ours replace them afterwards and the
+ * group length is counted again. The file is then saved without touching the meta header. */
+OFCondition set_meta(DcmFileFormat &ff)
+{
+    OFCondition c = ff.validateMetaInfo(EXS_LittleEndianExplicit, EWM_createNewMeta);
+    DcmMetaInfo *meta = ff.getMetaInfo();
+    if (c.good())
+        c = meta->putAndInsertString(DCM_ImplementationClassUID, DCM_IMPLEMENTATION_CLASS_UID);
+    if (c.good())
+        c = meta->putAndInsertString(DCM_ImplementationVersionName, DCM_IMPLEMENTATION_VERSION);
+    if (c.bad())
+        return c;
+    Uint32 len = 0;
+    for (unsigned long i = 0; i < meta->card(); i++) {
+        DcmElement *e = meta->getElement(i);
+        if (e->getTag() != DCM_FileMetaInformationGroupLength)
+            len += e->calcElementLength(EXS_LittleEndianExplicit, EET_ExplicitLength);
+    }
+    return meta->putAndInsertUint32(DCM_FileMetaInformationGroupLength, len);
+}
+
 /* Saves to a hidden temporary file beside path, syncs it, then renames it into place, so that a
  * watcher never sees a partial file under the final name. */
 sw_status save_atomic(W &w, DcmFileFormat &ff, const char *path)
@@ -387,14 +454,10 @@ sw_status save_atomic(W &w, DcmFileFormat &ff, const char *path)
     (void)fchmod(fd, 0666 & ~current_umask());
     close(fd);
     fd = -1;
-    DcmMetaInfo *meta = ff.getMetaInfo();
-    OFCondition c = meta->putAndInsertString(DCM_ImplementationClassUID,
-                                             DCM_IMPLEMENTATION_CLASS_UID);
-    if (c.good())
-        c = meta->putAndInsertString(DCM_ImplementationVersionName, DCM_IMPLEMENTATION_VERSION);
+    OFCondition c = set_meta(ff);
     if (c.good())
         c = ff.saveFile(tbuf.data(), EXS_LittleEndianExplicit, EET_ExplicitLength, EGL_recalcGL,
-                        EPD_noChange, 0, 0, EWM_fileformat);
+                        EPD_noChange, 0, 0, EWM_dontUpdateMeta);
     if (c.bad()) {
         st = w.fail(SW_EIO, "cannot write: %s", c.text());
         goto out;
