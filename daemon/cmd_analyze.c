@@ -1,4 +1,5 @@
 /* cmd_analyze.c: `slicewarden analyze PATH...`: measure the phantom series found in files or folders. */
+#include <errno.h>
 #include <getopt.h>
 #include <jansson.h>
 #include <stdio.h>
@@ -87,8 +88,13 @@ static int measure_series(entry *e, int ne, int k, const wd_method *method, json
         wd_measured_json(&m, json_object_get(out_json, "series"));
     else
         wd_measured_text(&m, stdout);
-    if (png_dir)
-        (void)png_dir; /* annotated images: report/ */
+    if (png_dir) {
+        sw_error_clear(&err);
+        if (wd_measured_pngs(&m, png_dir, NULL, NULL, 0, &err) != SW_OK) {
+            fprintf(stderr, "slicewarden: %s\n", err.msg);
+            rc = 2;
+        }
+    }
     an_verdict v = wd_measured_verdict(&m);
     if (v > *worst)
         *worst = v;
@@ -167,6 +173,12 @@ int wd_cmd_analyze(int argc, char **argv)
             rc = 2;
         }
     }
+    if (png_dir && wd_mkdir_p(png_dir) != 0) {
+        fprintf(stderr, "slicewarden: %s: cannot create the folder: %s\n", png_dir,
+                strerror(errno));
+        rc = 2;
+        goto out;
+    }
     e = calloc(paths.n + 1, sizeof *e);
     s = calloc(paths.n + 1, sizeof *s);
     if (!e || !s) {
@@ -181,6 +193,11 @@ int wd_cmd_analyze(int argc, char **argv)
         e[i].series = -1;
         sw_error_clear(&err);
         if (dcm_read_file(paths.v[i], &head, &e[i].head, &err) != SW_OK) {
+            if (!paths.named[i] && !wd_has_dicom_magic(paths.v[i])) {
+                /* Found in a folder and not DICOM at all (a note, a truth file): say so, go on. */
+                fprintf(stderr, "slicewarden: %s: skipped, not a DICOM file\n", paths.v[i]);
+                continue;
+            }
             fprintf(stderr, "slicewarden: %s\n", err.msg);
             rc = 2;
             continue;

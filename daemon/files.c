@@ -1,13 +1,15 @@
 /* files.c: recursive, sorted listing of regular files. */
 #include "files.h"
 
+#include <ctype.h>
 #include <errno.h>
+#include <stdio.h>
 #include <ftw.h>
 #include <stdlib.h>
 #include <string.h>
 #include <sys/stat.h>
 
-static int add(wd_paths *p, const char *path)
+static int add(wd_paths *p, const char *path, int named)
 {
     if (p->n == p->cap) {
         size_t cap = p->cap ? p->cap * 2 : 64;
@@ -15,11 +17,16 @@ static int add(wd_paths *p, const char *path)
         if (!v)
             return -1;
         p->v = v;
+        unsigned char *f = realloc(p->named, cap);
+        if (!f)
+            return -1;
+        p->named = f;
         p->cap = cap;
     }
     char *s = strdup(path);
     if (!s)
         return -1;
+    p->named[p->n] = (unsigned char)named;
     p->v[p->n++] = s;
     return 0;
 }
@@ -33,7 +40,7 @@ static int visit(const char *path, const struct stat *st, int type, struct FTW *
     const char *base = path + ftw->base;
     if (ftw->level > 0 && base[0] == '.')
         return type == FTW_D ? FTW_SKIP_SUBTREE : FTW_CONTINUE;
-    if (type == FTW_F && S_ISREG(st->st_mode) && add(walk_target, path)) {
+    if (type == FTW_F && S_ISREG(st->st_mode) && add(walk_target, path, 0)) {
         walk_failed = ENOMEM;
         return FTW_STOP;
     }
@@ -52,7 +59,7 @@ sw_status wd_paths_collect(wd_paths *p, const char *path, sw_error *err)
         return sw_error_set(err, SW_EIO, "%s: %s", path, strerror(errno));
     size_t first = p->n;
     if (S_ISREG(st.st_mode)) {
-        if (add(p, path))
+        if (add(p, path, 1))
             return sw_error_set(err, SW_ENOMEM, "%s: out of memory", path);
         return SW_OK;
     }
@@ -66,7 +73,7 @@ sw_status wd_paths_collect(wd_paths *p, const char *path, sw_error *err)
         return sw_error_set(err, SW_ENOMEM, "%s: out of memory", path);
     if (rc != 0)
         return sw_error_set(err, SW_EIO, "%s: %s", path, strerror(errno));
-    qsort(p->v + first, p->n - first, sizeof *p->v, cmp_str);
+    qsort(p->v + first, p->n - first, sizeof *p->v, cmp_str); /* named[] is all 0 there */
     return SW_OK;
 }
 
@@ -77,6 +84,60 @@ void wd_paths_free(wd_paths *p)
     for (size_t i = 0; i < p->n; i++)
         free(p->v[i]);
     free(p->v);
+    free(p->named);
     p->v = NULL;
+    p->named = NULL;
     p->n = p->cap = 0;
+}
+
+void wd_safe_name(char *dst, size_t n, const char *src)
+{
+    size_t k = 0;
+    for (const unsigned char *c = (const unsigned char *)src; *c && k + 1 < n; c++) {
+        int ok = (*c < 0x80 && isalnum(*c)) || *c == '.' || *c == '-' || *c == '_';
+        dst[k++] = ok ? (char)*c : '_';
+    }
+    dst[k] = '\0';
+    if (k > 0 && (dst[0] == '.' || dst[0] == '-'))
+        dst[0] = '_';
+    if (k == 0)
+        sw_strlcpy(dst, "unnamed", n);
+}
+
+int wd_has_dicom_magic(const char *path)
+{
+    unsigned char b[132];
+    FILE *f = fopen(path, "rb");
+    if (!f)
+        return 0;
+    size_t got = fread(b, 1, sizeof b, f);
+    fclose(f);
+    return got == sizeof b && !memcmp(b + 128, "DICM", 4);
+}
+
+int wd_mkdir_p(const char *path)
+{
+    char buf[4096];
+    if (sw_strlcpy(buf, path, sizeof buf) >= sizeof buf - 1) {
+        errno = ENAMETOOLONG;
+        return -1;
+    }
+    for (char *c = buf + 1; *c; c++) {
+        if (*c != '/')
+            continue;
+        *c = '\0';
+        if (mkdir(buf, 0750) != 0 && errno != EEXIST)
+            return -1;
+        *c = '/';
+    }
+    if (mkdir(buf, 0750) != 0 && errno != EEXIST)
+        return -1;
+    struct stat st;
+    if (stat(buf, &st) != 0)
+        return -1;
+    if (!S_ISDIR(st.st_mode)) {
+        errno = ENOTDIR;
+        return -1;
+    }
+    return 0;
 }

@@ -8,6 +8,7 @@
 
 typedef struct wd_paths {
     char **v;
+    unsigned char *named; /* 1: the path was given itself, 0: found inside a folder */
     size_t n, cap;
 } wd_paths;
 
@@ -16,5 +17,16 @@ typedef struct wd_paths {
  * inside folders. err names the path on failure. */
 sw_status wd_paths_collect(wd_paths *p, const char *path, sw_error *err);
 void wd_paths_free(wd_paths *p);
+
+/* Copies src into dst (size n > 0) as a safe single path component: letters, digits, '.', '-' and
+ * '_' kept, anything else (slashes, spaces, control bytes, non-ASCII) turned into '_'; a leading '.'
+ * or '-' is turned into '_'; an empty result becomes "unnamed". */
+void wd_safe_name(char *dst, size_t n, const char *src);
+
+/* 1 when the file at path starts like a DICOM Part 10 file ("DICM" at offset 128), 0 otherwise. */
+int wd_has_dicom_magic(const char *path);
+
+/* Creates a folder and its missing parents (mode 0750); 0 on success, -1 with errno. */
+int wd_mkdir_p(const char *path);
 
 #endif

@@ -5,6 +5,9 @@
 #include <stdlib.h>
 #include <string.h>
 
+#include "files.h"
+#include "report.h"
+
 void wd_method_default(wd_method *m)
 {
     an_model_large(&m->model);
@@ -299,4 +302,44 @@ void wd_measured_text(const wd_measured *m, FILE *f)
         verdict_note(f, r->verdict, r->reason);
         fputc('\n', f);
     }
+}
+
+/* ---- annotated images ---- */
+
+sw_status wd_measured_pngs(const wd_measured *m, const char *dir, const char *scanner, char *first,
+                           size_t nfirst, sw_error *err)
+{
+    const dcm_image *d = m->first;
+    char uid[DCM_UID_MAX], path[4096], series[32], date[32];
+    an_verdict worst = AN_PASS;
+    wd_safe_name(uid, sizeof uid, d->series_instance_uid);
+    snprintf(series, sizeof series, "%d", d->series_number);
+    const char *dt = d->acquisition_date[0] ? d->acquisition_date : d->series_date;
+    snprintf(date, sizeof date, "%.4s-%.2s-%.2s", dt, strlen(dt) >= 6 ? dt + 4 : "",
+             strlen(dt) >= 8 ? dt + 6 : "");
+    if (first && nfirst)
+        first[0] = '\0';
+    for (int i = 0; i < m->n_echoes; i++) {
+        const wd_echo *e = &m->echo[i];
+        int idx[AN_MAX_IMAGES];
+        int k = rp_slices_to_annotate(e->res, idx, AN_MAX_IMAGES);
+        for (int j = 0; j < k; j++) {
+            int slice = e->res->ordinal[idx[j]];
+            snprintf(path, sizeof path, "%s/%s_e%d_s%02d.png", dir, uid, e->echo_number, slice);
+            rp_labels labels = {.scanner = scanner && scanner[0] ? scanner : d->station_name,
+                                .series = series,
+                                .description = d->series_description,
+                                .date = date,
+                                .echo = e->echo_number};
+            sw_status st = rp_annotate_slice_png(path, &e->view[idx[j]], idx[j], e->res, &labels,
+                                                 NULL, err);
+            if (st != SW_OK)
+                return st;
+            if (first && nfirst && (!first[0] || e->res->verdict > worst)) {
+                sw_strlcpy(first, path, nfirst);
+                worst = e->res->verdict;
+            }
+        }
+    }
+    return SW_OK;
 }

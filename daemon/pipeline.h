@@ -50,4 +50,10 @@ an_verdict wd_measured_verdict(const wd_measured *m);
 sw_status wd_measured_json(const wd_measured *m, json_t *array);
 void wd_measured_text(const wd_measured *m, FILE *f);
 
+/* Writes an annotated PNG for each slice worth one (ramp and wedge slices) of each echo into dir,
+ * named SERIES_eECHO_sSLICE.png (the series UID made safe). scanner labels the images. When paths
+ * is not NULL, the path of the first PNG of the worst verdict goes there (size n), for alerts. */
+sw_status wd_measured_pngs(const wd_measured *m, const char *dir, const char *scanner, char *paths,
+                           size_t n, sw_error *err);
+
 #endif
