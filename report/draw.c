@@ -1,4 +1,5 @@
 /* draw.c: the drawing kit: palette, canvas and text log, markers, greyscale image, PNG output. */
+#include <fontconfig/fontconfig.h>
 #include <math.h>
 #include <png.h>
 #include <stdint.h>
@@ -51,6 +52,12 @@ rp_rgb rp_text_on(rp_rgb bg)
 {
     rp_rgb white = {1, 1, 1}, black = RP_C_INK;
     return rp_contrast(bg, white) >= rp_contrast(bg, black) ? white : black;
+}
+
+void rp_cleanup(void)
+{
+    cairo_debug_reset_static_data(); /* drops cairo's font faces, which hold fontconfig patterns */
+    FcFini();
 }
 
 /* ---- canvas ---- */

@@ -90,6 +90,11 @@ sw_status rp_annotate_slice_png(const char *path, const an_image *img, int image
  * once, in ascending slice order. Returns how many (0 when no such slice was identified). */
 int rp_slices_to_annotate(const an_series_result *r, int *idx, int max);
 
+/* Releases the process-wide caches of cairo and fontconfig that text drawing fills (optional: at
+ * exit, when no other thread draws, so that leak checkers see a clean exit). Drawing after it works
+ * and fills them again. */
+void rp_cleanup(void);
+
 /* The verdict's word as the report prints it ("PASS", "WARN", "FAIL", "UNMEASURABLE"). */
 const char *rp_verdict_word(an_verdict v);
 

@@ -50,6 +50,7 @@ static void setup(void)
 
 static void teardown(void)
 {
+    rp_cleanup();
     if (!getenv("RP_KEEP"))
         rm_tree(tmpdir);
 }
