@@ -110,6 +110,7 @@ static void line_init(an_line *l, const an_image *im, const an_pose *p, double u
 }
 
 #define EDGE_MAX 128
+#define EDGE_BLUR 1.5 /* mm inside an edge of the insert still lit by its blur and ringing */
 
 /* The two long edges along u at the current pose: fitted lines v = a + b u. */
 static int long_edges(const an_image *im, const an_pose *pose, const an_model *m, double *at,
@@ -241,7 +242,7 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
     }
     /* Strips: the mean over u of the insert's interior, as a function of v, peaks at each strip. */
     double ga = ins->u_lo + 3, gb = ins->u_hi - 3, vs = 0.25;
-    int nu = (int)((gb - ga) / 1.0) + 1, nv = (int)((at - ab - 1.0) / vs) + 1;
+    int nu = (int)((gb - ga) / 1.0) + 1, nv = (int)((at - ab - 2 * EDGE_BLUR) / vs) + 1;
     if (nu < 5 || nv < 8 || nv > 4096) {
         ins->found = 0;
         sw_strlcpy(ins->reason, "insert not found: interior too small", sizeof ins->reason);
@@ -250,7 +251,7 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
     double A[4096];
     for (int j = 0; j < nv; j++) {
         an_line l;
-        line_init(&l, im, &pose, ga, ab + 0.5 + j * vs, 1, 0, 1.0, nu);
+        line_init(&l, im, &pose, ga, ab + EDGE_BLUR + j * vs, 1, 0, 1.0, nu);
         an_line_sample(&l, buf);
         A[j] = an_mean_range(buf, nu, 0, nu - 1);
     }
@@ -259,7 +260,7 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
     double floor = INFINITY;
     for (int j = 0; j < nv; j++)
         floor = fmin(floor, As[j]);
-    int jc = (int)((vc - ab - 0.5) / vs);
+    int jc = (int)((vc - ab - EDGE_BLUR) / vs);
     int want = m->n_ramps >= 2 ? 2 : 1;
     ins->n_strips = 0;
     for (int s = 0; s < want; s++) {
@@ -268,21 +269,21 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
         for (int j = j0; j <= j1; j++)
             if (jp < 0 || As[j] > As[jp])
                 jp = j;
-        if (jp < 0 || !(As[jp] - floor > 0.02 * d->fluid) ||
-            !(As[jp] > fmax(As[j0], As[j1]) + 0.01 * d->fluid)) {
+        if (jp < 0 || jp <= j0 + 1 || jp >= j1 - 1 || !(As[jp] - floor > 0.02 * d->fluid)) {
             ins->found = 0;
             snprintf(ins->reason, sizeof ins->reason, "strip not found: no %s strip in the insert",
                      want == 1 ? "" : s == 0 ? "top" : "bottom");
             goto out;
         }
-        double vpk = ab + 0.5 + jp * vs;
+        double vpk = ab + EDGE_BLUR + jp * vs;
         /* Extent along u at the peak row, then the across profile over the strip's middle. */
         double ustep = 0.5;
-        int nu2 = (int)((ins->u_hi - ins->u_lo) / ustep) + 1;
+        double ul = ins->u_lo + 3, uh = ins->u_hi - 3; /* clear of the ends' blur */
+        int nu2 = (int)((uh - ul) / ustep) + 1;
         if (nu2 > 4096)
             nu2 = 4096;
         an_line l;
-        line_init(&l, im, &pose, ins->u_lo, vpk, 1, 0, ustep, nu2);
+        line_init(&l, im, &pose, ul, vpk, 1, 0, ustep, nu2);
         an_line_offsets(&l, 0.75, 0.5);
         an_line_sample(&l, buf);
         double sm[4096];
@@ -297,8 +298,10 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
             ia = 0;
         if (!isfinite(ib))
             ib = nu2 - 1;
-        double ua = ins->u_lo + ia * ustep, ub = ins->u_lo + ib * ustep, len = ub - ua;
-        double wa = s == 0 && want == 2 ? vc : ab, wb = s == 1 || want == 1 ? (want == 1 ? at : vc) : at;
+        double ua = ul + ia * ustep, ub = ul + ib * ustep, len = ub - ua;
+        /* Across window: from the insert's middle to 1.5 mm inside its edge (the edge's blur). */
+        double wa = s == 0 && want == 2 ? vc : ab + 1.5;
+        double wb = s == 1 || want == 1 ? (want == 1 ? at - 1.5 : vc) : at - 1.5;
         int nvv = (int)((wb - wa) / 0.1) + 1;
         int nuu = (int)(0.5 * len / 1.0) + 1;
         if (nvv < 5 || nvv > 4096) {
@@ -405,7 +408,7 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     }
     an_line l;
     line_init(&l, im, pose, ins->u_lo, ins->strip_v[s], 1, 0, step, n);
-    double hw = fmin(fmax(0.3 * ins->strip_w[s], 0.5), 3.0);
+    double hw = fmin(fmax(0.4 * ins->strip_w[s], 0.5), 3.0);
     an_line_offsets(&l, hw, 0.5);
     out->half_width_mm = hw;
     an_pose_to_px(pose, ins->u_lo, ins->strip_v[s], &out->line0.x, &out->line0.y);
@@ -421,12 +424,17 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
         out->profile.v[i] = (float)p[i];
     int w = (int)(2.0 / step) | 1;
     an_smooth(p, n, w, ps);
-    int ip = 0;
-    for (int i = 1; i < n; i++)
+    /* Samples within 2.5 mm of an end of the insert carry its edge's blur and ringing. */
+    int edge = (int)ceil(2.5 / step);
+    if (n < 4 * edge) {
+        sw_strlcpy(out->reason, "strip not measurable: the insert is too short", sizeof out->reason);
+        goto out;
+    }
+    int ip = edge;
+    for (int i = edge; i < n - edge; i++)
         if (ps[i] > ps[ip])
             ip = i;
     double pmax = ps[ip];
-    int edge = (int)ceil(1.0 / step); /* samples within 1 mm of an end of the insert */
     double lo0 = an_walk_cross(ps, n, ip, -1, 0.5 * pmax, 1);
     double hi0 = an_walk_cross(ps, n, ip, +1, 0.5 * pmax, 1);
     if (!isfinite(lo0) || !isfinite(hi0) || lo0 < edge || hi0 > n - 1 - edge) {
@@ -485,14 +493,20 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     double s25 = an_walk_cross(ps, n, ip, +1, 0.25 * pmax, 1), s75 = an_walk_cross(ps, n, ip, +1, 0.75 * pmax, 1);
     double rise = 0.5 * ((isfinite(r25) && isfinite(r75) ? r75 - r25 : 4 / step) +
                          (isfinite(s25) && isfinite(s75) ? s25 - s75 : 4 / step)) * step;
-    double h = fmin(fmax(0.6 * rise, 1.0), 0.2 * L0);
+    double h = fmin(fmax(0.8 * rise, 1.0), 0.25 * L0);
     an_xing xl, xh;
     double glo = an_walk_cross(ps, n, ip, -1, lvl, 1), ghi = an_walk_cross(ps, n, ip, +1, lvl, 1);
     if (!isfinite(glo) || !isfinite(ghi)) {
         sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
         goto out;
     }
-    if (an_xing_find(&l, p, n, glo, lvl, h, +1, &xl) || an_xing_find(&l, p, n, ghi, lvl, h, -1, &xh)) {
+    /* Near an end of the insert the fit window shrinks (to 1 mm) rather than reach into it. */
+    double hlo = fmin(h, (glo - edge) * step), hhi = fmin(h, (n - 1 - edge - ghi) * step);
+    if (hlo < 1.0 || hhi < 1.0) {
+        sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
+        goto out;
+    }
+    if (an_xing_find(&l, p, n, glo, lvl, hlo, +1, &xl) || an_xing_find(&l, p, n, ghi, lvl, hhi, -1, &xh)) {
         sw_strlcpy(out->reason, "profile malformed: no clean half-level crossing", sizeof out->reason);
         goto out;
     }
@@ -519,13 +533,17 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     double k = 1 / fabs(xl.slope) + 1 / fabs(xh.slope);
     out->length_unc_mm = sqrt(vlo + vhi + vlev * k * k);
     out->centre_unc_mm = 0.5 * sqrt(vlo + vhi + vlev * pow(1 / xl.slope + 1 / xh.slope, 2));
-    /* FWTM on the same profile (NAN when the tenth-level points are not both inside). */
+    /* FWTM on the same profile (NAN when the tenth-level points are not both inside). The tenth
+     * level lies near the noise floor, so it is always taken through the Rician model when the noise
+     * is known (a true-zero tenth level may sit below the floor and never be crossed). */
     double dl10;
-    double l10 = level_for(par->half_level, P, B, sigma, 0.1, &dl10);
+    double l10 = level_for(par->half_level == AN_HALF_BACKGROUND ? AN_HALF_BACKGROUND : AN_HALF_FLOOR_MODEL,
+                           P, B, sigma, 0.1, &dl10);
     double t0 = an_walk_cross(ps, n, ip, -1, l10, 1), t1 = an_walk_cross(ps, n, ip, +1, l10, 1);
     an_xing tl, th;
-    if (isfinite(l10) && isfinite(t0) && isfinite(t1) && !an_xing_find(&l, p, n, t0, l10, h, +1, &tl) &&
-        !an_xing_find(&l, p, n, t1, l10, h, -1, &th) && tl.i0 >= edge && th.i1 <= n - 1 - edge)
+    double h0 = isfinite(t0) ? fmin(h, (t0 - edge) * step) : 0, h1 = isfinite(t1) ? fmin(h, (n - 1 - edge - t1) * step) : 0;
+    if (isfinite(l10) && h0 >= 1.0 && h1 >= 1.0 && !an_xing_find(&l, p, n, t0, l10, h0, +1, &tl) &&
+        !an_xing_find(&l, p, n, t1, l10, h1, -1, &th) && tl.i0 >= edge && th.i1 <= n - 1 - edge)
         out->fwtm_mm = (th.idx - tl.idx) * step;
     out->measured = 1;
 out:

@@ -538,11 +538,16 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
                 p->ramp_displacement_unc_mm = sqrt(k1 * k1 * vs + pow(s / (a + b) * dT, 2) +
                                                    pow(s * T / ((a + b) * (a + b)), 2) *
                                                        (pow(t->top.length_unc_mm, 2) + pow(t->bottom.length_unc_mm, 2)));
-                if (p->measured && isfinite(vend) && fabs(vend) > 10) {
+                /* A pitch p makes the slice meet the phantom at w = d - v tan p: the bar ends (at
+                 * v_end) report d - v_end tan p; the strips (at +-h) report d + h tan p (b - a) /
+                 * (a + b) through the formula above, which is exact in d only without tilt about v. */
+                double hs = 0.5 * (ins.strip_v[0] - ins.strip_v[1]);
+                double den = isfinite(vend) ? vend + hs * (b - a) / (a + b) : NAN;
+                if (p->measured && isfinite(den) && fabs(den) > 10) {
                     double dd = p->ramp_displacement_mm - p->displacement_mm;
-                    out->pitch_deg = atan(dd / vend) * AN_DEG;
+                    out->pitch_deg = atan(dd / den) * AN_DEG;
                     double sd = sqrt(pow(p->ramp_displacement_unc_mm, 2) + pow(0.5 * p->uncertainty_mm, 2));
-                    out->pitch_unc_deg = sd / fabs(vend) * AN_DEG;
+                    out->pitch_unc_deg = sd / fabs(den) * AN_DEG;
                     out->pitch_measured = 1;
                 }
             }
