@@ -1032,6 +1032,22 @@ Test(report, window_matches_numpy)
     cr_assert_eq(pclose(pp), 0);
     cr_assert_float_eq(lo, nlo, 1e-6 * fabs(nlo) + 1e-9, "low %.9g vs numpy %.9g", lo, nlo);
     cr_assert_float_eq(hi, nhi, 1e-6 * fabs(nhi) + 1e-9, "high %.9g vs numpy %.9g", hi, nhi);
+    /* a small image, where the interpolation between order statistics shows */
+    static float small[15] = {9, 2, 14, 7, 7, 1, 12, 30, 5, 3, 11, 8, 6, 13, 4};
+    an_image sm = {.px = small, .width = 5, .height = 3, .stride = 5, .col_mm = 1, .row_mm = 1};
+    static const double qs[3][2] = {{0.005, 0.995}, {0.1, 0.9}, {0.25, 0.6}};
+    for (int k = 0; k < 3; k++) {
+        cr_assert_eq(rp_window(&sm, qs[k][0], qs[k][1], &lo, &hi, NULL), SW_OK);
+        snprintf(cmd, sizeof cmd,
+                 "/usr/bin/python3 -c \"import numpy as n; a=[9,2,14,7,7,1,12,30,5,3,11,8,6,13,4];"
+                 " print('%%.12g %%.12g' %% tuple(n.percentile(a, [%g, %g])))\"",
+                 100 * qs[k][0], 100 * qs[k][1]);
+        pp = popen(cmd, "r");
+        cr_assert_eq(fscanf(pp, "%lf %lf", &nlo, &nhi), 2);
+        cr_assert_eq(pclose(pp), 0);
+        cr_assert_float_eq(lo, nlo, 1e-9, "q %g: %.12g vs numpy %.12g", qs[k][0], lo, nlo);
+        cr_assert_float_eq(hi, nhi, 1e-9, "q %g: %.12g vs numpy %.12g", qs[k][1], hi, nhi);
+    }
     /* flat image: a valid window all the same */
     for (int i = 0; i < W * H; i++)
         pix[i] = 7;
