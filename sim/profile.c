@@ -128,7 +128,7 @@ void sim_profile_integral(const sim_profile *pr, double z1, double z2, double *r
  * with Omega = (w1(t), 0, 2 pi f) rad/s (RF along x, f the offset gamma-bar G z), M turns about
  * Omega by -|Omega| dt in each step of constant field (Rodrigues' rotation formula). That is the
  * hard-pulse (piecewise-constant) approximation integrated with exact rotation matrices. */
-static void bloch_run(const double *w1, int ns, double dt, double f_hz, double m[3])
+void sim_bloch_run(const double *w1, int ns, double dt, double f_hz, double m[3])
 {
     double mx = m[0], my = m[1], mz = m[2];
     double oz = 2.0 * M_PI * f_hz;
@@ -216,7 +216,7 @@ static sw_status bloch_profile(const sim_profile_params *p, bloch_result *b, sw_
     for (int i = 0; i < b->nf; i++) {
         double f = (i - half) * b->df_hz;
         double m[3] = {0, 0, 1};
-        bloch_run(w1, ns, dur / ns, f, m);
+        sim_bloch_run(w1, ns, dur / ns, f, m);
         /* Ideal rephasing lobe: free precession under -G for half the pulse (its area about the
          * symmetric pulse's centre): turns Mxy by +2 pi f T/2 (the opposite of the precession
          * e^{-i 2 pi f t} that the same code applies under +G). */
@@ -225,7 +225,7 @@ static sw_status bloch_profile(const sim_profile_params *p, bloch_result *b, sw_
         b->mz_exc[i] = m[2];
         if (p->spin_echo) {
             double r[3] = {0, 0, 1};
-            bloch_run(w180, ns, dur / ns, f, r);
+            sim_bloch_run(w180, ns, dur / ns, f, r);
             b->mz_ref[i] = r[2];
         }
     }

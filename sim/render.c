@@ -540,12 +540,16 @@ sw_status sim_series_render(const sim_params *pin, sim_series **out, sw_error *e
             for (int r = 0; r < m->n_ramps; r++)
                 ramp_truth(&sc, m, &p->pose, r, zt[m->ramp_slice - 1], s->profile[e],
                            &tr->ramp[e].length_mm[r], &tr->ramp[e].centre_u_mm[r]);
-    tr->has_wedges = m->has_wedges && m->wedge_slice[0] <= ns && m->wedge_slice[1] <= ns;
-    if (tr->has_wedges)
-        for (int j = 0; j < 2; j++) {
+    tr->has_wedges = m->has_wedges;
+    for (int j = 0; j < 2; j++) {
+        if (m->has_wedges && m->wedge_slice[j] <= ns) {
             tr->wedge[j].ordinal = m->wedge_slice[j];
             wedge_truth(&sc, m, j, zt[m->wedge_slice[j] - 1], &tr->wedge[j]);
+        } else { /* not in this series */
+            tr->wedge[j].ordinal = 0;
+            tr->wedge[j].left_mm = tr->wedge[j].right_mm = tr->wedge[j].difference_mm = NAN;
         }
+    }
 
     /* SNR reference: mean fluid signal of a uniform slice over the central disc (with shading) */
     double sh_mean = 0;
@@ -617,7 +621,7 @@ sw_status sim_series_render(const sim_params *pin, sim_series **out, sw_error *e
                     re += sigma * a;
                     im += sigma * b;
                 }
-                double mg = hypot(re, im);
+                double mg = sqrt(re * re + im * im);
                 dst[q] = (float)mg;
                 if (mg > maxmag)
                     maxmag = mg;
@@ -704,9 +708,14 @@ sw_status sim_series_render(const sim_params *pin, sim_series **out, sw_error *e
         s->echo[pos] = e + 1;
         if (p->enhanced)
             snprintf(s->file_name[pos], sizeof s->file_name[pos], "%s", "MF0001.dcm");
-        else if (p->shuffle)
-            snprintf(s->file_name[pos], sizeof s->file_name[pos], "%08llX",
-                     (unsigned long long)(sim_rng_next(&name_rng) >> 32));
+        else if (p->shuffle) /* random names without an extension, redrawn until unique */
+            for (int dup = 1; dup;) {
+                snprintf(s->file_name[pos], sizeof s->file_name[pos], "%08llX",
+                         (unsigned long long)(sim_rng_next(&name_rng) >> 32));
+                dup = 0;
+                for (int q = 0; q < pos && !dup; q++)
+                    dup = !strcmp(s->file_name[q], s->file_name[pos]);
+            }
         else
             snprintf(s->file_name[pos], sizeof s->file_name[pos], "IM%04d.dcm",
                      im->instance_number);

@@ -186,7 +186,7 @@ typedef struct sim_ramp_truth {
 } sim_ramp_truth;
 
 typedef struct sim_wedge_truth {
-    int ordinal;            /* slice ordinal */
+    int ordinal;            /* slice ordinal; 0 when that slice is not in the series (NANs) */
     double left_mm, right_mm;   /* bar lengths along each bar's centre line in the centre plane */
     double difference_mm;       /* right minus left */
 } sim_wedge_truth;

@@ -19,6 +19,10 @@ void sim_rng_normal2(sim_rng *r, double *a, double *b); /* two independent N(0, 
 /* An independent stream for a (purpose, index) pair of one seed. */
 void sim_rng_stream(sim_rng *r, uint64_t seed, uint64_t purpose, uint64_t index);
 
+/* ---- Bloch: rotates m through ns steps of dt seconds of RF w1[j] (rad/s, along x) at offset f_hz,
+ * dM/dt = M x Omega with Omega = (w1, 0, 2 pi f) (no relaxation; exact rotation per step) ---- */
+void sim_bloch_run(const double *w1, int ns, double dt, double f_hz, double m[3]);
+
 /* ---- scene: the phantom as signed primitives in the scanner plan frame ---- */
 #define SIM_MAX_HALFSPACES 8
 #define SIM_MAX_PRIMS 16

@@ -169,6 +169,8 @@ char *sim_truth_json(const sim_series *s)
         json_t *w = json_array();
         bad |= put(root, "wedges", w);
         for (int j = 0; w && j < 2; j++) {
+            if (t->wedge[j].ordinal == 0)
+                continue; /* this wedge slice is not in the series */
             json_t *o = json_object();
             if (!o || json_array_append_new(w, o) != 0) {
                 bad = 1;
