@@ -234,12 +234,14 @@ static void draw_bar_overlay(rp_canvas *cv, const scene *sc, const an_bar *b, co
     }
 }
 
-static void draw_scale_bar(rp_canvas *cv, const scene *sc)
+/* A scale bar in the lower right corner of the view rectangle (rx, ry, rw, rh). */
+static void draw_scale_bar(rp_canvas *cv, const scene *sc, double rx, double ry, double rw,
+                           double rh)
 {
-    double fov_mm = sc->img->width * sc->img->col_mm;
+    double px_per_mm = sc->sx / sc->img->col_mm, fov_mm = rw / px_per_mm;
     double mm = fov_mm >= 150 ? 50 : fov_mm >= 40 ? 10 : 5;
-    double len = mm / sc->img->col_mm * sc->sx;
-    double xr = sc->x0 + sc->disp_w - 14, yb = sc->y0 + sc->disp_h - 14;
+    double len = mm * px_per_mm;
+    double xr = rx + rw - 14, yb = ry + rh - 14;
     rp_rgb white = {1, 1, 1};
     rp_draw_halo_line(cv->cr, xr - len, yb, xr, yb, 3.0, white, 0);
     char buf[32];
@@ -247,16 +249,14 @@ static void draw_scale_bar(rp_canvas *cv, const scene *sc)
     image_label(cv, xr - len / 2, yb - 9, RP_CENTRE, white, RP_ROLE_LABEL, buf);
 }
 
-static sw_status draw_image(rp_canvas *cv, const scene *sc, sw_error *err)
+/* The image with sc's mapping, clipped to the rectangle (rx, ry, rw, rh), and its overlays. The
+ * main view has everything; an inset (main == 0) only what lies near the wedge bars. */
+static void draw_view(rp_canvas *cv, const scene *sc, cairo_surface_t *surf, double rx, double ry,
+                      double rw, double rh, int main)
 {
     cairo_t *cr = cv->cr;
-    cairo_surface_t *surf = NULL;
-    sw_status st = rp_image_surface(sc->img, sc->lo, sc->hi, &surf, err);
-    if (st != SW_OK)
-        goto out;
-
     cairo_save(cr);
-    cairo_rectangle(cr, sc->x0, sc->y0, sc->disp_w, sc->disp_h);
+    cairo_rectangle(cr, rx, ry, rw, rh);
     cairo_set_source_rgb(cr, 0, 0, 0);
     cairo_fill_preserve(cr);
     cairo_clip(cr);
@@ -269,20 +269,20 @@ static sw_status draw_image(rp_canvas *cv, const scene *sc, sw_error *err)
     cairo_paint(cr);
     cairo_restore(cr);
 
-    /* Overlays, clipped to the image. */
+    /* Overlays, clipped to the view. */
     cairo_save(cr);
-    cairo_rectangle(cr, sc->x0, sc->y0, sc->disp_w, sc->disp_h);
+    cairo_rectangle(cr, rx, ry, rw, rh);
     cairo_clip(cr);
     const an_phantom_fit *ph = &sc->r->phantom[sc->index];
     rp_rgb outline = RP_C_OUTLINE, white = {1, 1, 1};
     if (ph->found && point_ok(ph->centre) && isfinite(ph->radius_mm) && ph->radius_mm > 0) {
         double cx = DX(sc, ph->centre.x), cy = DY(sc, ph->centre.y);
-        double rx = ph->radius_mm / sc->img->col_mm * sc->sx;
-        double ry = ph->radius_mm / sc->img->row_mm * sc->sy;
+        double rx_ = ph->radius_mm / sc->img->col_mm * sc->sx;
+        double ry_ = ph->radius_mm / sc->img->row_mm * sc->sy;
         for (int pass = 0; pass < 2; pass++) { /* dark halo, then the colour */
             cairo_save(cr);
             cairo_translate(cr, cx, cy);
-            cairo_scale(cr, rx, ry);
+            cairo_scale(cr, rx_, ry_);
             cairo_arc(cr, 0, 0, 1, 0, 2 * M_PI);
             cairo_restore(cr);
             if (pass == 0)
@@ -294,11 +294,10 @@ static sw_status draw_image(rp_canvas *cv, const scene *sc, sw_error *err)
         }
         rp_draw_halo_line(cr, cx - 6, cy, cx + 6, cy, 1.5, outline, 0);
         rp_draw_halo_line(cr, cx, cy - 6, cx, cy + 6, 1.5, outline, 0);
-    } else {
-        image_label(cv, sc->x0 + 10, sc->y0 + 22, RP_LEFT, white, RP_ROLE_NOTE,
-                    "phantom not found");
+    } else if (main) {
+        image_label(cv, rx + 10, ry + 22, RP_LEFT, white, RP_ROLE_NOTE, "phantom not found");
     }
-    if (sc->th) {
+    if (sc->th && main) {
         draw_strip_overlay(cv, sc, &sc->th->top, "top ramp");
         if (!strip_unused(&sc->th->bottom))
             draw_strip_overlay(cv, sc, &sc->th->bottom, "bottom ramp");
@@ -307,12 +306,56 @@ static sw_status draw_image(rp_canvas *cv, const scene *sc, sw_error *err)
         draw_bar_overlay(cv, sc, &sc->pos[k]->left, "L");
         draw_bar_overlay(cv, sc, &sc->pos[k]->right, "R");
     }
-    draw_scale_bar(cv, sc);
+    draw_scale_bar(cv, sc, rx, ry, rw, rh);
     cairo_restore(cr);
-out:
-    if (surf)
-        cairo_surface_destroy(surf);
-    return st;
+}
+
+/* Centre (stored pixels) of the wedge bars' found points, for the enlarged inset. */
+static int bars_centre(const scene *sc, double *x, double *y)
+{
+    double sx = 0, sy = 0;
+    int n = 0;
+    for (int k = 0; k < sc->n_pos; k++) {
+        const an_bar *b[2] = {&sc->pos[k]->left, &sc->pos[k]->right};
+        for (int i = 0; i < 2; i++) {
+            if (point_ok(b[i]->top)) {
+                sx += b[i]->top.x, sy += b[i]->top.y, n++;
+            }
+            if (b[i]->measured && point_ok(b[i]->end)) {
+                sx += b[i]->end.x, sy += b[i]->end.y, n++;
+            }
+        }
+    }
+    if (n == 0)
+        return 0;
+    *x = sx / n;
+    *y = sy / n;
+    return 1;
+}
+
+/* The wedge bars enlarged, in a square of side `side` at (x, y): only with square pixels, and only
+ * if it shows them at least twice as large as the main view. Returns the height used (0: none). */
+static double draw_bar_inset(rp_canvas *cv, const scene *sc, cairo_surface_t *surf, double x,
+                             double y, double side)
+{
+    rp_rgb ink = RP_C_INK;
+    double cx, cy;
+    const double region_mm = 40;
+    if (sc->n_pos == 0 || !sc->nearest || side < 200 || !bars_centre(sc, &cx, &cy))
+        return 0;
+    int k = (int)floor(side / (region_mm / sc->img->col_mm));
+    if (k < 2 * sc->sx)
+        return 0;
+    scene in = *sc;
+    in.sx = in.sy = k;
+    double vy = y + 24;
+    in.x0 = round(x + side / 2 - (cx + 0.5) * k);
+    in.y0 = round(vy + side / 2 - (cy + 0.5) * k);
+    char buf[96];
+    snprintf(buf, sizeof buf, "Wedge bars, enlarged \xC3\x97%d", k);
+    rp_text(cv, x, y + 15, F_PANEL, ink, RP_LEFT, RP_ROLE_TITLE, buf);
+    draw_view(cv, &in, surf, x, vy, side, side, 0);
+    return side + 24;
 }
 
 /* ---- legend and caption under the image ---- */
@@ -404,8 +447,9 @@ static void profile_range(const an_profile *p, double *vmin, double *vmax)
 }
 
 /* Sets up the plot of a profile (axes drawn) and returns 1, or returns 0 if it has no data. */
-static int profile_plot(rp_plot *pl, rp_canvas *cv, const an_profile *pr, double extra_hi, double x,
-                        double y, double w, double h, const char *xlabel)
+/* extra_hi: a level that must show; cap (if finite): the top of the range at most. */
+static int profile_plot(rp_plot *pl, rp_canvas *cv, const an_profile *pr, double extra_hi,
+                        double cap, double x, double y, double w, double h, const char *xlabel)
 {
     double vmin, vmax;
     if (!profile_ok(pr))
@@ -415,6 +459,8 @@ static int profile_plot(rp_plot *pl, rp_canvas *cv, const an_profile *pr, double
         return 0;
     if (isfinite(extra_hi))
         vmax = fmax(vmax, extra_hi);
+    if (isfinite(cap) && vmax > cap)
+        vmax = cap;
     double y0 = fmin(0, vmin), y1 = vmax + 0.12 * (vmax - y0);
     rp_nice_range(&y0, &y1, 5);
     double x0 = pr->start_mm, x1 = pr->start_mm + (pr->n - 1) * pr->step_mm;
@@ -451,8 +497,10 @@ static void draw_strip_panel(rp_canvas *cv, const panel *pn, double x, double y,
         snprintf(buf, sizeof buf, "FWTM %s \xC2\xB7 L \xC3\x97 tan \xCE\xB8 = %s", a, b);
         rp_text(cv, x + w - 12, y + 15, F_SMALL, ink2, RP_RIGHT, RP_ROLE_RESULT, buf);
     }
-    int has = profile_plot(&pl, cv, &s->profile, s->measured ? s->plateau : NAN, dx, dy, dw, dh,
-                           "position along the strip (mm)");
+    /* Scaled to the strip, not to fluid that the line may reach beyond the insert (clipped). */
+    double cap = s->measured && isfinite(s->plateau) && s->plateau > 0 ? 1.6 * s->plateau : NAN;
+    int has = profile_plot(&pl, cv, &s->profile, s->measured ? s->plateau : NAN, cap, dx, dy, dw,
+                           dh, "position along the strip (mm)");
     if (!has)
         empty_frame(&pl, cv, dx, dy, dw, dh);
     if (!s->measured) {
@@ -510,7 +558,7 @@ static void draw_bar_panel(rp_canvas *cv, const panel *pn, double x, double y, d
     }
     double top_level = b->measured ? fmax(b->level_hi, b->level_lo) : NAN;
     int has =
-        profile_plot(&pl, cv, &b->profile, top_level, dx, dy, dw, dh, "from the bar top (mm)");
+        profile_plot(&pl, cv, &b->profile, top_level, NAN, dx, dy, dw, dh, "from the bar top (mm)");
     if (!has)
         empty_frame(&pl, cv, dx, dy, dw, dh);
     if (!b->measured) {
@@ -607,14 +655,15 @@ static void draw_panel(rp_canvas *cv, const panel *pn, double x, double y, doubl
     }
 }
 
-static void draw_panels(rp_canvas *cv, const scene *sc, double x, double y, double w, double h)
+/* Returns the height used. */
+static double draw_panels(rp_canvas *cv, const scene *sc, double x, double y, double w, double h)
 {
     rp_rgb grey = RP_C_UNMEAS;
     if (sc->n_panels == 0) {
         rp_plot pl;
         empty_frame(&pl, cv, x + 62, y + 28, w - 74, fmin(h, PANEL_MAX_H) - 72);
         rp_plot_note(&pl, grey, "no thickness or position measurement on this slice");
-        return;
+        return fmin(h, PANEL_MAX_H);
     }
     double ph = fmin(PANEL_MAX_H, h / panel_rows(sc)), py = y;
     for (int i = 0; i < sc->n_panels; i++) {
@@ -629,6 +678,7 @@ static void draw_panels(rp_canvas *cv, const scene *sc, double x, double y, doub
         }
         py += ph;
     }
+    return py - y;
 }
 
 /* ---- header ---- */
@@ -824,6 +874,7 @@ sw_status rp_annotate_slice_png(const char *path, const an_image *img, int image
     sw_status st = SW_OK;
     rp_canvas cv = {0};
     scene sc = {0};
+    cairo_surface_t *surf = NULL;
     hline lines[6] = {{0}};
     char title[RP_TEXT_LEN], sub[RP_TEXT_LEN], buf[RP_TEXT_LEN], desc[4 * RP_TEXT_LEN];
     rp_rgb ink = RP_C_INK, ink2 = RP_C_INK2;
@@ -899,9 +950,10 @@ sw_status rp_annotate_slice_png(const char *path, const an_image *img, int image
     rule(cv.cr, MARGIN, width - MARGIN, header_h + 2);
 
     /* body */
-    st = draw_image(&cv, &sc, err);
+    st = rp_image_surface(img, sc.lo, sc.hi, &surf, err);
     if (st != SW_OK)
         goto out;
+    draw_view(&cv, &sc, surf, sc.x0, sc.y0, sc.disp_w, sc.disp_h, 1);
     snprintf(buf, sizeof buf,
              "Window %.4g\xE2\x80\x93%.4g (0.5\xE2\x80\x93"
              "99.5 percentile) \xC2\xB7 %d \xC3\x97 %d px"
@@ -910,7 +962,10 @@ sw_status rp_annotate_slice_png(const char *path, const an_image *img, int image
     rp_text_fit(&cv, MARGIN, sc.y0 + sc.disp_h + 17, F_SMALL, ink2, RP_LEFT, RP_ROLE_LABEL, left_w,
                 buf);
     draw_legend(&cv, &sc, MARGIN, legend_top, left_w);
-    draw_panels(&cv, &sc, right_x, sc.y0, RIGHT_W, body_h);
+    double used = draw_panels(&cv, &sc, right_x, sc.y0, RIGHT_W, body_h);
+    if (!sc.th && body_h - used >= 260)
+        draw_bar_inset(&cv, &sc, surf, right_x + 62, sc.y0 + used + 8,
+                       fmin(RIGHT_W - 74, body_h - used - 40));
 
     /* footer */
     rule(cv.cr, MARGIN, width - MARGIN, footer_y);
@@ -951,6 +1006,8 @@ sw_status rp_annotate_slice_png(const char *path, const an_image *img, int image
         info->window_hi = sc.hi;
     }
 out:
+    if (surf)
+        cairo_surface_destroy(surf);
     rp_canvas_free(&cv);
     return st;
 }

@@ -492,6 +492,7 @@ Test(report, ramp_slice_layout_and_pixels)
     cr_assert_not_null(find_text(info, RP_ROLE_TITLE, "echo 1"));
     cr_assert_eq(info->text_truncated, 0);
     cr_assert_null(find_text(info, -1, "not measured"));
+    cr_assert_null(find_text(info, -1, "enlarged")); /* no room for the inset on the ramp slice */
 
     /* every logged line lies on the canvas, is of a legible size, and has ink in its box */
     for (int i = 0; i < info->n_text; i++) {
@@ -519,6 +520,8 @@ Test(report, wedge_slice_only_bars)
     cr_assert_null(find_text(info, -1, "ramp profile"));
     cr_assert_not_null(find_text(info, RP_ROLE_TITLE, "Left bar"));
     cr_assert_null(find_text(info, -1, "Slice profile"));
+    /* the bars again, enlarged, in the room the missing ramp panels leave */
+    cr_assert_not_null(find_text(info, RP_ROLE_TITLE, "Wedge bars, enlarged \xC3\x97"));
     cr_assert_not_null(find_text(info, RP_ROLE_TITLE, "Slice 11"));
     cr_assert_not_null(find_text(info, RP_ROLE_RESULT, "Position model"));
     rp_rgb cross = RP_C_CROSS;
