@@ -436,7 +436,10 @@ static void fill_common(const sim_series *s, const sim_timing *tm, const char *s
     im->rescale_slope = 1.0;
     im->rescale_intercept = 0.0;
     sw_strlcpy(im->photometric, "MONOCHROME2", sizeof im->photometric);
-    sw_strlcpy(im->image_type, "ORIGINAL\\PRIMARY\\M\\ND", sizeof im->image_type);
+    /* Enhanced MR: value 3 is the image flavour and 4 the derived pixel contrast (defined terms
+     * of PS3.3 C.8.16.1); classic MR leaves value 3 to the implementation */
+    sw_strlcpy(im->image_type, p->enhanced ? "ORIGINAL\\PRIMARY\\VOLUME\\NONE" : "ORIGINAL\\PRIMARY\\OTHER",
+               sizeof im->image_type);
     sw_strlcpy(im->scanning_sequence, "SE", sizeof im->scanning_sequence);
     sw_strlcpy(im->sequence_variant, "NONE", sizeof im->sequence_variant);
     snprintf(im->software_versions, sizeof im->software_versions, "slicewarden-sim %s", SW_VERSION);

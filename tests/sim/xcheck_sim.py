@@ -1,0 +1,202 @@
+#!/usr/bin/python3
+"""xcheck_sim.py: the simulator's output checked with tools from outside the project.
+
+  profile FILE   FILE holds a profile from sim_profile_make (header line: tbw duration_ms flip_deg
+                 spin_echo gradient_mT_per_m steps; then "z re im" lines). The profile is recomputed
+                 here with an independent Bloch method, Cayley-Klein spinors (the SLR parametrisation
+                 of Pauly, Le Roux, Nishimura and Macovski 1991), and, at small flip angles, compared
+                 with the Fourier transform of the pulse (the small-tip approximation of Pauly,
+                 Nishimura and Macovski 1989) computed with numpy's FFT routines.
+  series DIR     DIR holds series folders written by sim_series_write (std, flip-rows, flip-columns,
+                 transposed, feet-first, enhanced) of the same acquisition. Every file is read with
+                 pydicom; each variant is brought back to the phantom frame from
+                 ImageOrientationPatient, ImagePositionPatient and PatientPosition alone (DICOM PS3.3
+                 C.7.6.2.1.1) and must equal the standard series pixel for pixel.
+Exit status 0 when every check holds; the first failure is printed."""
+import glob
+import json
+import os
+import sys
+
+import numpy as np
+
+GAMMA_BAR = 42.577478e6  # Hz/T, CODATA 2018
+
+
+def fail(msg):
+    print("FAIL:", msg)
+    sys.exit(1)
+
+
+def pulse(tbw, dur, flip, ns):
+    t = -dur / 2 + (np.arange(ns) + 0.5) * dur / ns
+    b = (0.54 + 0.46 * np.cos(2 * np.pi * t / dur)) * np.sinc(tbw * t / dur)
+    return t, b * flip / (b.sum() * dur / ns)
+
+
+def cayley_klein(w1, dt, f):
+    """Spinor product of the step rotations: each step rotates by phi = |Omega| dt about
+    n = Omega / |Omega|, Omega = (w1, 0, 2 pi f); returns (alpha, beta) per offset."""
+    a = np.ones(f.shape, dtype=complex)
+    b = np.zeros(f.shape, dtype=complex)
+    oz = 2 * np.pi * f
+    for w in w1:
+        om = np.sqrt(w * w + oz * oz)
+        c, s = np.cos(om * dt / 2), np.sin(om * dt / 2)
+        aj = c - 1j * (oz / om) * s
+        bj = -1j * (w / om) * s
+        a, b = aj * a - np.conj(bj) * b, bj * a + np.conj(aj) * b
+    return a, b
+
+
+def check_profile(path):
+    with open(path) as fh:
+        head = fh.readline().split()
+        tbw, dur_ms, flip, se, g_mt, ns = (float(head[0]), float(head[1]), float(head[2]),
+                                           int(head[3]), float(head[4]), int(head[5]))
+        data = np.loadtxt(fh)
+    z, re, im = data[:, 0], data[:, 1], data[:, 2]
+    dur = dur_ms * 1e-3
+    f = GAMMA_BAR * g_mt * 1e-3 * z * 1e-3  # offset of each sample (Hz)
+    t, w1 = pulse(tbw, dur, np.deg2rad(flip), ns)
+    a, b = cayley_klein(w1, dur / ns, f)
+    mxy = 2 * np.conj(a) * b  # transverse magnetisation from M0 = z
+    mag = np.abs(mxy)
+    if se:
+        _, w180 = pulse(tbw, dur, np.pi, ns)
+        _, b2 = cayley_klein(w180, dur / ns, f)
+        mag = mag * np.abs(b2) ** 2
+    cmag = np.hypot(re, im)
+    err = np.max(np.abs(cmag - mag))
+    print("profile: max |C - spinor| = %.2e (peak %.4f)" % (err, mag.max()))
+    if not err < 1e-6 * max(1.0, mag.max()) + 1e-9:
+        fail("rotation-matrix and spinor Bloch profiles differ by %.3e" % err)
+    # after a rephasing lobe of half the pulse's area the small-tip profile of a symmetric pulse
+    # has no linear phase left (Pauly et al. 1989): the C profile's phase is flat in the slice
+    if flip <= 30 and not se:
+        inside = cmag > 0.5 * cmag.max()
+        ph = np.angle((re + 1j * im)[inside])
+        if np.max(np.abs(ph)) > 0.02:
+            fail("residual phase after rephasing %.3f rad" % np.max(np.abs(ph)))
+        # small tip: |Mxy(f)| ~ sin(flip) |FT(pulse)(f)| / FT(0); FT by numpy on a zero-padded grid
+        npad = 1 << 18
+        dt = dur / ns
+        spec = np.fft.fftshift(np.fft.fft(w1 * dt, npad))
+        freqs = np.fft.fftshift(np.fft.fftfreq(npad, dt))
+        ft = np.interp(f, freqs, np.abs(spec))
+        ft = ft / ft.max() * np.sin(np.deg2rad(flip))
+        e2 = np.max(np.abs(cmag - ft)) / cmag.max()
+        print("profile: max |C - Fourier| / peak = %.2e" % e2)
+        if not e2 < 0.01:
+            fail("small-tip profile differs from the pulse's Fourier transform by %.3f" % e2)
+
+
+def load_series(d):
+    import pydicom
+    with open(os.path.join(d, "truth.json")) as fh:
+        truth = json.load(fh)
+    out = {}
+    files = {e["name"]: e for e in truth["files"]}
+    on_disk = sorted(n for n in os.listdir(d) if n != "truth.json" and not n.startswith("."))
+    if sorted(files) != on_disk:
+        fail("%s: truth.json names %s, folder has %s" % (d, sorted(files), on_disk))
+    for name in on_disk:
+        ds = pydicom.dcmread(os.path.join(d, name))
+        if ds.StationName != "ALDMR1" or ds.Manufacturer != "Slicewarden Simulator":
+            fail("%s: identity %s / %s" % (name, ds.StationName, ds.Manufacturer))
+        if int(ds.BitsStored) != 12 or int(ds.pixel_array.max()) > 4095:
+            fail("%s: not 12-bit" % name)
+        pp = ds.PatientPosition
+        if "PerFrameFunctionalGroupsSequence" in ds:
+            sh = ds.SharedFunctionalGroupsSequence[0]
+            iop = [float(v) for v in sh.PlaneOrientationSequence[0].ImageOrientationPatient]
+            ps = [float(v) for v in sh.PixelMeasuresSequence[0].PixelSpacing]
+            arr = ds.pixel_array
+            for k, fr in enumerate(ds.PerFrameFunctionalGroupsSequence):
+                ipp = [float(v) for v in fr.PlanePositionSequence[0].ImagePositionPatient]
+                stack = int(fr.FrameContentSequence[0].InStackPositionNumber)
+                te = float(fr.MREchoSequence[0].EffectiveEchoTime)
+                echo = 1 if te == truth["echoes"][0]["te_ms"] else 2
+                out[(stack, echo)] = (arr[k], iop, ipp, ps, pp)
+        else:
+            e = files[name]
+            if int(ds.EchoNumbers) != e["echo"] or int(ds.InstanceNumber) != e["instance"]:
+                fail("%s: echo/instance %s/%s vs truth %s" % (name, ds.EchoNumbers,
+                                                              ds.InstanceNumber, e))
+            te = truth["echoes"][e["echo"] - 1]["te_ms"]
+            if abs(float(ds.EchoTime) - te) > 1e-6:
+                fail("%s: EchoTime %s vs %s" % (name, ds.EchoTime, te))
+            if abs(float(ds.SliceThickness) - truth["profile"]["requested_thickness_mm"]) > 1e-6:
+                fail("%s: SliceThickness %s" % (name, ds.SliceThickness))
+            out[(e["slice"], e["echo"])] = (ds.pixel_array, [float(v) for v in ds.ImageOrientationPatient],
+                                            [float(v) for v in ds.ImagePositionPatient],
+                                            [float(v) for v in ds.PixelSpacing], pp)
+    return truth, out
+
+
+def to_phantom_frame(arr, iop, ipp, ps, pp):
+    """Display image (u right, v up) from the stored one, using the DICOM geometry only."""
+    n = arr.shape[0]
+    row, col = np.array(iop[:3]), np.array(iop[3:])
+    r, c = np.mgrid[0:n, 0:n]
+    P = (np.array(ipp)[None, None, :] + c[..., None] * ps[1] * row + r[..., None] * ps[0] * col)
+    if pp == "HFS":
+        u, v = P[..., 0], -P[..., 1]
+    elif pp == "FFS":
+        u, v = -P[..., 0], -P[..., 1]
+    else:
+        fail("unexpected PatientPosition %s" % pp)
+    D = ps[1]
+    h = 0.5 * (n - 1) * D
+    j = np.rint((u + h) / D).astype(int)
+    i = np.rint((h - v) / D).astype(int)
+    disp = np.zeros_like(arr)
+    disp[i, j] = arr
+    if len(set(zip(i.ravel().tolist(), j.ravel().tolist()))) != n * n:
+        fail("geometry does not map the image onto the display grid one to one")
+    return disp, (P[0, 0, 2] if pp == "HFS" else -P[0, 0, 2])
+
+
+def check_series(root):
+    truth_std, std = load_series(os.path.join(root, "std"))
+    zs = {s["ordinal"]: s["z_mm"] for s in truth_std["slices"]}
+    ref = {}
+    for key, (arr, iop, ipp, ps, pp) in std.items():
+        ref[key], _ = to_phantom_frame(arr, iop, ipp, ps, pp)
+    checked = 0
+    for d in sorted(glob.glob(os.path.join(root, "*"))):
+        name = os.path.basename(d)
+        truth, ser = load_series(d)
+        if set(ser) != set(std):
+            fail("%s: images %s differ from the standard's" % (name, sorted(ser)))
+        want_pp = "FFS" if name == "feet-first" else "HFS"
+        for key, (arr, iop, ipp, ps, pp) in ser.items():
+            if pp != want_pp:
+                fail("%s: PatientPosition %s" % (name, pp))
+            disp, zn = to_phantom_frame(arr, iop, ipp, ps, pp)
+            if not np.array_equal(disp, ref[key]):
+                fail("%s: slice %d echo %d differs from the standard after reorientation (%d pixels)"
+                     % (name, key[0], key[1], int(np.sum(disp != ref[key]))))
+            if abs(zn - zs[key[0]]) > 1e-4:
+                fail("%s: slice %d along the normal at %.4f, truth %.4f" % (name, key[0], zn,
+                                                                           zs[key[0]]))
+            checked += 1
+        print("series %s: %d images agree with the standard" % (name, len(ser)))
+    if checked == 0:
+        fail("no series found under %s" % root)
+
+
+def main():
+    if len(sys.argv) != 3 or sys.argv[1] not in ("profile", "series"):
+        print(__doc__)
+        return 2
+    if sys.argv[1] == "profile":
+        check_profile(sys.argv[2])
+    else:
+        check_series(sys.argv[2])
+    print("ok")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
