@@ -80,7 +80,12 @@ void an_line_point(const an_line *l, double t, double *u, double *v);
 int an_quad_fit(const double *p, int i0, int i1, double ic, double step, double c[3], double tq,
                 double *g);
 
-/* A level crossing found by a local quadratic fit around a first guess. */
+/* Least-squares polynomial of degree deg (1..3) in t = (i - ic) * step over samples i0..i1; c[0..3]
+ * (unused degrees zero); g as for an_quad_fit. */
+int an_poly_fit(const double *p, int i0, int i1, double ic, double step, int deg, double *c,
+                double tq, double *g);
+
+/* A level crossing found by a local polynomial fit around a first guess. */
 typedef struct an_xing {
     int ok;
     double idx;    /* fractional sample index of the crossing */
@@ -93,6 +98,9 @@ typedef struct an_xing {
  * slope's sign must be `sign` (+1 rising with index, -1 falling). l may be NULL (no noise gain). */
 int an_xing_find(const an_line *l, const double *p, int n, double guess, double level, double h_mm,
                  int sign, an_xing *x);
+/* Same, with the fit window kept within samples lim0..lim1. */
+int an_xing_find_in(const an_line *l, const double *p, int lim0, int lim1, double guess,
+                    double level, double h_mm, int sign, an_xing *x);
 
 /* First crossing of level walking from index start in direction dir (+1/-1) on p, linear
  * interpolation; returns the fractional index or NAN. `below` = 1 looks for the first sample below

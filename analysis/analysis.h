@@ -74,7 +74,8 @@ void an_tolerance_default(an_tolerance *t);
 /* ---- parameters of the method ---- */
 typedef enum an_half_level {
     AN_HALF_TRUE_ZERO = 0, /* half of the plateau above zero (the plastic gives no signal) */
-    AN_HALF_FLOOR_MODEL,   /* half between the plateau and the Rician floor modelled from air noise */
+    AN_HALF_FLOOR_MODEL,   /* the same half level in signal space, through the Rician model of the
+                              magnitude with the noise measured in air (the default) */
     AN_HALF_BACKGROUND,    /* half between the plateau and the raw background mean (biased; bench only) */
 } an_half_level;
 

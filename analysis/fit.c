@@ -5,139 +5,213 @@
 
 #include "an_int.h"
 
-int an_quad_fit(const double *p, int i0, int i1, double ic, double step, double c[3], double tq,
-                double *g)
+int an_poly_fit(const double *p, int i0, int i1, double ic, double step, int deg, double *c,
+                double tq, double *g)
 {
-    /* Normal equations in a scaled abscissa s = t / hs for conditioning. */
+    if (deg < 1 || deg > 3)
+        return -1;
+    int m = deg + 1;
     double hs = fmax(fabs(i0 - ic), fabs(i1 - ic)) * step;
     if (!(hs > 0))
         return -1;
-    double S[5] = {0}, B[3] = {0};
+    /* Normal equations in s = t / hs; A is m x m, augmented with the identity to get the inverse. */
+    double S[7] = {0}, A[4][8];
     int cnt = 0;
     for (int i = i0; i <= i1; i++) {
         if (!isfinite(p[i]))
             continue;
-        double s = (i - ic) * step / hs, s2 = s * s;
-        S[0] += 1;
-        S[1] += s;
-        S[2] += s2;
-        S[3] += s2 * s;
-        S[4] += s2 * s2;
-        B[0] += p[i];
-        B[1] += s * p[i];
-        B[2] += s2 * p[i];
+        double s1 = (i - ic) * step / hs, pw = 1;
+        for (int k = 0; k < 2 * m - 1; k++) {
+            S[k] += pw;
+            pw *= s1;
+        }
         cnt++;
     }
-    if (cnt < 3)
+    if (cnt < m + 1)
         return -1;
-    /* Inverse of the symmetric matrix [[S0 S1 S2][S1 S2 S3][S2 S3 S4]] by cofactors. */
-    double a = S[0], b = S[1], cc = S[2], d = S[3], e = S[4];
-    double A00 = cc * e - d * d, A01 = -(b * e - cc * d), A02 = b * d - cc * cc;
-    double A11 = a * e - cc * cc, A12 = -(a * d - b * cc), A22 = a * cc - b * b;
-    double det = a * A00 + b * A01 + cc * A02;
-    if (!(fabs(det) > 1e-12 * fmax(1.0, a * a * a)))
-        return -1;
-    double inv[3][3] = {{A00 / det, A01 / det, A02 / det},
-                        {A01 / det, A11 / det, A12 / det},
-                        {A02 / det, A12 / det, A22 / det}};
-    double k[3];
-    for (int r = 0; r < 3; r++)
-        k[r] = inv[r][0] * B[0] + inv[r][1] * B[1] + inv[r][2] * B[2];
-    c[0] = k[0];
-    c[1] = k[1] / hs;
-    c[2] = k[2] / (hs * hs);
+    for (int r = 0; r < m; r++)
+        for (int q = 0; q < 2 * m; q++)
+            A[r][q] = q < m ? S[r + q] : (q - m == r);
+    for (int k = 0; k < m; k++) {
+        int piv = k;
+        for (int r = k + 1; r < m; r++)
+            if (fabs(A[r][k]) > fabs(A[piv][k]))
+                piv = r;
+        if (!(fabs(A[piv][k]) > 1e-12 * S[0]))
+            return -1;
+        for (int q = 0; q < 2 * m; q++) {
+            double t = A[k][q];
+            A[k][q] = A[piv][q];
+            A[piv][q] = t;
+        }
+        double d = A[k][k];
+        for (int q = 0; q < 2 * m; q++)
+            A[k][q] /= d;
+        for (int r = 0; r < m; r++) {
+            if (r == k)
+                continue;
+            double f = A[r][k];
+            for (int q = 0; q < 2 * m; q++)
+                A[r][q] -= f * A[k][q];
+        }
+    }
+    /* inv = A[.][m..2m); coefficients k = inv B with B_r = sum s^r p. */
+    double B[4] = {0};
+    for (int i = i0; i <= i1; i++) {
+        if (!isfinite(p[i]))
+            continue;
+        double s1 = (i - ic) * step / hs, pw = 1;
+        for (int r = 0; r < m; r++) {
+            B[r] += pw * p[i];
+            pw *= s1;
+        }
+    }
+    double sc = 1;
+    for (int r = 0; r < m; r++) {
+        double k = 0;
+        for (int q = 0; q < m; q++)
+            k += A[r][m + q] * B[q];
+        c[r] = k / sc;
+        sc *= hs;
+    }
+    for (int r = m; r < 4; r++)
+        c[r] = 0;
     if (g) {
-        double sq = tq / hs, e3[3] = {1, sq, sq * sq}, h[3];
-        for (int r = 0; r < 3; r++)
-            h[r] = e3[0] * inv[0][r] + e3[1] * inv[1][r] + e3[2] * inv[2][r];
+        double sq = tq / hs, e[4], h[4] = {0}, pw = 1;
+        for (int r = 0; r < m; r++) {
+            e[r] = pw;
+            pw *= sq;
+        }
+        for (int q = 0; q < m; q++)
+            for (int r = 0; r < m; r++)
+                h[q] += e[r] * A[r][m + q];
         for (int i = i0; i <= i1; i++) {
             if (!isfinite(p[i])) {
                 g[i - i0] = 0;
                 continue;
             }
-            double s = (i - ic) * step / hs;
-            g[i - i0] = h[0] + h[1] * s + h[2] * s * s;
+            double s1 = (i - ic) * step / hs, v = 0;
+            pw = 1;
+            for (int q = 0; q < m; q++) {
+                v += h[q] * pw;
+                pw *= s1;
+            }
+            g[i - i0] = v;
         }
     }
     return 0;
 }
 
-/* Root of c0 + c1 t + c2 t^2 = level nearest t = 0 with the slope's sign; NAN if none. */
-static double quad_root(const double c[3], double level, int sign)
+int an_quad_fit(const double *p, int i0, int i1, double ic, double step, double c[3], double tq,
+                double *g)
 {
-    double a = c[2], b = c[1], k = c[0] - level;
+    double c4[4];
+    int rc = an_poly_fit(p, i0, i1, ic, step, 2, c4, tq, g);
+    if (!rc)
+        memcpy(c, c4, 3 * sizeof *c);
+    return rc;
+}
+
+/* Root of the polynomial c (degree <= 3) = level nearest t = 0 whose slope has the given sign, by
+ * Newton's method from several starts within +-lim; NAN if none. */
+static double poly_root(const double c[4], double level, int sign, double lim)
+{
     double best = NAN;
-    if (fabs(a) < 1e-12 * (fabs(b) + 1e-300)) {
-        if (b != 0 && (b > 0) == (sign > 0))
-            best = -k / b;
-        return best;
-    }
-    double disc = b * b - 4 * a * k;
-    if (disc < 0)
-        return NAN;
-    double sq = sqrt(disc);
-    double q = -0.5 * (b + (b >= 0 ? sq : -sq));
-    double r[2] = {q / a, q != 0 ? k / q : NAN};
-    for (int i = 0; i < 2; i++) {
-        if (!isfinite(r[i]))
-            continue;
-        double sl = b + 2 * a * r[i];
-        if ((sl > 0) != (sign > 0))
-            continue;
-        if (isnan(best) || fabs(r[i]) < fabs(best))
-            best = r[i];
+    double starts[5] = {0, -0.5 * lim, 0.5 * lim, -lim, lim};
+    for (int k = 0; k < 5; k++) {
+        double t = starts[k];
+        for (int it = 0; it < 40; it++) {
+            double f = c[0] - level + t * (c[1] + t * (c[2] + t * c[3]));
+            double d = c[1] + t * (2 * c[2] + 3 * t * c[3]);
+            if (d == 0)
+                break;
+            double nt = t - f / d;
+            if (!isfinite(nt) || fabs(nt) > 3 * lim)
+                break;
+            if (fabs(nt - t) < 1e-9 * (1 + lim)) {
+                t = nt;
+                double sl = c[1] + t * (2 * c[2] + 3 * t * c[3]);
+                if ((sl > 0) == (sign > 0) && (isnan(best) || fabs(t) < fabs(best)))
+                    best = t;
+                break;
+            }
+            t = nt;
+        }
     }
     return best;
 }
 
-int an_xing_find(const an_line *l, const double *p, int n, double guess, double level, double h_mm,
-                 int sign, an_xing *x)
+int an_xing_find_in(const an_line *l, const double *p, int lim0, int lim1, double guess,
+                    double level, double h_mm, int sign, an_xing *x)
 {
     memset(x, 0, sizeof *x);
     double step = l ? l->step : 1.0;
-    if (!isfinite(guess) || n < 5)
+    if (!isfinite(guess) || lim1 - lim0 < 4)
         return -1;
     int hn = (int)lround(h_mm / step);
     if (hn < 2)
         hn = 2;
-    double c[3], t = NAN, ic = guess;
-    int i0 = 0, i1 = 0, conv = 0;
-    for (int it = 0; it < 6 && !conv; it++) {
-        int icn = (int)lround(ic);
-        i0 = icn - hn < 0 ? 0 : icn - hn;
-        i1 = icn + hn > n - 1 ? n - 1 : icn + hn;
-        if (i1 - i0 < 4)
-            return -1;
-        if (an_quad_fit(p, i0, i1, ic, step, c, 0, NULL))
-            return -1;
-        t = quad_root(c, level, sign);
-        if (!isfinite(t) || fabs(t) > 2.0 * hn * step)
-            return -1;
-        double nic = ic + t / step;
-        conv = fabs(t) < 0.5 * step;
-        if (nic < 0 || nic > n - 1)
-            return -1;
-        if (!conv)
-            ic = nic; /* re-centre; once converged, t stays relative to this window */
+    double c[4], t = NAN, ic = guess;
+    int i0 = 0, i1 = 0, conv = 0, deg = 3;
+    /* A cubic follows an edge's sigmoid shape through the crossing; its value at the window's centre
+     * has the same noise as a quadratic's. Fall back to lower degrees when it has no clean root. */
+    for (; deg >= 1; deg--) {
+        ic = guess;
+        for (int it = 0; it < 8 && !conv; it++) {
+            int icn = (int)lround(ic);
+            i0 = icn - hn < lim0 ? lim0 : icn - hn;
+            i1 = icn + hn > lim1 ? lim1 : icn + hn;
+            if (i1 - i0 < 2 * deg + 1 || an_poly_fit(p, i0, i1, ic, step, deg, c, 0, NULL))
+                break;
+            t = poly_root(c, level, sign, hn * step);
+            if (!isfinite(t) || fabs(t) > 1.5 * hn * step)
+                break;
+            double nic = ic + t / step;
+            if (nic < lim0 || nic > lim1)
+                break;
+            conv = fabs(t) < 0.5 * step || it == 7;
+            if (!conv)
+                ic = nic; /* re-centre; once converged, t stays relative to this window */
+        }
+        if (conv)
+            break;
     }
-    if (!conv)
-        return -1;
+    if (!conv) {
+        /* Last resort: a straight line over the window at the first guess, not re-centred. */
+        deg = 1;
+        ic = guess;
+        int icn = (int)lround(ic);
+        i0 = icn - hn < lim0 ? lim0 : icn - hn;
+        i1 = icn + hn > lim1 ? lim1 : icn + hn;
+        if (i1 - i0 < 3 || an_poly_fit(p, i0, i1, ic, step, 1, c, 0, NULL) || c[1] == 0 ||
+            (c[1] > 0) != (sign > 0))
+            return -1;
+        t = (level - c[0]) / c[1];
+        if (!(fabs(t) <= 1.5 * hn * step) || ic + t / step < lim0 || ic + t / step > lim1)
+            return -1;
+    }
     int m = i1 - i0 + 1;
     double *g = malloc((size_t)m * sizeof *g);
     if (!g)
         return -1;
-    if (an_quad_fit(p, i0, i1, ic, step, c, t, g)) {
+    if (an_poly_fit(p, i0, i1, ic, step, deg, c, t, g)) {
         free(g);
         return -1;
     }
     x->idx = ic + t / step;
-    x->slope = c[1] + 2 * c[2] * t;
+    x->slope = c[1] + t * (2 * c[2] + 3 * t * c[3]);
     x->ss = l ? an_line_weight_ss(l, i0, m, g) : NAN;
     x->i0 = i0;
     x->i1 = i1;
     x->ok = 1;
     free(g);
     return 0;
+}
+
+int an_xing_find(const an_line *l, const double *p, int n, double guess, double level, double h_mm,
+                 int sign, an_xing *x)
+{
+    return an_xing_find_in(l, p, 0, n - 1, guess, level, h_mm, sign, x);
 }
 
 double an_walk_cross(const double *p, int n, int start, int dir, double level, int below)

@@ -95,7 +95,11 @@ void an_tolerance_default(an_tolerance *t)
 void an_params_default(an_params *p)
 {
     memset(p, 0, sizeof *p);
-    p->half_level = AN_HALF_TRUE_ZERO;
+    /* The Rician-consistent half level: half of the plateau above the true zero, taken in signal
+     * space and mapped back through the magnitude's mean. It equals the ACR convention (plateau / 2)
+     * at high SNR and removes the magnitude bias of the half-level crossing at low strip SNR
+     * (docs/methods.md, "Half level"); without a noise estimate it falls back to plateau / 2. */
+    p->half_level = AN_HALF_FLOOR_MODEL;
     p->slot_correction = 0;
     p->sample_step_mm = 0.1;
 }
@@ -137,4 +141,28 @@ double an_tilt_deg(double t_mm, double a_mm, double tan_theta)
     if (!(a_mm > 0) || !isfinite(t_mm))
         return NAN;
     return (atan(t_mm / a_mm) - atan(tan_theta)) * 180.0 / M_PI;
+}
+
+/* Outermost crossings: the first and last samples at or above the level on each side of the peak,
+ * each interpolated linearly with its outer neighbour below the level. */
+int an_width_at_level(const float *v, int n, int peak, double level, double *lo, double *hi)
+{
+    if (!v || n < 3 || peak <= 0 || peak >= n - 1 || !(v[peak] >= level))
+        return -1;
+    int a = peak, b = peak;
+    for (int i = 0; i < peak; i++)
+        if (v[i] >= level) {
+            a = i;
+            break;
+        }
+    for (int i = n - 1; i > peak; i--)
+        if (v[i] >= level) {
+            b = i;
+            break;
+        }
+    if (a == 0 || b == n - 1)
+        return -1;
+    *lo = (a - 1) + (level - v[a - 1]) / ((double)v[a] - v[a - 1]);
+    *hi = b + (v[b] - level) / ((double)v[b] - v[b + 1]);
+    return 0;
 }

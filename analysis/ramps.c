@@ -109,6 +109,12 @@ static void line_init(an_line *l, const an_image *im, const an_pose *p, double u
     l->k = 1;
 }
 
+#ifndef H_RISE
+#define H_RISE 1.2
+#endif
+#ifndef H_LEN
+#define H_LEN 0.3
+#endif
 #define EDGE_MAX 128
 #define EDGE_BLUR 1.5 /* mm inside an edge of the insert still lit by its blur and ringing */
 
@@ -422,7 +428,9 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     out->profile.step_mm = step;
     for (int i = 0; i < n; i++)
         out->profile.v[i] = (float)p[i];
-    int w = (int)(2.0 / step) | 1;
+    /* The smoothed copy only gives first guesses (peak, crossings, rise); 4 mm keeps noise from
+     * stopping a walk early at low SNR. */
+    int w = (int)(4.0 / step) | 1;
     an_smooth(p, n, w, ps);
     /* Samples within 2.5 mm of an end of the insert carry its edge's blur and ringing. */
     int edge = (int)ceil(2.5 / step);
@@ -493,7 +501,7 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     double s25 = an_walk_cross(ps, n, ip, +1, 0.25 * pmax, 1), s75 = an_walk_cross(ps, n, ip, +1, 0.75 * pmax, 1);
     double rise = 0.5 * ((isfinite(r25) && isfinite(r75) ? r75 - r25 : 4 / step) +
                          (isfinite(s25) && isfinite(s75) ? s25 - s75 : 4 / step)) * step;
-    double h = fmin(fmax(0.8 * rise, 1.0), 0.25 * L0);
+    double h = fmin(fmax(H_RISE * rise, 1.0), H_LEN * L0);
     an_xing xl, xh;
     double glo = an_walk_cross(ps, n, ip, -1, lvl, 1), ghi = an_walk_cross(ps, n, ip, +1, lvl, 1);
     if (!isfinite(glo) || !isfinite(ghi)) {
@@ -506,7 +514,8 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
         sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
         goto out;
     }
-    if (an_xing_find(&l, p, n, glo, lvl, hlo, +1, &xl) || an_xing_find(&l, p, n, ghi, lvl, hhi, -1, &xh)) {
+    if (an_xing_find_in(&l, p, edge, n - 1 - edge, glo, lvl, hlo, +1, &xl) ||
+        an_xing_find_in(&l, p, edge, n - 1 - edge, ghi, lvl, hhi, -1, &xh)) {
         sw_strlcpy(out->reason, "profile malformed: no clean half-level crossing", sizeof out->reason);
         goto out;
     }
@@ -542,8 +551,8 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     double t0 = an_walk_cross(ps, n, ip, -1, l10, 1), t1 = an_walk_cross(ps, n, ip, +1, l10, 1);
     an_xing tl, th;
     double h0 = isfinite(t0) ? fmin(h, (t0 - edge) * step) : 0, h1 = isfinite(t1) ? fmin(h, (n - 1 - edge - t1) * step) : 0;
-    if (isfinite(l10) && h0 >= 1.0 && h1 >= 1.0 && !an_xing_find(&l, p, n, t0, l10, h0, +1, &tl) &&
-        !an_xing_find(&l, p, n, t1, l10, h1, -1, &th) && tl.i0 >= edge && th.i1 <= n - 1 - edge)
+    if (isfinite(l10) && h0 >= 1.0 && h1 >= 1.0 && !an_xing_find_in(&l, p, edge, n - 1 - edge, t0, l10, h0, +1, &tl) &&
+        !an_xing_find_in(&l, p, edge, n - 1 - edge, t1, l10, h1, -1, &th))
         out->fwtm_mm = (th.idx - tl.idx) * step;
     out->measured = 1;
 out:
