@@ -9,7 +9,7 @@
 #include "sw.h"
 
 /* The newest schema this program writes (PRAGMA user_version); docs/schema.md describes it. */
-#define DB_SCHEMA_VERSION 2
+#define DB_SCHEMA_VERSION 3
 /* PRAGMA application_id of a slicewarden database: 'SWDB'. */
 #define DB_APPLICATION_ID 0x53574442
 #define DB_BUSY_TIMEOUT_MS 5000 /* default wait for another connection's lock */
@@ -395,5 +395,46 @@ void db_now_iso(char *buf, size_t n);
 /* DICOM DA and TM to "YYYY-MM-DDTHH:MM:SS[.ffffff]" (local time, no zone). Returns 0, or -1 when
  * either is malformed (buf is then ""). time may be NULL or "" (midnight is not assumed: -1). */
 int db_dicom_datetime(const char *da, const char *tm, char *buf, size_t n);
+
+/* ---- drift episodes and alert listings (added for trends; schema step 3) ----
+ * A drift episode is one stretch during which a drift statistic of one scanner, protocol (series
+ * type and echo), slice and metric is out of control. At most one is open per key (a unique index
+ * refuses a second): the daemon raises one drift alert when an episode opens and closes the
+ * episode when the statistic is back in control, so an alarm comes once per episode. */
+typedef struct db_drift_key {
+    int64_t scanner_id;      /* required */
+    const char *series_type; /* NULL is taken as "" */
+    int echo;                /* 0 when not per echo */
+    int slice;               /* 0 when not of one slice */
+    const char *metric;      /* required */
+} db_drift_key;
+
+typedef struct db_drift_episode {
+    int64_t id;
+    db_drift_key key;
+    const char *statistic; /* what signalled, e.g. "ewma-high,cusum-high" */
+    int64_t opened_series_id, alert_id, closed_series_id; /* 0 when absent */
+    const char *opened_at, *closed_at;                    /* UTC; closed_at "" while open */
+    const char *opened_acquired_at, *closed_acquired_at;  /* of the series; "" when absent */
+} db_drift_episode;
+typedef int (*db_drift_cb)(void *ctx, const db_drift_episode *e);
+
+/* The open episode of k, if any: cb (may be NULL) is called once; *found (may be NULL) is 1 or 0. */
+sw_status db_drift_open_get(db *d, const db_drift_key *k, db_drift_cb cb, void *ctx, int *found,
+                            sw_error *err);
+/* Opens an episode of k (series_id and alert_id 0 when none). SW_EINVAL when one is open. */
+sw_status db_drift_episode_open(db *d, const db_drift_key *k, const char *statistic,
+                                int64_t series_id, const char *acquired_at, int64_t alert_id,
+                                int64_t *id, sw_error *err);
+/* Closes an open episode; SW_EINVAL when it is closed already, SW_ENOTFOUND when unknown. */
+sw_status db_drift_episode_close(db *d, int64_t id, int64_t series_id, const char *acquired_at,
+                                 sw_error *err);
+/* Episodes of one scanner (0: every scanner), only the open ones when open_only, oldest first. */
+sw_status db_drift_episodes_each(db *d, int64_t scanner_id, int open_only, db_drift_cb cb,
+                                 void *ctx, sw_error *err);
+/* Alerts of one scanner (0: every scanner), oldest first, whose series was acquired in [from, to)
+ * (ISO 8601 prefixes, NULL: open); an alert without a series is placed by its created_at. */
+sw_status db_alerts_each(db *d, int64_t scanner_id, const char *from, const char *to,
+                         db_alert_cb cb, void *ctx, sw_error *err);
 
 #endif

@@ -192,9 +192,38 @@ static const char STEP2[] =
     "CREATE INDEX alerts_open ON alerts(command_status) WHERE command_status <> 'sent';\n"
     "CREATE INDEX alerts_scanner ON alerts(scanner_id, created_at);\n";
 
+/* Step 3 (added for trends): drift episodes. One row per stretch during which a drift statistic of
+ * one scanner, protocol (series type, echo), slice and metric is out of control; at most one open
+ * per key (partial unique index), so a drift alarm is raised once per episode. A closed episode is
+ * history and never changes. db/drift.c holds the queries. */
+static const char STEP3[] =
+    "CREATE TABLE drift_episodes (\n"
+    "  id INTEGER PRIMARY KEY,\n"
+    "  scanner_id INTEGER NOT NULL REFERENCES scanners(id),\n"
+    "  series_type TEXT NOT NULL,\n"
+    "  echo INTEGER NOT NULL CHECK (echo >= 0),\n"
+    "  slice INTEGER NOT NULL CHECK (slice >= 0),\n"
+    "  metric TEXT NOT NULL CHECK (length(metric) > 0),\n"
+    "  statistic TEXT NOT NULL CHECK (length(statistic) > 0),\n"
+    "  opened_at TEXT NOT NULL,\n"
+    "  opened_series_id INTEGER REFERENCES series(id),\n"
+    "  opened_acquired_at TEXT,\n"
+    "  alert_id INTEGER REFERENCES alerts(id),\n"
+    "  closed_at TEXT,\n"
+    "  closed_series_id INTEGER REFERENCES series(id),\n"
+    "  closed_acquired_at TEXT\n"
+    ") STRICT;\n"
+    "CREATE UNIQUE INDEX drift_episodes_open ON drift_episodes(scanner_id, series_type, echo, "
+    "slice, metric) WHERE closed_at IS NULL;\n"
+    "CREATE INDEX drift_episodes_scanner ON drift_episodes(scanner_id, opened_at);\n"
+    "CREATE TRIGGER drift_episode_closed_guard BEFORE UPDATE ON drift_episodes\n"
+    "  WHEN OLD.closed_at IS NOT NULL\n"
+    "BEGIN SELECT RAISE(ABORT, 'a closed drift episode is never changed'); END;\n";
+
 const db_migration DB_MIGRATIONS[] = {
     {1, "tables, state machines and their guards", STEP1},
     {2, "indexes for resume, exports and reports", STEP2},
+    {3, "drift episodes", STEP3},
 };
 const int DB_NMIGRATIONS = (int)(sizeof DB_MIGRATIONS / sizeof DB_MIGRATIONS[0]);
 
