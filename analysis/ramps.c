@@ -616,8 +616,13 @@ int an_wedge_edge_measure(const an_image *im, const an_pose *pose, const an_inse
         dp[i] = an_quad_fit(p, i0, i1, i, step, c, 0, NULL) ? NAN : c[1];
     }
     /* The edge may rise either way along u; use the derivative's sign at its largest magnitude. */
-    int ip = 0;
-    for (int i = 1; i < n; i++)
+    int edge = (int)ceil(2.5 / step); /* clear of the insert's ends */
+    if (n < 4 * edge) {
+        sw_strlcpy(out->reason, "wedge not measurable: the insert is too short", sizeof out->reason);
+        goto out;
+    }
+    int ip = edge;
+    for (int i = edge; i < n - edge; i++)
         if (fabs(dp[i]) > fabs(dp[ip]))
             ip = i;
     double sgn = dp[ip] >= 0 ? 1 : -1;
@@ -626,7 +631,6 @@ int an_wedge_edge_measure(const an_image *im, const an_pose *pose, const an_inse
     an_smooth(dp, n, (int)(1.0 / step) | 1, ds);
     double pk = ds[ip];
     double lo0 = an_walk_cross(ds, n, ip, -1, 0.5 * pk, 1), hi0 = an_walk_cross(ds, n, ip, +1, 0.5 * pk, 1);
-    int edge = (int)ceil(1.0 / step);
     if (!isfinite(lo0) || !isfinite(hi0) || lo0 < edge || hi0 > n - 1 - edge) {
         sw_strlcpy(out->reason, "wedge edge runs into the end of the insert", sizeof out->reason);
         goto out;
