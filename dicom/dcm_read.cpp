@@ -8,15 +8,17 @@
 #include <cstdio>
 #include <cstring>
 #include <new>
+#include <sys/mman.h>
 #include <sys/stat.h>
+#include <unistd.h>
 #include <vector>
 
 #include <dcmtk/config/osconfig.h>
 #include <dcmtk/dcmdata/dcdeftag.h>
 #include <dcmtk/dcmdata/dcfilefo.h>
-#include <dcmtk/dcmdata/dcistrmb.h>
 #include <dcmtk/dcmdata/dcmetinf.h>
 #include <dcmtk/dcmdata/dcpixel.h>
+#include <dcmtk/dcmdata/dcpixseq.h>
 #include <dcmtk/dcmdata/dcsequen.h>
 #include <dcmtk/dcmdata/dcvrat.h>
 #include <dcmtk/dcmdata/dcxfer.h>
@@ -609,6 +611,43 @@ sw_status read_pixels(const Reader &r, DcmDataset *ds, E_TransferSyntax xfer, dc
     return SW_OK;
 }
 
+/* Can the pixel data hold nframes frames? Checked before a record per frame is allocated, so a
+ * damaged NumberOfFrames costs nothing. Native data: its length against rows x columns x bits;
+ * encapsulated data: at least one fragment per frame (PS3.5 A.4). Absent pixel data is left to
+ * the pixel reader. */
+sw_status check_frame_count(const Reader &r, DcmDataset *ds, E_TransferSyntax xfer, int nframes)
+{
+    DcmElement *pe = nullptr;
+    if (nframes <= 1 || ds->findAndGetElement(DCM_PixelData, pe).bad() || !pe ||
+        pe->ident() != EVR_PixelData)
+        return SW_OK;
+    if (DcmXfer(xfer).isEncapsulated()) {
+        DcmPixelSequence *seq = nullptr;
+        DcmPixelData *pd = static_cast<DcmPixelData *>(pe);
+        if (pd->getEncapsulatedRepresentation(xfer, nullptr, seq).bad() || !seq)
+            return SW_OK; /* the decoder will say what is wrong */
+        unsigned long frags = seq->card() > 0 ? seq->card() - 1 : 0; /* item 0: offset table */
+        if (frags < static_cast<unsigned long>(nframes))
+            return dcm_fail(r.err, SW_EFORMAT, r.name,
+                            "NumberOfFrames %d, but only %lu compressed fragments", nframes, frags);
+        return SW_OK;
+    }
+    int rows = 0, cols = 0, ba = 0;
+    get_int(ds, DCM_Rows, &rows);
+    get_int(ds, DCM_Columns, &cols);
+    get_int(ds, DCM_BitsAllocated, &ba);
+    if (rows < 1 || cols < 1 || ba < 1 || ba > 64)
+        return SW_OK;
+    /* bits in total, at most 2^16 * 2^16 * 64 * 1e5 < 2^63 */
+    uint64_t bits = static_cast<uint64_t>(rows) * static_cast<uint64_t>(cols) *
+                    static_cast<uint64_t>(ba) * static_cast<uint64_t>(nframes);
+    if (bits / 8 > pe->getLength())
+        return dcm_fail(r.err, SW_EFORMAT, r.name,
+                        "NumberOfFrames %d does not fit the pixel data (%lu bytes)", nframes,
+                        static_cast<unsigned long>(pe->getLength()));
+    return SW_OK;
+}
+
 /* Strings into UTF-8 when the object declares another character set. Where DCMTK cannot convert
  * (unknown or broken set) the strings stay as stored and dcm_copy_text masks what is not UTF-8. */
 void to_utf8(DcmDataset *ds)
@@ -670,6 +709,9 @@ sw_status build(const Reader &r, DcmFileFormat &ff, dcm_file **out)
             nframes = static_cast<int>(v);
         }
     }
+    st = check_frame_count(r, ds, xfer, nframes);
+    if (st != SW_OK)
+        goto out;
     if (ds->findAndGetSequence(DCM_PerFrameFunctionalGroupsSequence, per_seq).bad())
         per_seq = nullptr;
     if (per_seq && per_seq->card() < static_cast<unsigned long>(nframes)) {
@@ -772,6 +814,33 @@ sw_status check_args(const Reader &r, dcm_file **out)
     return SW_OK;
 }
 
+/* Loads what DCMTK opens as `path` (a file, or a memfd through /proc) and builds the result;
+ * messages name r.name. has_dicm: whether the input has the DICM prefix. */
+sw_status load(const Reader &r, const char *path, bool has_dicm, dcm_file **out)
+{
+    try {
+        DcmFileFormat ff;
+        OFCondition c = ff.loadFile(path, EXS_Unknown, EGL_noChange, DCM_MaxReadLength,
+                                    ERM_autoDetect);
+        if (c.bad())
+            return load_failed(r, c, has_dicm);
+        if (!looks_dicom(ff))
+            return dcm_fail(r.err, SW_EFORMAT, r.name, "not a DICOM file");
+        if (!r.header_only) {
+            /* Everything into memory now: the file may be moved once we return. */
+            c = ff.loadAllDataIntoMemory();
+            if (c.bad())
+                return dcm_fail(r.err, SW_EFORMAT, r.name, "truncated or unreadable data (%s)",
+                                c.text());
+        }
+        return build(r, ff, out);
+    } catch (const std::bad_alloc &) {
+        return dcm_fail(r.err, SW_ENOMEM, r.name, "out of memory");
+    } catch (...) {
+        return dcm_fail(r.err, SW_EFORMAT, r.name, "unexpected failure while parsing");
+    }
+}
+
 } /* namespace */
 
 extern "C" sw_status dcm_read_file(const char *path, const dcm_read_opts *opts, dcm_file **out,
@@ -783,71 +852,57 @@ extern "C" sw_status dcm_read_file(const char *path, const dcm_read_opts *opts, 
         return st;
     if (!path)
         return dcm_fail(err, SW_EINVAL, r.name, "no path given");
-    try {
-        struct stat sb;
-        if (stat(path, &sb) != 0)
-            return dcm_fail(err, SW_EIO, path, "%s", strerror(errno));
-        if (!S_ISREG(sb.st_mode))
-            return dcm_fail(err, SW_EIO, path, "not a regular file");
-        if (sb.st_size == 0)
-            return dcm_fail(err, SW_EFORMAT, path, "empty file");
-        DcmFileFormat ff;
-        OFCondition c = ff.loadFile(path, EXS_Unknown, EGL_noChange, DCM_MaxReadLength,
-                                    ERM_autoDetect);
-        if (c.bad())
-            return load_failed(r, c, file_has_dicm(path));
-        if (!looks_dicom(ff))
-            return dcm_fail(err, SW_EFORMAT, path, "not a DICOM file");
-        if (!r.header_only) {
-            /* Everything into memory now: the file may be moved once we return. */
-            c = ff.loadAllDataIntoMemory();
-            if (c.bad())
-                return dcm_fail(err, SW_EFORMAT, path, "truncated or unreadable data (%s)",
-                                c.text());
-        }
-        return build(r, ff, out);
-    } catch (const std::bad_alloc &) {
-        return dcm_fail(err, SW_ENOMEM, path, "out of memory");
-    } catch (...) {
-        return dcm_fail(err, SW_EFORMAT, path, "unexpected failure while parsing");
-    }
+    struct stat sb;
+    if (stat(path, &sb) != 0)
+        return dcm_fail(err, SW_EIO, path, "%s", strerror(errno));
+    if (!S_ISREG(sb.st_mode))
+        return dcm_fail(err, SW_EIO, path, "not a regular file");
+    if (sb.st_size == 0)
+        return dcm_fail(err, SW_EFORMAT, path, "empty file");
+    return load(r, path, file_has_dicm(path), out);
 }
 
+/* The buffer goes into an anonymous memory file and is read like a file: DCMTK's file stream
+ * checks every value length against the bytes that remain. Its buffer stream did not (measured
+ * under AddressSanitizer: with a damaged length field of 2.9 GB one read spent 0.7 s clearing
+ * freshly allocated memory; through the memory file, none). */
 extern "C" sw_status dcm_read_buffer(const void *data, size_t len, const char *name,
                                      const dcm_read_opts *opts, dcm_file **out, sw_error *err)
 {
     Reader r = {name ? name : "(buffer)", err, opts ? opts->header_only : 0};
     sw_status st = check_args(r, out);
+    int fd = -1;
+    const unsigned char *p = static_cast<const unsigned char *>(data);
+    size_t done = 0;
+    char proc[64];
     if (st != SW_OK)
         return st;
     if (!data && len)
         return dcm_fail(err, SW_EINVAL, r.name, "no data given");
     if (len == 0)
         return dcm_fail(err, SW_EFORMAT, r.name, "empty buffer");
-    if (len > static_cast<size_t>(INT64_MAX))
-        return dcm_fail(err, SW_EINVAL, r.name, "buffer too large");
-    try {
-        DcmFileFormat ff;
-        DcmInputBufferStream in;
-        in.setBuffer(data, static_cast<offile_off_t>(len));
-        in.setEos();
-        ff.transferInit();
-        /* A buffer stream cannot load values later: read them all now. */
-        OFCondition c = ff.read(in, EXS_Unknown, EGL_noChange, 0xFFFFFFFEu);
-        ff.transferEnd();
-        if (c.bad())
-            return load_failed(r, c, dicm_at_128(static_cast<const unsigned char *>(data), len));
-        if (!looks_dicom(ff))
-            return dcm_fail(err, SW_EFORMAT, r.name, "not a DICOM file");
-        c = ff.loadAllDataIntoMemory();
-        if (c.bad())
-            return dcm_fail(err, SW_EFORMAT, r.name, "truncated or unreadable data (%s)", c.text());
-        return build(r, ff, out);
-    } catch (const std::bad_alloc &) {
-        return dcm_fail(err, SW_ENOMEM, r.name, "out of memory");
-    } catch (...) {
-        return dcm_fail(err, SW_EFORMAT, r.name, "unexpected failure while parsing");
+    fd = memfd_create("swdicom", MFD_CLOEXEC);
+    if (fd < 0) {
+        st = dcm_fail(err, SW_EIO, r.name, "memfd_create: %s", strerror(errno));
+        goto out;
     }
+    while (done < len) {
+        ssize_t w = write(fd, p + done, len - done);
+        if (w < 0 && errno == EINTR)
+            continue;
+        if (w <= 0) {
+            st = dcm_fail(err, SW_EIO, r.name, "cannot buffer the data: %s",
+                          w < 0 ? strerror(errno) : "short write");
+            goto out;
+        }
+        done += static_cast<size_t>(w);
+    }
+    snprintf(proc, sizeof proc, "/proc/self/fd/%d", fd);
+    st = load(r, proc, dicm_at_128(p, len), out);
+out:
+    if (fd >= 0)
+        close(fd);
+    return st;
 }
 
 extern "C" void dcm_file_free(dcm_file *f)
