@@ -39,6 +39,7 @@ static const field config_fields[] = {
     S("watch", "archive", wd_config, archive, "", "measured files go here (empty: 'archive' beside the folder)"),
     S("watch", "quarantine", wd_config, quarantine, "", "bad files go here with their reason (empty: 'quarantine' beside the folder)"),
     S("watch", "ignored", wd_config, ignored, "", "files that are not phantom series (empty: 'ignored' beside the folder)"),
+    S("watch", "images", wd_config, images, "", "annotated PNGs of each measured series (empty: 'images' beside the folder)"),
     B("watch", "move_files", wd_config, move_files, "yes", "move files when done (no: leave them in place)"),
     D("watch", "quiet_seconds", wd_config, quiet_seconds, "30", 1, 86400, "analyse an incomplete series after this long without a new image"),
     S("phantom", "model_file", wd_config, model_file, "", "phantom model file (empty: built-in large phantom)"),
@@ -49,6 +50,8 @@ static const field config_fields[] = {
     E("analysis", "half_level", wd_config, half_level, "zero", half_levels, "half level of a ramp profile: zero, floor or background"),
     S("alert", "command", wd_config, alert_command, "", "command run for each alert, facts in SLICEWARDEN_* variables"),
     D("alert", "retry_seconds", wd_config, alert_retry_seconds, "300", 1, 86400, "retry a failed alert command after this long"),
+    D("alert", "timeout_seconds", wd_config, alert_timeout_seconds, "30", 1, 3600, "kill an alert command that runs longer than this"),
+    I("alert", "max_attempts", wd_config, alert_max_attempts, "10", 1, 1000, "give an alert up after this many failed attempts"),
     E("log", "level", wd_config, log_level, "info", log_levels, "debug, info, warning or error"),
 };
 
@@ -398,6 +401,8 @@ void wd_config_resolve(wd_config *c)
         beside(c->quarantine, sizeof c->quarantine, c->folder, "quarantine");
     if (!c->ignored[0])
         beside(c->ignored, sizeof c->ignored, c->folder, "ignored");
+    if (!c->images[0])
+        beside(c->images, sizeof c->images, c->folder, "images");
 }
 
 void wd_config_print(const wd_config *c, FILE *f)

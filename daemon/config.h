@@ -47,6 +47,10 @@ typedef struct wd_config {
     /* [alert] */
     char alert_command[1024];
     double alert_retry_seconds;
+    /* added for the watch service (additive): */
+    double alert_timeout_seconds; /* a command running longer is killed */
+    int alert_max_attempts;       /* failed attempts before an alert is given up */
+    char images[PATH_MAX];        /* annotated PNGs; empty: "images" beside the watch folder */
     /* [log] */
     int log_level;        /* wd_log_level */
     /* [aliases] station = alias */
@@ -60,7 +64,7 @@ void wd_config_default(wd_config *c);
 /* Reads path over the defaults into c. On failure c is left with the defaults only and err names
  * the file, the line and the reason. */
 sw_status wd_config_load(wd_config *c, const char *path, sw_error *err);
-/* Fills the archive/quarantine/ignored folders left empty from the watch folder. */
+/* Fills the archive/quarantine/ignored/images folders left empty from the watch folder. */
 void wd_config_resolve(wd_config *c);
 /* Prints the effective configuration as an INI file that wd_config_load reads back. */
 void wd_config_print(const wd_config *c, FILE *f);

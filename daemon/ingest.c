@@ -1,0 +1,636 @@
+/* ingest.c: what the watch loop does to a single file before any series logic: name rules, the
+ * content hash, whole-file reads, safe folder names, moves that never overwrite, and the series
+ * classification by name. */
+#include "watch.h"
+
+#include <ctype.h>
+#include <errno.h>
+#include <fcntl.h>
+#include <fnmatch.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <strings.h>
+#include <sys/stat.h>
+#include <time.h>
+#include <unistd.h>
+
+int wd_move_force_copy;
+
+/* ---- names ---- */
+
+/* Suffixes of names under which receivers, browsers, copy tools and editors write a file before it
+ * gets its final name (common practice, from memory: dcm4che's storescp writes NAME.part; WinSCP
+ * .filepart; Chromium .crdownload; Firefox .part; rsync and many receivers a dot-file; editors NAME~
+ * and .swp). Compared without regard to case. */
+static const char *const TEMP_SUFFIXES[] = {
+    ".tmp", ".temp", ".part", ".partial", ".filepart", ".crdownload", ".download", ".incomplete",
+    ".inprogress", ".writing", ".uploading", ".lock", ".swp", ".swx", ".!sync", ".dcmtmp", NULL,
+};
+
+int wd_name_is_temporary(const char *base)
+{
+    size_t len = base ? strlen(base) : 0;
+    if (len == 0)
+        return 1;
+    if (base[0] == '.' || base[len - 1] == '~')
+        return 1;
+    if (!strncmp(base, "~$", 2)) /* office-style lock files */
+        return 1;
+    if (len > 1 && base[0] == '#' && base[len - 1] == '#') /* editor autosave */
+        return 1;
+    for (int i = 0; TEMP_SUFFIXES[i]; i++) {
+        size_t k = strlen(TEMP_SUFFIXES[i]);
+        if (len > k && !strcasecmp(base + len - k, TEMP_SUFFIXES[i]))
+            return 1;
+    }
+    return 0;
+}
+
+char *wd_safe_component(const char *in, const char *fallback, char *out, size_t n)
+{
+    if (!in || !*in)
+        in = fallback && *fallback ? fallback : "unnamed";
+    size_t k = 0;
+    for (; in[k] && k + 1 < n; k++) {
+        unsigned char c = (unsigned char)in[k];
+        int ok = isascii(c) && (isalnum(c) || c == '.' || c == '_' || c == '+' || c == '-');
+        out[k] = ok ? (char)c : '_';
+    }
+    out[k] = '\0';
+    if (out[0] == '.' || out[0] == '-')
+        out[0] = '_';
+    /* ".." became "_." above; a name of dots only is not possible any more. */
+    return out;
+}
+
+/* ---- SHA-256 (FIPS 180-4, section 6.2) ---- */
+
+static const uint32_t K256[64] = {
+    0x428a2f98, 0x71374491, 0xb5c0fbcf, 0xe9b5dba5, 0x3956c25b, 0x59f111f1, 0x923f82a4, 0xab1c5ed5,
+    0xd807aa98, 0x12835b01, 0x243185be, 0x550c7dc3, 0x72be5d74, 0x80deb1fe, 0x9bdc06a7, 0xc19bf174,
+    0xe49b69c1, 0xefbe4786, 0x0fc19dc6, 0x240ca1cc, 0x2de92c6f, 0x4a7484aa, 0x5cb0a9dc, 0x76f988da,
+    0x983e5152, 0xa831c66d, 0xb00327c8, 0xbf597fc7, 0xc6e00bf3, 0xd5a79147, 0x06ca6351, 0x14292967,
+    0x27b70a85, 0x2e1b2138, 0x4d2c6dfc, 0x53380d13, 0x650a7354, 0x766a0abb, 0x81c2c92e, 0x92722c85,
+    0xa2bfe8a1, 0xa81a664b, 0xc24b8b70, 0xc76c51a3, 0xd192e819, 0xd6990624, 0xf40e3585, 0x106aa070,
+    0x19a4c116, 0x1e376c08, 0x2748774c, 0x34b0bcb5, 0x391c0cb3, 0x4ed8aa4a, 0x5b9cca4f, 0x682e6ff3,
+    0x748f82ee, 0x78a5636f, 0x84c87814, 0x8cc70208, 0x90befffa, 0xa4506ceb, 0xbef9a3f7, 0xc67178f2,
+};
+
+static uint32_t ror(uint32_t x, int n) { return (x >> n) | (x << (32 - n)); }
+
+static void sha_block(uint32_t h[8], const unsigned char *p)
+{
+    uint32_t w[64];
+    for (int i = 0; i < 16; i++)
+        w[i] = (uint32_t)p[4 * i] << 24 | (uint32_t)p[4 * i + 1] << 16 |
+               (uint32_t)p[4 * i + 2] << 8 | (uint32_t)p[4 * i + 3];
+    for (int i = 16; i < 64; i++) {
+        uint32_t s0 = ror(w[i - 15], 7) ^ ror(w[i - 15], 18) ^ (w[i - 15] >> 3);
+        uint32_t s1 = ror(w[i - 2], 17) ^ ror(w[i - 2], 19) ^ (w[i - 2] >> 10);
+        w[i] = w[i - 16] + s0 + w[i - 7] + s1;
+    }
+    uint32_t a = h[0], b = h[1], c = h[2], d = h[3], e = h[4], f = h[5], g = h[6], hh = h[7];
+    for (int i = 0; i < 64; i++) {
+        uint32_t t1 = hh + (ror(e, 6) ^ ror(e, 11) ^ ror(e, 25)) + ((e & f) ^ (~e & g)) + K256[i] +
+                      w[i];
+        uint32_t t2 = (ror(a, 2) ^ ror(a, 13) ^ ror(a, 22)) + ((a & b) ^ (a & c) ^ (b & c));
+        hh = g;
+        g = f;
+        f = e;
+        e = d + t1;
+        d = c;
+        c = b;
+        b = a;
+        a = t1 + t2;
+    }
+    h[0] += a;
+    h[1] += b;
+    h[2] += c;
+    h[3] += d;
+    h[4] += e;
+    h[5] += f;
+    h[6] += g;
+    h[7] += hh;
+}
+
+void wd_sha256_init(wd_sha256 *s)
+{
+    static const uint32_t H0[8] = {0x6a09e667, 0xbb67ae85, 0x3c6ef372, 0xa54ff53a,
+                                   0x510e527f, 0x9b05688c, 0x1f83d9ab, 0x5be0cd19};
+    memcpy(s->h, H0, sizeof H0);
+    s->len = 0;
+    s->nbuf = 0;
+}
+
+void wd_sha256_update(wd_sha256 *s, const void *data, size_t n)
+{
+    const unsigned char *p = data;
+    s->len += n;
+    if (s->nbuf) {
+        size_t k = 64 - s->nbuf < n ? 64 - s->nbuf : n;
+        memcpy(s->buf + s->nbuf, p, k);
+        s->nbuf += k;
+        p += k;
+        n -= k;
+        if (s->nbuf < 64)
+            return;
+        sha_block(s->h, s->buf);
+        s->nbuf = 0;
+    }
+    for (; n >= 64; p += 64, n -= 64)
+        sha_block(s->h, p);
+    if (n) {
+        memcpy(s->buf, p, n);
+        s->nbuf = n;
+    }
+}
+
+void wd_sha256_final(wd_sha256 *s, unsigned char out[32])
+{
+    uint64_t bits = s->len * 8;
+    unsigned char pad[72] = {0x80};
+    size_t npad = (s->nbuf < 56 ? 56 : 120) - s->nbuf;
+    for (int i = 0; i < 8; i++)
+        pad[npad + (size_t)i] = (unsigned char)(bits >> (56 - 8 * i));
+    uint64_t keep = s->len;
+    wd_sha256_update(s, pad, npad + 8);
+    s->len = keep;
+    for (int i = 0; i < 8; i++) {
+        out[4 * i] = (unsigned char)(s->h[i] >> 24);
+        out[4 * i + 1] = (unsigned char)(s->h[i] >> 16);
+        out[4 * i + 2] = (unsigned char)(s->h[i] >> 8);
+        out[4 * i + 3] = (unsigned char)s->h[i];
+    }
+}
+
+static void hash_text(wd_sha256 *s, char out[WD_HASH_MAX])
+{
+    static const char hex[] = "0123456789abcdef";
+    unsigned char dig[32];
+    wd_sha256_final(s, dig);
+    memcpy(out, "sha256:", 7);
+    for (int i = 0; i < 32; i++) {
+        out[7 + 2 * i] = hex[dig[i] >> 4];
+        out[8 + 2 * i] = hex[dig[i] & 15];
+    }
+    out[71] = '\0';
+}
+
+void wd_sha256_text(const void *data, size_t n, char out[WD_HASH_MAX])
+{
+    wd_sha256 s;
+    wd_sha256_init(&s);
+    wd_sha256_update(&s, data, n);
+    hash_text(&s, out);
+}
+
+/* ---- whole-file reads ---- */
+
+static sw_status open_regular(const char *path, int *fd_out, struct stat *st, int *errno_out,
+                              sw_error *err)
+{
+    *fd_out = -1;
+    int fd = open(path, O_RDONLY | O_CLOEXEC | O_NOFOLLOW | O_NONBLOCK);
+    if (fd < 0) {
+        int e = errno;
+        if (errno_out)
+            *errno_out = e;
+        if (e == ENOENT)
+            return sw_error_set(err, SW_ENOTFOUND, "%s: vanished before it was read", path);
+        if (e == ELOOP)
+            return sw_error_set(err, SW_EINVAL, "%s: a symbolic link, not a file", path);
+        return sw_error_set(err, SW_EIO, "%s: cannot open: %s", path, strerror(e));
+    }
+    if (fstat(fd, st) != 0 || !S_ISREG(st->st_mode)) {
+        int e = errno;
+        close(fd);
+        if (errno_out)
+            *errno_out = e;
+        return sw_error_set(err, SW_EINVAL, "%s: not a regular file", path);
+    }
+    if ((int64_t)st->st_size > WD_MAX_FILE_BYTES) {
+        close(fd);
+        return sw_error_set(err, SW_EUNSUPPORTED, "%s: %lld bytes, more than the %lld accepted",
+                            path, (long long)st->st_size, (long long)WD_MAX_FILE_BYTES);
+    }
+    *fd_out = fd;
+    return SW_OK;
+}
+
+/* Ownership: on success b->data is a new buffer released by wd_blob_free; on failure b is empty. */
+sw_status wd_blob_read(const char *path, wd_blob *b, int *errno_out, sw_error *err)
+{
+    sw_status rc = SW_OK;
+    struct stat st;
+    int fd = -1;
+    unsigned char *data = NULL;
+    size_t got = 0;
+    memset(b, 0, sizeof *b);
+    if (errno_out)
+        *errno_out = 0;
+    if ((rc = open_regular(path, &fd, &st, errno_out, err)) != SW_OK)
+        goto out;
+    size_t cap = (size_t)st.st_size;
+    /* One byte more than the size says, so that a file still growing is noticed. */
+    if (!(data = malloc(cap + 1))) {
+        rc = sw_error_set(err, SW_ENOMEM, "%s: out of memory for %zu bytes", path, cap);
+        goto out;
+    }
+    for (;;) {
+        ssize_t r = read(fd, data + got, cap + 1 - got);
+        if (r < 0 && errno == EINTR)
+            continue;
+        if (r < 0) {
+            if (errno_out)
+                *errno_out = errno;
+            rc = sw_error_set(err, SW_EIO, "%s: read failed: %s", path, strerror(errno));
+            goto out;
+        }
+        if (r == 0)
+            break;
+        got += (size_t)r;
+        if (got > cap) {
+            rc = sw_error_set(err, SW_EBUSY, "%s: grew while it was read", path);
+            goto out;
+        }
+    }
+    b->data = data;
+    b->len = got;
+    b->mtime = st.st_mtim;
+    b->ctime = st.st_ctim;
+    wd_sha256_text(data, got, b->hash);
+    data = NULL;
+out:
+    if (fd >= 0)
+        close(fd);
+    free(data);
+    return rc;
+}
+
+void wd_blob_free(wd_blob *b)
+{
+    if (!b)
+        return;
+    free(b->data);
+    b->data = NULL;
+    b->len = 0;
+}
+
+sw_status wd_file_hash(const char *path, char out[WD_HASH_MAX], sw_error *err)
+{
+    sw_status rc = SW_OK;
+    struct stat st;
+    int fd = -1;
+    unsigned char buf[65536];
+    wd_sha256 s;
+    out[0] = '\0';
+    if ((rc = open_regular(path, &fd, &st, NULL, err)) != SW_OK)
+        return rc;
+    wd_sha256_init(&s);
+    for (;;) {
+        ssize_t r = read(fd, buf, sizeof buf);
+        if (r < 0 && errno == EINTR)
+            continue;
+        if (r < 0) {
+            rc = sw_error_set(err, SW_EIO, "%s: read failed: %s", path, strerror(errno));
+            goto out;
+        }
+        if (r == 0)
+            break;
+        wd_sha256_update(&s, buf, (size_t)r);
+    }
+    hash_text(&s, out);
+out:
+    close(fd);
+    return rc;
+}
+
+/* ---- folders ---- */
+
+sw_status wd_mkdirs(const char *dir, sw_error *err)
+{
+    char p[PATH_MAX];
+    if (sw_strlcpy(p, dir, sizeof p) >= sizeof p - 1)
+        return sw_error_set(err, SW_EINVAL, "%s: path too long", dir);
+    size_t len = strlen(p);
+    for (size_t i = 1; i <= len; i++) {
+        if (p[i] != '/' && p[i] != '\0')
+            continue;
+        char keep = p[i];
+        p[i] = '\0';
+        if (mkdir(p, 0775) != 0 && errno != EEXIST)
+            return sw_error_set(err, SW_EIO, "%s: cannot create: %s", p, strerror(errno));
+        p[i] = keep;
+    }
+    struct stat st;
+    if (stat(dir, &st) != 0 || !S_ISDIR(st.st_mode))
+        return sw_error_set(err, SW_EIO, "%s: not a folder", dir);
+    return SW_OK;
+}
+
+static void dir_of(const char *path, char *out, size_t n)
+{
+    sw_strlcpy(out, path, n);
+    char *slash = strrchr(out, '/');
+    if (!slash)
+        sw_strlcpy(out, ".", n);
+    else if (slash == out)
+        out[1] = '\0';
+    else
+        *slash = '\0';
+}
+
+static const char *base_of(const char *path)
+{
+    const char *slash = strrchr(path, '/');
+    return slash ? slash + 1 : path;
+}
+
+/* fsync of a folder, so that a rename or unlink in it survives a power loss. Best effort: some file
+ * systems refuse fsync on folders, and the move has happened either way. */
+static void sync_dir_of(const char *path)
+{
+    char dir[PATH_MAX];
+    dir_of(path, dir, sizeof dir);
+    int fd = open(dir, O_RDONLY | O_DIRECTORY | O_CLOEXEC);
+    if (fd >= 0) {
+        (void)fsync(fd);
+        close(fd);
+    }
+}
+
+int wd_path_inside(const char *path, const char *dir)
+{
+    char a[PATH_MAX], b[PATH_MAX];
+    if (!realpath(path, a))
+        sw_strlcpy(a, path, sizeof a);
+    if (!realpath(dir, b))
+        sw_strlcpy(b, dir, sizeof b);
+    size_t la = strlen(a), lb = strlen(b);
+    while (la > 1 && a[la - 1] == '/')
+        a[--la] = '\0';
+    while (lb > 1 && b[lb - 1] == '/')
+        b[--lb] = '\0';
+    if (strncmp(a, b, lb) != 0)
+        return 0;
+    return a[lb] == '\0' || a[lb] == '/' || (lb == 1 && b[0] == '/');
+}
+
+static int exists(const char *path)
+{
+    struct stat st;
+    return lstat(path, &st) == 0 || errno != ENOENT;
+}
+
+sw_status wd_pick_target(const char *dir, const char *base, char *out, size_t n, sw_error *err)
+{
+    sw_status rc = wd_mkdirs(dir, err);
+    if (rc != SW_OK)
+        return rc;
+    char name[256], reason[PATH_MAX + 16];
+    wd_safe_component(base, "file", name, 200);
+    for (int k = 0; k < 100000; k++) {
+        int len = k ? snprintf(out, n, "%s/%s.%d", dir, name, k) : snprintf(out, n, "%s/%s", dir, name);
+        if (len < 0 || (size_t)len >= n)
+            return sw_error_set(err, SW_EINVAL, "%s/%s: path too long", dir, name);
+        snprintf(reason, sizeof reason, "%s.reason.txt", out);
+        if (!exists(out) && !exists(reason))
+            return SW_OK;
+    }
+    return sw_error_set(err, SW_EIO, "%s: no free name for %s", dir, name);
+}
+
+/* Puts src at dst without replacing: 0, or -1 with errno (EEXIST when dst exists, EXDEV across file
+ * systems). */
+static int place_noreplace(const char *src, const char *dst)
+{
+    if (renameat2(AT_FDCWD, src, AT_FDCWD, dst, RENAME_NOREPLACE) == 0)
+        return 0;
+    if (errno != EINVAL && errno != ENOSYS && errno != ENOTSUP)
+        return -1;
+    /* The file system does not know RENAME_NOREPLACE: link fails on an existing name. */
+    if (link(src, dst) == 0) {
+        if (unlink(src) != 0) {
+            int e = errno;
+            (void)unlink(dst);
+            errno = e;
+            return -1;
+        }
+        return 0;
+    }
+    if (errno != EPERM && errno != ENOTSUP && errno != EOPNOTSUPP)
+        return -1;
+    /* No hard links either (vfat and the like): check, then rename. One writer owns these folders. */
+    if (exists(dst)) {
+        errno = EEXIST;
+        return -1;
+    }
+    return rename(src, dst);
+}
+
+static sw_status copy_then_unlink(const char *src, const char *dst, sw_error *err)
+{
+    sw_status rc = SW_OK;
+    int in = -1, outfd = -1, made = 0;
+    char tmp[PATH_MAX], dir[PATH_MAX];
+    unsigned char buf[65536];
+    struct stat st;
+    dir_of(dst, dir, sizeof dir);
+    if (snprintf(tmp, sizeof tmp, "%s/.%s.swpart", dir, base_of(dst)) >= (int)sizeof tmp)
+        return sw_error_set(err, SW_EINVAL, "%s: path too long", dst);
+    if ((in = open(src, O_RDONLY | O_CLOEXEC | O_NOFOLLOW)) < 0 || fstat(in, &st) != 0) {
+        rc = sw_error_set(err, errno == ENOENT ? SW_ENOTFOUND : SW_EIO, "%s: cannot open: %s", src,
+                          strerror(errno));
+        goto out;
+    }
+    /* The temporary name is ours (hidden, derived from the target): a leftover of a killed copy is
+     * simply truncated and reused. */
+    outfd = open(tmp, O_WRONLY | O_CREAT | O_TRUNC | O_CLOEXEC | O_NOFOLLOW, st.st_mode & 0777);
+    if (outfd < 0) {
+        rc = sw_error_set(err, SW_EIO, "%s: cannot create: %s", tmp, strerror(errno));
+        goto out;
+    }
+    made = 1;
+    for (;;) {
+        ssize_t r = read(in, buf, sizeof buf);
+        if (r < 0 && errno == EINTR)
+            continue;
+        if (r < 0) {
+            rc = sw_error_set(err, SW_EIO, "%s: read failed: %s", src, strerror(errno));
+            goto out;
+        }
+        if (r == 0)
+            break;
+        for (ssize_t off = 0; off < r;) {
+            ssize_t w = write(outfd, buf + off, (size_t)(r - off));
+            if (w < 0 && errno == EINTR)
+                continue;
+            if (w < 0) {
+                rc = sw_error_set(err, SW_EIO, "%s: write failed: %s", tmp, strerror(errno));
+                goto out;
+            }
+            off += w;
+        }
+    }
+    const struct timespec times[2] = {st.st_atim, st.st_mtim};
+    (void)futimens(outfd, times);
+    if (fsync(outfd) != 0) {
+        rc = sw_error_set(err, SW_EIO, "%s: fsync failed: %s", tmp, strerror(errno));
+        goto out;
+    }
+    if (close(outfd) != 0) {
+        outfd = -1;
+        rc = sw_error_set(err, SW_EIO, "%s: close failed: %s", tmp, strerror(errno));
+        goto out;
+    }
+    outfd = -1;
+    if (place_noreplace(tmp, dst) != 0) {
+        rc = errno == EEXIST ? sw_error_set(err, SW_EBUSY, "%s: exists", dst)
+                             : sw_error_set(err, SW_EIO, "%s: cannot create: %s", dst,
+                                            strerror(errno));
+        goto out;
+    }
+    made = 0;
+    sync_dir_of(dst);
+    /* The copy is durable: only now may the original go. */
+    if (unlink(src) != 0) {
+        rc = sw_error_set(err, SW_EIO, "%s: copied to %s but cannot remove: %s", src, dst,
+                          strerror(errno));
+        goto out;
+    }
+    sync_dir_of(src);
+out:
+    if (in >= 0)
+        close(in);
+    if (outfd >= 0)
+        close(outfd);
+    if (made)
+        (void)unlink(tmp);
+    return rc;
+}
+
+sw_status wd_move_noreplace(const char *src, const char *dst, sw_error *err)
+{
+    if (!wd_move_force_copy) {
+        if (place_noreplace(src, dst) == 0) {
+            sync_dir_of(dst);
+            sync_dir_of(src);
+            return SW_OK;
+        }
+        if (errno == EEXIST)
+            return sw_error_set(err, SW_EBUSY, "%s: exists", dst);
+        if (errno == ENOENT && !exists(src))
+            return sw_error_set(err, SW_ENOTFOUND, "%s: vanished", src);
+        if (errno != EXDEV)
+            return sw_error_set(err, SW_EIO, "%s: cannot move to %s: %s", src, dst,
+                                strerror(errno));
+    }
+    return copy_then_unlink(src, dst, err);
+}
+
+sw_status wd_write_text_atomic(const char *path, const char *text, sw_error *err)
+{
+    sw_status rc = SW_OK;
+    char tmp[PATH_MAX], dir[PATH_MAX];
+    dir_of(path, dir, sizeof dir);
+    if (snprintf(tmp, sizeof tmp, "%s/.%s.swtmp", dir, base_of(path)) >= (int)sizeof tmp)
+        return sw_error_set(err, SW_EINVAL, "%s: path too long", path);
+    int fd = open(tmp, O_WRONLY | O_CREAT | O_TRUNC | O_CLOEXEC | O_NOFOLLOW, 0666);
+    if (fd < 0)
+        return sw_error_set(err, SW_EIO, "%s: cannot create: %s", tmp, strerror(errno));
+    size_t n = strlen(text);
+    for (size_t off = 0; off < n;) {
+        ssize_t w = write(fd, text + off, n - off);
+        if (w < 0 && errno == EINTR)
+            continue;
+        if (w < 0) {
+            rc = sw_error_set(err, SW_EIO, "%s: write failed: %s", tmp, strerror(errno));
+            goto out;
+        }
+        off += (size_t)w;
+    }
+    if (fsync(fd) != 0) {
+        rc = sw_error_set(err, SW_EIO, "%s: fsync failed: %s", tmp, strerror(errno));
+        goto out;
+    }
+out:
+    if (close(fd) != 0 && rc == SW_OK)
+        rc = sw_error_set(err, SW_EIO, "%s: close failed: %s", tmp, strerror(errno));
+    if (rc == SW_OK && rename(tmp, path) != 0)
+        rc = sw_error_set(err, SW_EIO, "%s: cannot rename into place: %s", path, strerror(errno));
+    if (rc != SW_OK)
+        (void)unlink(tmp);
+    else
+        sync_dir_of(path);
+    return rc;
+}
+
+/* ---- classification ---- */
+
+static int any_pattern(const char *patterns, const char *value)
+{
+    char buf[256];
+    if (!value || !*value || !patterns || !*patterns)
+        return 0;
+    sw_strlcpy(buf, patterns, sizeof buf);
+    char *save = NULL;
+    for (char *p = strtok_r(buf, "|", &save); p; p = strtok_r(NULL, "|", &save)) {
+        while (*p == ' ')
+            p++;
+        size_t len = strlen(p);
+        while (len && p[len - 1] == ' ')
+            p[--len] = '\0';
+        if (*p && fnmatch(p, value, 0) == 0)
+            return 1;
+    }
+    return 0;
+}
+
+wd_match wd_classify(const wd_config *c, const dcm_image *d)
+{
+    if (any_pattern(c->t1_match, d->series_description) || any_pattern(c->t1_match, d->protocol_name))
+        return WD_MATCH_T1;
+    if (any_pattern(c->t2_match, d->series_description) || any_pattern(c->t2_match, d->protocol_name))
+        return WD_MATCH_T2;
+    return c->match_by_content ? WD_MATCH_CONTENT : WD_MATCH_NONE;
+}
+
+const char *wd_match_name(wd_match m)
+{
+    switch (m) {
+    case WD_MATCH_T1: return "t1";
+    case WD_MATCH_T2: return "t2";
+    case WD_MATCH_CONTENT: return "content";
+    case WD_MATCH_NONE: break;
+    }
+    return "none";
+}
+
+int wd_match_echoes(wd_match m)
+{
+    return m == WD_MATCH_T1 ? 1 : m == WD_MATCH_T2 ? 2 : 0;
+}
+
+const char *wd_tolerance_key(wd_match m, const dcm_image *d)
+{
+    if (d && !strcasecmp(d->mr_acquisition_type, "3D"))
+        return "3d";
+    return m == WD_MATCH_T1 ? "t1" : m == WD_MATCH_T2 ? "t2" : "other";
+}
+
+/* ---- time ---- */
+
+double wd_now_mono(void)
+{
+    struct timespec ts;
+    clock_gettime(CLOCK_MONOTONIC, &ts);
+    return (double)ts.tv_sec + ts.tv_nsec * 1e-9;
+}
+
+double wd_now_real(void)
+{
+    struct timespec ts;
+    clock_gettime(CLOCK_REALTIME, &ts);
+    return (double)ts.tv_sec + ts.tv_nsec * 1e-9;
+}
