@@ -12,9 +12,9 @@
 
 typedef struct plan_set {
     int nf, n;
-    fftwf_plan rows;  /* nf transforms of length nf along rows (forward) */
-    fftwf_plan cols;  /* n transforms of length nf down columns of an nf x n array (forward) */
-    fftwf_plan inv;   /* n x n inverse */
+    fftwf_plan rows; /* nf transforms of length nf along rows (forward) */
+    fftwf_plan cols; /* n transforms of length nf down columns of an nf x n array (forward) */
+    fftwf_plan inv;  /* n x n inverse */
 } plan_set;
 
 static pthread_mutex_t plan_lock = PTHREAD_MUTEX_INITIALIZER;
@@ -35,7 +35,8 @@ void sim_fft_free(float *p)
         fftwf_free(p);
 }
 
-/* The cached plans for (nf, n), made on first use; NULL when planning fails or the cache is full. */
+/* The cached plans for (nf, n), made on first use; NULL when planning fails or the cache is
+ * full. */
 static const plan_set *get_plans(int nf, int n)
 {
     const plan_set *found = NULL;
@@ -56,8 +57,8 @@ static const plan_set *get_plans(int nf, int n)
     int len[1] = {nf};
     ps->rows = fftwf_plan_many_dft(1, len, nf, a, NULL, 1, nf, a, NULL, 1, nf, FFTW_FORWARD,
                                    FFTW_ESTIMATE);
-    ps->cols = fftwf_plan_many_dft(1, len, n, a, NULL, n, 1, a, NULL, n, 1, FFTW_FORWARD,
-                                   FFTW_ESTIMATE);
+    ps->cols =
+        fftwf_plan_many_dft(1, len, n, a, NULL, n, 1, a, NULL, n, 1, FFTW_FORWARD, FFTW_ESTIMATE);
     ps->inv = fftwf_plan_dft_2d(n, n, b, b, FFTW_BACKWARD, FFTW_ESTIMATE);
     if (!ps->rows || !ps->cols || !ps->inv) {
         if (ps->rows)

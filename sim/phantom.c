@@ -93,7 +93,8 @@ sw_status sim_scene_build(const an_model *m, const sim_pose *pose, double shift_
     if (m->method == AN_METHOD_SINGLE_WEDGE)
         return sw_error_set(err, SW_EUNSUPPORTED,
                             "simulator: phantom model %s: a single-wedge thickness insert is not "
-                            "modelled", m->name);
+                            "modelled",
+                            m->name);
     if (!(m->cyl_w_max > m->cyl_w_min))
         return sw_error_set(err, SW_EINVAL, "simulator: phantom model %s: cylinder length not set",
                             m->name);
@@ -121,11 +122,12 @@ sw_status sim_scene_build(const an_model *m, const sim_pose *pose, double shift_
     /* the thickness insert (centred on w = 0, where the ramps cross) and its fluid slots */
     if (m->n_ramps > 0) {
         double wh = m->insert_w_half;
-        add_box(sc, -1, m->insert_u_min, m->insert_u_max, m->insert_v_min, m->insert_v_max, -wh, wh);
+        add_box(sc, -1, m->insert_u_min, m->insert_u_max, m->insert_v_min, m->insert_v_max, -wh,
+                wh);
         for (int k = 0; k < m->n_ramps; k++) {
             const an_ramp_def *rd = &m->ramp[k];
-            sim_prim *s = add_box(sc, +1, m->insert_u_min, m->insert_u_max, rd->v_min, rd->v_max,
-                                  -wh, wh);
+            sim_prim *s =
+                add_box(sc, +1, m->insert_u_min, m->insert_u_max, rd->v_min, rd->v_max, -wh, wh);
             /* |w - slope u| <= slot / 2: the slot's thickness measured along w */
             add_half(sc, s, -rd->slope, 0, 1, 0.5 * m->slot_mm);
             add_half(sc, s, rd->slope, 0, -1, 0.5 * m->slot_mm);
@@ -186,7 +188,8 @@ static inline int cylinder_interval(const sim_prim *c, const double t[3], double
     double u0 = c->eu[0] * dx + c->eu[1] * dy + c->eu[2] * dz0;
     double v0 = c->ev[0] * dx + c->ev[1] * dy + c->ev[2] * dz0;
     double du = c->eu[2], dv = c->ev[2];
-    double A = du * du + dv * dv, B = u0 * du + v0 * dv, C = u0 * u0 + v0 * v0 - c->radius * c->radius;
+    double A = du * du + dv * dv, B = u0 * du + v0 * dv,
+           C = u0 * u0 + v0 * v0 - c->radius * c->radius;
     if (A < 1e-18) {
         if (C > 0)
             return 0;

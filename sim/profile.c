@@ -1,5 +1,6 @@
-/* profile.c: slice profiles: Bloch simulation of a Hamming-windowed sinc excitation (and refocusing)
- * pulse under the slice gradient, simple analytic shapes, relaxation and steady state, widths. */
+/* profile.c: slice profiles: Bloch simulation of a Hamming-windowed sinc excitation (and
+ * refocusing) pulse under the slice gradient, simple analytic shapes, relaxation and steady state,
+ * widths. */
 #include <complex.h>
 #include <math.h>
 #include <stdlib.h>
@@ -8,7 +9,7 @@
 #include "sim_int.h"
 
 #define DEFAULT_STEPS 1000
-#define BLOCH_RANGE_BW 2.0    /* frequency offsets simulated: +-2 pulse bandwidths */
+#define BLOCH_RANGE_BW 2.0 /* frequency offsets simulated: +-2 pulse bandwidths */
 #define BLOCH_SAMPLES_PER_BW 200
 #define SIMPLE_SAMPLES_PER_FWHM 200
 
@@ -178,7 +179,7 @@ typedef struct bloch_result {
     double df_hz;
     double complex *mxy; /* excitation from M0 = z, after ideal rephasing, phase set 0 at f = 0 */
     double *mz_exc;      /* Mz after the excitation (cos of the local flip angle) */
-    double *mz_ref;      /* Mz after the refocusing pulse from M0 = z (1 - 2 |beta|^2); NULL: none */
+    double *mz_ref; /* Mz after the refocusing pulse from M0 = z (1 - 2 |beta|^2); NULL: none */
 } bloch_result;
 
 static void bloch_result_free(bloch_result *b)
@@ -211,8 +212,8 @@ static sw_status bloch_profile(const sim_profile_params *p, bloch_result *b, sw_
         goto out;
     }
     sinc_pulse(p->tbw, dur, p->flip_deg * M_PI / 180.0, ns, w1);
-    if (p->spin_echo)
-        sinc_pulse(p->tbw, dur, M_PI, ns, w180);
+    if (p->spin_echo) /* same duration, bandwidth scaled: time-bandwidth product tbw x ratio */
+        sinc_pulse(p->tbw * (p->refocus_ratio > 0 ? p->refocus_ratio : 1.0), dur, M_PI, ns, w180);
     for (int i = 0; i < b->nf; i++) {
         double f = (i - half) * b->df_hz;
         double m[3] = {0, 0, 1};
@@ -277,20 +278,29 @@ static double steady_mz(const sim_timing *t, double c_exc, double c_ref)
 static sw_status check_params(const sim_profile_params *p, const sim_timing *t, sw_error *err)
 {
     if (!(p->thickness_mm > 0.05 && p->thickness_mm <= 100))
-        return sw_error_set(err, SW_EINVAL, "simulator: slice thickness %g mm out of range (0.05..100)",
+        return sw_error_set(err, SW_EINVAL,
+                            "simulator: slice thickness %g mm out of range (0.05..100)",
                             p->thickness_mm);
     { /* the pulse also sets the gradient of the simple shapes (nominal relation) */
         if (!(p->tbw >= 1 && p->tbw <= 32))
-            return sw_error_set(err, SW_EINVAL, "simulator: time-bandwidth product %g out of range (1..32)",
+            return sw_error_set(err, SW_EINVAL,
+                                "simulator: time-bandwidth product %g out of range (1..32)",
                                 p->tbw);
         if (!(p->duration_ms >= 0.1 && p->duration_ms <= 50))
-            return sw_error_set(err, SW_EINVAL, "simulator: pulse duration %g ms out of range (0.1..50)",
+            return sw_error_set(err, SW_EINVAL,
+                                "simulator: pulse duration %g ms out of range (0.1..50)",
                                 p->duration_ms);
     }
     if (p->kind == SIM_PROFILE_BLOCH_SINC) {
         if (!(p->flip_deg > 0 && p->flip_deg <= 180))
             return sw_error_set(err, SW_EINVAL, "simulator: flip angle %g out of range (0..180]",
                                 p->flip_deg);
+        if (p->spin_echo &&
+            !(p->refocus_ratio == 0 || (p->refocus_ratio >= 0.5 && p->refocus_ratio <= 3)))
+            return sw_error_set(err, SW_EINVAL,
+                                "simulator: refocusing bandwidth ratio %g out of "
+                                "range (0.5..3)",
+                                p->refocus_ratio);
         if (p->steps < 0 || p->steps > 100000)
             return sw_error_set(err, SW_EINVAL, "simulator: Bloch steps %d out of range", p->steps);
     } else if (p->kind == SIM_PROFILE_RECT_GAUSS) {
@@ -402,7 +412,9 @@ static sw_status simple_profile(const sim_profile_params *p, sim_profile **out, 
             /* edges fall on samples (+-100 dz): the edge sample holds the mean of both sides so
              * that linear interpolation crosses the half level exactly at the edge */
             int k = abs(i - m);
-            v = k < SIMPLE_SAMPLES_PER_FWHM / 2 ? 1.0 : k == SIMPLE_SAMPLES_PER_FWHM / 2 ? 0.5 : 0.0;
+            v = k < SIMPLE_SAMPLES_PER_FWHM / 2    ? 1.0
+                : k == SIMPLE_SAMPLES_PER_FWHM / 2 ? 0.5
+                                                   : 0.0;
             c = fmin(fmax(z, -0.5 * t), 0.5 * t);
         } else if (p->kind == SIM_PROFILE_GAUSS) {
             v = exp(-0.5 * z * z / (s * s));

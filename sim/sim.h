@@ -13,7 +13,8 @@
  *                   classic or Enhanced MR files, shuffled order and names.
  * Deterministic for a given seed (own PRNG; UIDs are the only thing that differ run to run).
  * Thread-safe for distinct parameter structs; FFTW plans are created once per size under an
- * internal mutex and executed with the thread-safe new-array interface. Library code never prints. */
+ * internal mutex and executed with the thread-safe new-array interface. Library code never
+ * prints. */
 #ifndef SIM_H
 #define SIM_H
 
@@ -28,7 +29,7 @@
 #define SIM_MAX_SLICES AN_MAX_IMAGES
 #define SIM_MAX_IMAGES (SIM_MAX_SLICES * SIM_MAX_ECHOES)
 
-/* ---- slice profile ---------------------------------------------------------------------------- */
+/* ---- slice profile ---- */
 typedef enum sim_profile_kind {
     SIM_PROFILE_BLOCH_SINC = 0, /* Bloch simulation of a Hamming-windowed sinc pulse */
     SIM_PROFILE_RECT,           /* ideal rectangle of width thickness_mm */
@@ -43,12 +44,15 @@ typedef struct sim_profile_params {
     double tbw;          /* time-bandwidth product of the sinc pulse (4) */
     double duration_ms;  /* pulse duration (3.2) */
     double flip_deg;     /* excitation flip angle (90) */
-    int spin_echo;       /* 1: a 180-degree pulse of the same shape multiplies in |beta|^2 per echo */
-    int nominal_gradient;/* 1: G = bandwidth / (gamma-bar thickness) instead of calibrating the FWHM */
-    int steady_state;    /* 1: weight by the local T1 steady state of Mz (flip varies across z);
-                            needs the sequence timing (sim_profile_make_series) */
-    double blur_mm;      /* RECT_GAUSS: the Gaussian's FWHM */
-    int steps;           /* Bloch time steps (0: 1000) */
+    int spin_echo;       /* 1: a 180-degree sinc pulse multiplies in |beta|^2 per echo */
+    double refocus_ratio; /* the 180's bandwidth over the excitation's, same duration and gradient,
+                             so its slab is this much wider (0: 1, the same pulse) */
+    int nominal_gradient; /* 1: G = bandwidth / (gamma-bar thickness) instead of calibrating the
+                             FWHM */
+    int steady_state;     /* 1: weight by the local T1 steady state of Mz (flip varies across z);
+                             needs the sequence timing (sim_profile_make_series) */
+    double blur_mm;       /* RECT_GAUSS: the Gaussian's FWHM */
+    int steps;            /* Bloch time steps (0: 1000) */
 } sim_profile_params;
 
 /* A sampled complex slice profile along the slice normal z (mm, 0 at the slice centre, positive
@@ -62,20 +66,20 @@ typedef struct sim_profile {
     int n;
     double z0_mm, dz_mm;
     double *re, *im, *mag, *cum_re, *cum_im;
-    double peak;                  /* max of mag */
-    double fwhm_mm, fwtm_mm;      /* full widths at half and tenth maximum of mag */
-    double centre_mm;             /* mid-point of the half-maximum crossings */
-    double gradient_mt_per_m;     /* slice-select gradient used */
-    double bandwidth_hz;          /* pulse bandwidth tbw / duration */
-    double nominal_thickness_mm;  /* bandwidth / (gamma-bar G) */
+    double peak;                 /* max of mag */
+    double fwhm_mm, fwtm_mm;     /* full widths at half and tenth maximum of mag */
+    double centre_mm;            /* mid-point of the half-maximum crossings */
+    double gradient_mt_per_m;    /* slice-select gradient used */
+    double bandwidth_hz;         /* pulse bandwidth tbw / duration */
+    double nominal_thickness_mm; /* bandwidth / (gamma-bar G) */
 } sim_profile;
 
 /* Sequence timing that the steady state and the relaxation factors need. */
 typedef struct sim_timing {
     double tr_ms;
-    int n_echoes;                   /* 1 or 2 */
+    int n_echoes; /* 1 or 2 */
     double te_ms[SIM_MAX_ECHOES];
-    double t1_ms, t2_ms;            /* of the fluid */
+    double t1_ms, t2_ms; /* of the fluid */
 } sim_timing;
 
 /* The profile of the first echo without relaxation (M0 = 1, steady_state ignored).
@@ -94,10 +98,11 @@ void sim_profile_free(sim_profile *pr);
 void sim_profile_integral(const sim_profile *pr, double z1, double z2, double *re, double *im);
 
 /* Full width of samples v[0..n) at `level`, outermost linear-interpolated crossings around the
- * maximum; returns 0 and the width in samples, -1 when v does not fall below level on both sides. */
+ * maximum; returns 0 and the width in samples, -1 when v does not fall below level on both
+ * sides. */
 int sim_width_at_level(const double *v, int n, double level, double *width, double *mid);
 
-/* ---- pose ------------------------------------------------------------------------------------- *
+/* ---- pose ----
  * Phantom frame (u, v, w) of analysis.h. Scanner plan frame (x, y, z): x image right, y image up,
  * z along the slice normal toward the last slice, origin at the phantom origin's unrotated place;
  * nominal slice k is the plane z = w of slice k. A phantom point q is placed at
@@ -112,7 +117,7 @@ typedef struct sim_pose {
     double tilt_u_deg;
 } sim_pose;
 
-/* ---- series ----------------------------------------------------------------------------------- */
+/* ---- series ---- */
 typedef enum sim_series_kind {
     SIM_SERIES_T1 = 0, /* spin echo TR 500, TE 20: one echo */
     SIM_SERIES_T2,     /* double-echo spin echo TR 2000, TE 20 and 80: two echoes in one series */
@@ -144,79 +149,82 @@ typedef struct sim_identity {
 } sim_identity;
 
 typedef struct sim_params {
-    const an_model *model;  /* the phantom; NULL: an_model_large(). Not owned; must outlive calls. */
+    const an_model *model; /* the phantom; NULL: an_model_large(). Not owned; must outlive calls. */
     sim_profile_params profile;
     sim_pose pose;
     sim_series_kind kind;
-    double tr_ms;           /* 0: from kind */
+    double tr_ms;                 /* 0: from kind */
     double te_ms[SIM_MAX_ECHOES]; /* 0: from kind */
-    double t1_ms, t2_ms;    /* fluid relaxation times (defaults in docs/simulator.md) */
-    int n_slices;           /* 0: model->n_slices */
-    double gap_mm;          /* centre-to-centre; 0: model->slice_gap_mm */
-    int matrix;             /* square acquisition matrix (256), even, 16..1024 */
-    double fov_mm;          /* square field of view (250) */
-    int oversample;         /* in-plane oversampling of the object grid (4), 1..8 */
-    double snr;             /* as phantom-large.md defines it, for the first echo; 0: no noise */
-    double coil_shading;    /* relative rise of the receive sensitivity at the phantom's rim (0) */
-    double position_offset_mm; /* slice position error e(z) = offset + scale z, z along the normal */
-    double position_scale;     /* dimensionless (0.01 = 1 %) */
-    double centre_z_mm;     /* patient-frame coordinate along the normal of the stack's centre (0) */
-    double cf_offset_hz;    /* centre frequency error: slices shift by df / (gamma-bar G) toward the
-                               last slice, the image by df / readout_bw_hz_per_px pixels along +x */
+    double t1_ms, t2_ms;          /* fluid relaxation times (defaults in docs/simulator.md) */
+    int n_slices;                 /* 0: model->n_slices */
+    double gap_mm;                /* centre-to-centre; 0: model->slice_gap_mm */
+    int matrix;                   /* square acquisition matrix (256), even, 16..1024 */
+    double fov_mm;                /* square field of view (250) */
+    int oversample;               /* in-plane oversampling of the object grid (4), 1..8 */
+    double snr;          /* as phantom-large.md defines it, for the first echo; 0: no noise */
+    double coil_shading; /* relative rise of the receive sensitivity at the phantom's rim (0) */
+    double
+        position_offset_mm; /* slice position error e(z) = offset + scale z, z along the normal */
+    double position_scale;  /* dimensionless (0.01 = 1 %) */
+    double centre_z_mm;  /* patient-frame coordinate along the normal of the stack's centre (0) */
+    double cf_offset_hz; /* centre frequency error: slices shift by df / (gamma-bar G) toward the
+                            last slice, the image by df / readout_bw_hz_per_px pixels along +x */
     double readout_bw_hz_per_px; /* receiver bandwidth per pixel (130) */
     sim_orientation orientation;
     uint64_t seed;
-    int shuffle;            /* 1: files written in random order with random names */
-    int reverse_instances;  /* 1: InstanceNumber runs from the last slice to the first */
-    int enhanced;           /* 1: one Enhanced MR multi-frame file instead of one file per image */
+    int shuffle;           /* 1: files written in random order with random names */
+    int reverse_instances; /* 1: InstanceNumber runs from the last slice to the first */
+    int enhanced;          /* 1: one Enhanced MR multi-frame file instead of one file per image */
     sim_identity id;
 } sim_params;
 
 /* The default acquisition of phantom-large.md: large phantom, T1 series, 11 slices of 5 mm 10 mm
  * apart, 256 x 256 over 250 mm, 4x oversampling, Bloch sinc (time-bandwidth 4, 3.2 ms, 90 deg, spin
- * echo, calibrated gradient, steady state), SNR 100, no error, standard orientation, seed 1. */
+ * echo with a refocusing slab twice as wide, calibrated gradient, steady state), SNR 100, no error,
+ * standard orientation, seed 1. */
 void sim_params_default(sim_params *p);
 /* Checks p; names the first bad field in err. */
 sw_status sim_params_check(const sim_params *p, sw_error *err);
 
 /* What a simulated series carries as truth (also written as truth.json beside the files). */
 typedef struct sim_ramp_truth {
-    double length_mm[2];    /* expected FWHM length of [0] top and [1] bottom strip (in-plane mm) */
-    double centre_u_mm[2];  /* strip centre, phantom u (mm): +-10 d without tilt */
+    double length_mm[2];   /* expected FWHM length of [0] top and [1] bottom strip (in-plane mm) */
+    double centre_u_mm[2]; /* strip centre, phantom u (mm): +-10 d without tilt */
 } sim_ramp_truth;
 
 typedef struct sim_wedge_truth {
-    int ordinal;            /* slice ordinal; 0 when that slice is not in the series (NANs) */
-    double left_mm, right_mm;   /* bar lengths along each bar's centre line in the centre plane */
-    double difference_mm;       /* right minus left */
+    int ordinal;              /* slice ordinal; 0 when that slice is not in the series (NANs) */
+    double left_mm, right_mm; /* bar lengths along each bar's centre line in the centre plane */
+    double difference_mm;     /* right minus left */
 } sim_wedge_truth;
 
 typedef struct sim_truth {
     int n_slices, n_echoes;
-    double thickness_mm[SIM_MAX_ECHOES];  /* FWHM of the profile used for each echo */
+    double thickness_mm[SIM_MAX_ECHOES]; /* FWHM of the profile used for each echo */
     double fwtm_mm[SIM_MAX_ECHOES];
     double profile_centre_mm[SIM_MAX_ECHOES];
     double gradient_mt_per_m, bandwidth_hz, nominal_thickness_mm;
-    double z_mm[SIM_MAX_SLICES];          /* nominal slice centre along the normal (patient frame) */
-    double error_mm[SIM_MAX_SLICES];      /* applied position error e_k (incl. the cf shift) */
+    double z_mm[SIM_MAX_SLICES];     /* nominal slice centre along the normal (patient frame) */
+    double error_mm[SIM_MAX_SLICES]; /* applied position error e_k (incl. the cf shift) */
     double displacement_mm[SIM_MAX_SLICES]; /* d_k of phantom-large.md */
-    double cf_shift_mm;                   /* slice shift from cf_offset_hz */
-    double cf_shift_x_mm;                 /* in-plane shift along +x from cf_offset_hz */
+    double cf_shift_mm;                     /* slice shift from cf_offset_hz */
+    double cf_shift_x_mm;                   /* in-plane shift along +x from cf_offset_hz */
     int has_ramps, has_wedges;
     int ramp_ordinal;
     sim_ramp_truth ramp[SIM_MAX_ECHOES];
     sim_wedge_truth wedge[2];
-    double snr;                           /* requested, first echo */
-    double fluid_signal[SIM_MAX_ECHOES];  /* mean noise-free fluid signal, stored units */
-    double noise_sigma;                   /* per-channel Gaussian SD, stored units (0: none) */
-    double gain;                          /* stored units per unit of profile integral (mm) */
+    double snr;                          /* requested, first echo */
+    double fluid_signal[SIM_MAX_ECHOES]; /* mean noise-free fluid signal, stored units */
+    double noise_sigma;                  /* per-channel Gaussian SD, stored units (0: none) */
+    double gain;                         /* stored units per unit of profile integral (mm) */
 } sim_truth;
 
 /* A rendered series: images in the order they are written (shuffled when asked), each a complete
- * dcm_image (attributes, geometry and float pixels holding the 12-bit stored values), and the truth.
- * slice[i] (1-based ordinal) and echo[i] (1-based) say what image i is; file_name[i] its name. */
+ * dcm_image (attributes, geometry and float pixels holding the 12-bit stored values), and the
+ * truth. slice[i] (1-based ordinal) and echo[i] (1-based) say what image i is; file_name[i] its
+ * name. */
 typedef struct sim_series {
-    sim_params params;      /* a copy; params.model points at `model` below */
+    sim_params params; /* a copy; params.model points at `model` below */
     an_model model;
     int n_images;
     dcm_image *images;

@@ -14,7 +14,7 @@ typedef struct sim_rng {
 uint64_t sim_splitmix64(uint64_t *state);
 void sim_rng_seed(sim_rng *r, uint64_t seed);
 uint64_t sim_rng_next(sim_rng *r);
-double sim_rng_uniform(sim_rng *r);                   /* in (0, 1] */
+double sim_rng_uniform(sim_rng *r);                     /* in (0, 1] */
 void sim_rng_normal2(sim_rng *r, double *a, double *b); /* two independent N(0, 1) (Box-Muller) */
 /* An independent stream for a (purpose, index) pair of one seed. */
 void sim_rng_stream(sim_rng *r, uint64_t seed, uint64_t purpose, uint64_t index);
@@ -33,8 +33,8 @@ typedef struct sim_halfspace {
 } sim_halfspace;
 
 typedef struct sim_prim {
-    int cylinder;     /* 1: the fluid cylinder (radius, axis through t along axis[]) */
-    double sign;      /* +1 fluid added, -1 plastic removed */
+    int cylinder; /* 1: the fluid cylinder (radius, axis through t along axis[]) */
+    double sign;  /* +1 fluid added, -1 plastic removed */
     int nh;
     sim_halfspace h[SIM_MAX_HALFSPACES];
     double radius;
@@ -56,7 +56,8 @@ sw_status sim_scene_build(const an_model *m, const sim_pose *pose, double shift_
 void sim_scene_to_phantom(const sim_scene *sc, const double p[3], double q[3]);
 void sim_scene_to_scanner(const sim_scene *sc, const double q[3], double p[3]);
 
-/* The object grid: nf x nf samples, column j at x0 + j step, row i at y0 - i step (row 0 on top). */
+/* The object grid: nf x nf samples, column j at x0 + j step, row i at y0 - i step (row 0 on
+ * top). */
 typedef struct sim_grid {
     int nf;
     double x0, y0, step;

@@ -76,6 +76,8 @@ char *sim_truth_json(const sim_series *s)
         bad |= put(pr, "duration_ms", num(p->profile.duration_ms));
         bad |= put(pr, "flip_deg", num(p->profile.flip_deg));
         bad |= put(pr, "spin_echo", json_boolean(p->profile.spin_echo));
+        bad |= put(pr, "refocus_ratio",
+                   num(p->profile.refocus_ratio > 0 ? p->profile.refocus_ratio : 1.0));
         bad |= put(pr, "nominal_gradient", json_boolean(p->profile.nominal_gradient));
         bad |= put(pr, "steady_state", json_boolean(p->profile.steady_state));
         bad |= put(pr, "blur_mm", num(p->profile.blur_mm));

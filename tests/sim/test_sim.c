@@ -120,8 +120,7 @@ static double profile_fwhm(const sim_profile *pr)
     return (b - a) * pr->dz_mm;
 }
 
-/* ---------------------------------------------------------------------------------------------
- * Bloch simulation */
+/* ---- Bloch simulation */
 
 /* Bloch equation (Bloch 1946): a resonant hard pulse of area pi/2 about x turns Mz fully into the
  * transverse plane; area pi inverts it (textbook facts of NMR). */
@@ -166,8 +165,11 @@ Test(bloch, small_tip_fwhm_is_bandwidth_over_gamma_g)
 {
     const double tbws[] = {4, 6, 8};
     for (int k = 0; k < 3; k++) {
-        sim_profile_params pp = {.kind = SIM_PROFILE_BLOCH_SINC, .thickness_mm = 5.0,
-                                 .tbw = tbws[k], .duration_ms = 3.2, .flip_deg = 10,
+        sim_profile_params pp = {.kind = SIM_PROFILE_BLOCH_SINC,
+                                 .thickness_mm = 5.0,
+                                 .tbw = tbws[k],
+                                 .duration_ms = 3.2,
+                                 .flip_deg = 10,
                                  .nominal_gradient = 1};
         sim_profile *pr = NULL;
         sw_error err;
@@ -176,8 +178,8 @@ Test(bloch, small_tip_fwhm_is_bandwidth_over_gamma_g)
         double bw = tbws[k] / 3.2e-3;
         double nominal = bw / (GAMMA_BAR_CODATA * 1e6 * pr->gradient_mt_per_m * 1e-3) * 1e3;
         double fwhm = profile_fwhm(pr);
-        cr_assert(fabs(fwhm / nominal - 1) < 0.01, "tbw %g: FWHM %.4f mm vs %.4f mm", tbws[k],
-                  fwhm, nominal);
+        cr_assert(fabs(fwhm / nominal - 1) < 0.01, "tbw %g: FWHM %.4f mm vs %.4f mm", tbws[k], fwhm,
+                  nominal);
         cr_assert_float_eq(nominal, 5.0, 1e-9, "the nominal relation sets G");
         sim_profile_free(pr);
     }
@@ -193,9 +195,12 @@ Test(bloch, ninety_degrees_is_wider_and_converges_with_tbw)
     for (int k = 0; k < 3; k++) {
         double w[2];
         for (int f = 0; f < 2; f++) {
-            sim_profile_params pp = {.kind = SIM_PROFILE_BLOCH_SINC, .thickness_mm = 5.0,
-                                     .tbw = tbws[k], .duration_ms = 3.2,
-                                     .flip_deg = f ? 90 : 10, .nominal_gradient = 1};
+            sim_profile_params pp = {.kind = SIM_PROFILE_BLOCH_SINC,
+                                     .thickness_mm = 5.0,
+                                     .tbw = tbws[k],
+                                     .duration_ms = 3.2,
+                                     .flip_deg = f ? 90 : 10,
+                                     .nominal_gradient = 1};
             sim_profile *pr = NULL;
             cr_assert_eq(sim_profile_make(&pp, &pr, NULL), SW_OK);
             w[f] = profile_fwhm(pr);
@@ -218,13 +223,16 @@ Test(bloch, calibrated_gradient_gives_requested_fwhm)
     const double thick[] = {3.0, 5.0, 10.0};
     for (int k = 0; k < 3; k++)
         for (int se = 0; se < 2; se++) {
-            sim_profile_params pp = {.kind = SIM_PROFILE_BLOCH_SINC, .thickness_mm = thick[k],
-                                     .tbw = 4, .duration_ms = 3.2, .flip_deg = 90,
+            sim_profile_params pp = {.kind = SIM_PROFILE_BLOCH_SINC,
+                                     .thickness_mm = thick[k],
+                                     .tbw = 4,
+                                     .duration_ms = 3.2,
+                                     .flip_deg = 90,
                                      .spin_echo = se};
             sim_profile *pr = NULL;
             cr_assert_eq(sim_profile_make(&pp, &pr, NULL), SW_OK);
-            cr_assert(fabs(profile_fwhm(pr) - thick[k]) < 1e-3 * thick[k], "%g mm: %.5f",
-                      thick[k], profile_fwhm(pr));
+            cr_assert(fabs(profile_fwhm(pr) - thick[k]) < 1e-3 * thick[k], "%g mm: %.5f", thick[k],
+                      profile_fwhm(pr));
             sim_profile_free(pr);
         }
 }
@@ -234,8 +242,12 @@ Test(bloch, calibrated_gradient_gives_requested_fwhm)
  * centre the spin-echo profile equals the excitation profile's peak. */
 Test(bloch, refocusing_factor_is_one_at_the_centre)
 {
-    sim_profile_params pp = {.kind = SIM_PROFILE_BLOCH_SINC, .thickness_mm = 5, .tbw = 4,
-                             .duration_ms = 3.2, .flip_deg = 90, .spin_echo = 0};
+    sim_profile_params pp = {.kind = SIM_PROFILE_BLOCH_SINC,
+                             .thickness_mm = 5,
+                             .tbw = 4,
+                             .duration_ms = 3.2,
+                             .flip_deg = 90,
+                             .spin_echo = 0};
     sim_profile *a = NULL, *b = NULL;
     cr_assert_eq(sim_profile_make(&pp, &a, NULL), SW_OK);
     pp.spin_echo = 1;
@@ -251,8 +263,12 @@ Test(bloch, refocusing_factor_is_one_at_the_centre)
  * effect vanishes for TR >> T1 (steady state of the Bloch equation with relaxation). */
 Test(bloch, steady_state_widens_short_tr_profiles)
 {
-    sim_profile_params pp = {.kind = SIM_PROFILE_BLOCH_SINC, .thickness_mm = 5, .tbw = 4,
-                             .duration_ms = 3.2, .flip_deg = 90, .spin_echo = 1,
+    sim_profile_params pp = {.kind = SIM_PROFILE_BLOCH_SINC,
+                             .thickness_mm = 5,
+                             .tbw = 4,
+                             .duration_ms = 3.2,
+                             .flip_deg = 90,
+                             .spin_echo = 1,
                              .steady_state = 1};
     sim_timing t = {.tr_ms = 300, .n_echoes = 1, .te_ms = {20}, .t1_ms = 300, .t2_ms = 100};
     sim_profile *pr[SIM_MAX_ECHOES] = {0};
@@ -272,8 +288,8 @@ Test(bloch, steady_state_widens_short_tr_profiles)
  * FWHM sqrt(pi / (4 ln 2)), a standard integral). */
 Test(profile, simple_shapes)
 {
-    sim_profile_params pp = {.kind = SIM_PROFILE_RECT, .thickness_mm = 5, .tbw = 4,
-                             .duration_ms = 3.2};
+    sim_profile_params pp = {
+        .kind = SIM_PROFILE_RECT, .thickness_mm = 5, .tbw = 4, .duration_ms = 3.2};
     sim_profile *pr = NULL;
     cr_assert_eq(sim_profile_make(&pp, &pr, NULL), SW_OK);
     cr_assert_float_eq(profile_fwhm(pr), 5.0, 1e-9);
@@ -321,8 +337,7 @@ Test(truth, thickness_is_fwhm_of_profile_used)
     }
 }
 
-/* ---------------------------------------------------------------------------------------------
- * Signal and noise */
+/* ---- Signal and noise */
 
 /* A uniform slab (slice 6 is a fluid disc) shows, noise-free, the model's signal: the rectangle's
  * integral (T mm of fluid) times the ideal spin-echo factors 1 - 2 e^{-(TR - TE/2)/T1} + e^{-TR/T1}
@@ -355,10 +370,10 @@ Test(signal, uniform_slab_mean_is_the_model_signal)
     /* the double-echo train's longitudinal recovery for ideal pulses (refocusing at TE1/2 and
      * (TE1 + TE2)/2) is the same for both echoes */
     double t1 = p.t1_ms, tau1 = 10, tau2 = 50;
-    double mz = 1 - exp(-tau1 / t1);                       /* after the 90: 0, recovers to tau1 */
-    mz = -mz;                                             /* first 180 */
+    double mz = 1 - exp(-tau1 / t1); /* after the 90: 0, recovers to tau1 */
+    mz = -mz;                        /* first 180 */
     mz = mz * exp(-(tau2 - tau1) / t1) + 1 - exp(-(tau2 - tau1) / t1);
-    mz = -mz;                                             /* second 180 */
+    mz = -mz; /* second 180 */
     mz = mz * exp(-(tr - tau2) / t1) + 1 - exp(-(tr - tau2) / t1);
     for (int e = 0; e < 2; e++) {
         double expect = s->truth.gain * 5.0 * mz * exp(-te[e] / p.t2_ms);
@@ -464,8 +479,7 @@ Test(signal, headroom_no_clipping)
     sim_series_free(s);
 }
 
-/* ---------------------------------------------------------------------------------------------
- * Geometry on the image (phantom-large.md) */
+/* ---- Geometry on the image (phantom-large.md) */
 
 /* Ramp strips on a noise-free rectangle-profile image are thickness / tan(atan 0.1) = 50 mm long
  * (FWHM along the strip, half of the plateau above the true zero), within a pixel. */
@@ -693,8 +707,7 @@ Test(geometry, position_errors_and_centre_frequency)
     sim_series_free(s);
 }
 
-/* ---------------------------------------------------------------------------------------------
- * Orientation, order, determinism */
+/* ---- Orientation, order, determinism */
 
 /* Every orientation variant, brought back through its ImageOrientationPatient, ImagePositionPatient
  * and PatientPosition alone (DICOM PS3.3 C.7.6.2.1.1: the patient-based LPS frame follows the
@@ -828,23 +841,22 @@ Test(determinism, threads_give_the_same_pixels)
     }
 }
 
-/* ---------------------------------------------------------------------------------------------
- * Parameters */
+/* ---- Parameters */
 
 Test(params, bad_values_are_refused_with_a_reason)
 {
     sim_params p;
     sw_error err;
     sim_series *s = (sim_series *)1;
-#define BAD(stmt, word) \
-    do { \
-        sim_params_default(&p); \
-        stmt; \
-        sw_error_clear(&err); \
-        s = (sim_series *)1; \
-        cr_assert_eq(sim_series_render(&p, &s, &err), SW_EINVAL, "%s accepted", #stmt); \
-        cr_assert_null(s); \
-        cr_assert(strstr(err.msg, word) != NULL, "%s: message '%s'", #stmt, err.msg); \
+#define BAD(stmt, word)                                                                            \
+    do {                                                                                           \
+        sim_params_default(&p);                                                                    \
+        stmt;                                                                                      \
+        sw_error_clear(&err);                                                                      \
+        s = (sim_series *)1;                                                                       \
+        cr_assert_eq(sim_series_render(&p, &s, &err), SW_EINVAL, "%s accepted", #stmt);            \
+        cr_assert_null(s);                                                                         \
+        cr_assert(strstr(err.msg, word) != NULL, "%s: message '%s'", #stmt, err.msg);              \
     } while (0)
     BAD(p.matrix = 255, "matrix");
     BAD(p.oversample = 0, "oversampling");

@@ -166,8 +166,8 @@ Test(io, enhanced_file_holds_every_frame)
                 a = &s->images[k];
         cr_assert_not_null(a, "frame %d (z %.2f, echo %d) not rendered", i, b->ipp[2],
                            b->echo_number);
-        cr_assert_eq(memcmp(a->pixels, b->pixels, sizeof(float) * 256 * 256), 0,
-                     "frame %d differs", i);
+        cr_assert_eq(memcmp(a->pixels, b->pixels, sizeof(float) * 256 * 256), 0, "frame %d differs",
+                     i);
         cr_assert_str_eq(b->sop_class_uid, "1.2.840.10008.5.1.4.1.1.4.1");
     }
     dcm_file_free(f);
@@ -221,19 +221,25 @@ Test(io, numpy_recomputes_the_bloch_profile)
     const struct {
         double tbw, flip;
         int se;
-    } c[] = {{4, 10, 0}, {8, 10, 0}, {4, 90, 0}, {6, 90, 1}};
+        double ratio;
+    } c[] = {{4, 10, 0, 0}, {8, 10, 0, 0}, {4, 90, 0, 0}, {6, 90, 1, 0}, {4, 90, 1, 2.0}};
     for (size_t i = 0; i < sizeof c / sizeof c[0]; i++) {
-        sim_profile_params pp = {.kind = SIM_PROFILE_BLOCH_SINC, .thickness_mm = 5,
-                                 .tbw = c[i].tbw, .duration_ms = 3.2, .flip_deg = c[i].flip,
-                                 .spin_echo = c[i].se, .steps = 500};
+        sim_profile_params pp = {.kind = SIM_PROFILE_BLOCH_SINC,
+                                 .thickness_mm = 5,
+                                 .tbw = c[i].tbw,
+                                 .duration_ms = 3.2,
+                                 .flip_deg = c[i].flip,
+                                 .spin_echo = c[i].se,
+                                 .refocus_ratio = c[i].ratio,
+                                 .steps = 500};
         sim_profile *pr = NULL;
         cr_assert_eq(sim_profile_make(&pp, &pr, NULL), SW_OK);
         char path[512];
         snprintf(path, sizeof path, "%s/profile%zu.txt", tmpdir, i);
         FILE *f = fopen(path, "w");
         cr_assert_not_null(f);
-        fprintf(f, "%.17g %.17g %.17g %d %.17g %d\n", pp.tbw, pp.duration_ms, pp.flip_deg,
-                pp.spin_echo, pr->gradient_mt_per_m, pp.steps);
+        fprintf(f, "%.17g %.17g %.17g %d %.17g %d %.17g\n", pp.tbw, pp.duration_ms, pp.flip_deg,
+                pp.spin_echo, pr->gradient_mt_per_m, pp.steps, c[i].ratio > 0 ? c[i].ratio : 1.0);
         for (int k = 0; k < pr->n; k++)
             fprintf(f, "%.17g %.17g %.17g\n", pr->z0_mm + k * pr->dz_mm, pr->re[k], pr->im[k]);
         fclose(f);

@@ -2,7 +2,7 @@
 """xcheck_sim.py: the simulator's output checked with tools from outside the project.
 
   profile FILE   FILE holds a profile from sim_profile_make (header line: tbw duration_ms flip_deg
-                 spin_echo gradient_mT_per_m steps; then "z re im" lines). The profile is recomputed
+                 spin_echo gradient_mT_per_m steps refocus_ratio; then "z re im" lines). The profile is recomputed
                  here with an independent Bloch method, Cayley-Klein spinors (the SLR parametrisation
                  of Pauly, Le Roux, Nishimura and Macovski 1991), and, at small flip angles, compared
                  with the Fourier transform of the pulse (the small-tip approximation of Pauly,
@@ -52,8 +52,9 @@ def cayley_klein(w1, dt, f):
 def check_profile(path):
     with open(path) as fh:
         head = fh.readline().split()
-        tbw, dur_ms, flip, se, g_mt, ns = (float(head[0]), float(head[1]), float(head[2]),
-                                           int(head[3]), float(head[4]), int(head[5]))
+        tbw, dur_ms, flip, se, g_mt, ns, ratio = (float(head[0]), float(head[1]), float(head[2]),
+                                                  int(head[3]), float(head[4]), int(head[5]),
+                                                  float(head[6]))
         data = np.loadtxt(fh)
     z, re, im = data[:, 0], data[:, 1], data[:, 2]
     dur = dur_ms * 1e-3
@@ -63,7 +64,7 @@ def check_profile(path):
     mxy = 2 * np.conj(a) * b  # transverse magnetisation from M0 = z
     mag = np.abs(mxy)
     if se:
-        _, w180 = pulse(tbw, dur, np.pi, ns)
+        _, w180 = pulse(tbw * ratio, dur, np.pi, ns)  # same duration, ratio x the bandwidth
         _, b2 = cayley_klein(w180, dur / ns, f)
         mag = mag * np.abs(b2) ** 2
     cmag = np.hypot(re, im)
