@@ -598,14 +598,25 @@ sw_status read_pixels(const Reader &r, DcmDataset *ds, E_TransferSyntax xfer, dc
                             rows);
         const double m = im.rescale_slope, b = im.rescale_intercept;
         const size_t base = npix * static_cast<size_t>(fi);
-        for (size_t k = 0; k < npix; k++) {
-            uint32_t s = (raw.at(base + k) >> shift) & mask;
-            double v;
+        /* stored bits -> value: mask, then two's complement in bs bits when signed */
+        auto value = [shift, mask, sign, rep, bs](uint32_t word) -> double {
+            uint32_t s = (word >> shift) & mask;
             if (rep == 1 && (s & sign))
-                v = static_cast<double>(static_cast<int64_t>(s) - (static_cast<int64_t>(1) << bs));
-            else
-                v = static_cast<double>(s);
-            im.pixels[k] = static_cast<float>(v * m + b);
+                return static_cast<double>(static_cast<int64_t>(s) - (static_cast<int64_t>(1) << bs));
+            return static_cast<double>(s);
+        };
+        /* The common layouts get a loop of their own, without the general accessor. */
+        if (raw.w && nbytes == 2) {
+            const Uint16 *src = raw.w + base;
+            for (size_t k = 0; k < npix; k++)
+                im.pixels[k] = static_cast<float>(value(src[k]) * m + b);
+        } else if (raw.b && nbytes == 1) {
+            const Uint8 *src = raw.b + base;
+            for (size_t k = 0; k < npix; k++)
+                im.pixels[k] = static_cast<float>(value(src[k]) * m + b);
+        } else {
+            for (size_t k = 0; k < npix; k++)
+                im.pixels[k] = static_cast<float>(value(raw.at(base + k)) * m + b);
         }
     }
     return SW_OK;

@@ -89,29 +89,69 @@ typedef struct dcm_read_opts {
 } dcm_read_opts;
 
 /* Once per process, single-threaded, before any other call: silences DCMTK's log, checks the data
- * dictionary is loaded (implicit-VR files would read as garbage without it) and registers the
- * JPEG, JPEG-LS and RLE decoders. Safe to call twice. */
+ * dictionary is loaded (implicit-VR files would read as garbage without it), lets DCMTK give UN
+ * elements their dictionary VR, and registers the JPEG, JPEG-LS and RLE decoders. Safe to call
+ * twice. Fails (SW_EIO) when the dictionary is missing. */
 sw_status dcm_init(sw_error *err);
+/* Unregisters the decoders; dcm_init may be called again afterwards. */
 void dcm_shutdown(void);
 
 /* Reads a file (classic MR Image Storage or Enhanced MR Image Storage; other image storage classes are
  * read as far as their attributes allow). The file is read fully into memory before return, so it
  * may be moved afterwards. On success *out is a new dcm_file the caller frees with dcm_file_free;
- * on failure *out is NULL and err names the file and the reason. opts may be NULL. */
+ * on failure *out is NULL and err names the file and the reason. opts may be NULL.
+ *
+ * Each frame's geometry, rescale, echo time, repetition time and flip angle come from its item of
+ * the Per-frame Functional Groups Sequence, else the Shared Functional Groups item, else the top
+ * level. Echo number: the frame's DimensionIndexValues for an EffectiveEchoTime dimension, else
+ * (multi-frame) the rank of the frame's effective echo time among the file's, else EchoNumbers,
+ * else 1. frame is i + 1 when the file has NumberOfFrames, 0 otherwise.
+ *
+ * Full read: refuses (SW_EUNSUPPORTED) JPEG 2000 ("JPEG 2000 is not supported"), syntaxes DCMTK
+ * cannot decode, SamplesPerPixel other than 1, PhotometricInterpretation other than MONOCHROME1/2,
+ * BitsAllocated other than 8, 16, 32, float pixel data and files without pixel data; refuses
+ * (SW_EFORMAT) truncated or malformed data, pixel data shorter than the frames need, a zero or
+ * non-finite rescale slope, UIDs over 64 characters and NumberOfFrames over 100000.
+ * header_only: the attributes whatever the pixel encoding (a JPEG 2000 or RGB file reads, so that
+ * the caller can sort it by modality and SOP class); fails only when the data set cannot be
+ * parsed or is inconsistent in itself (UIDs, NumberOfFrames against the pixel data length and the
+ * per-frame items). Strings are UTF-8 (converted from SpecificCharacterSet where DCMTK can; bytes that are
+ * not UTF-8 become '?').
+ *
+ * After dcm_init, reads share no state of ours; DCMTK's registries are read-locked, but
+ * concurrent reads are not tested. */
 sw_status dcm_read_file(const char *path, const dcm_read_opts *opts, dcm_file **out, sw_error *err);
-/* Same, from a buffer; name is used in messages only. */
+/* Same, from a buffer (copied into an anonymous memory file: Linux memfd and /proc); name is used
+ * in messages only. */
 sw_status dcm_read_buffer(const void *data, size_t len, const char *name, const dcm_read_opts *opts,
                           dcm_file **out, sw_error *err);
+/* Frees f, its frames and their pixels; NULL is ignored. */
 void dcm_file_free(dcm_file *f);
 
-/* Writing (the simulator's output). Pixels are rounded and clamped to unsigned 16-bit stored values
- * with BitsStored 12 (clamped to 0..4095) and no rescale. Explicit VR little endian, with a file
- * meta header. All UIDs and attributes are taken from the dcm_image fields (empty ones are omitted,
- * except type 1 and 2 attributes of the MR Image IOD, which get valid defaults). */
+/* Writing (the simulator's output). Pixels are rounded (to nearest, halves to even) and clamped to
+ * unsigned 16-bit stored values with BitsStored 12 (clamped to 0..4095) and no rescale (the
+ * rescale fields are ignored). Explicit VR little endian, with a file meta header naming
+ * slicewarden (ImplementationVersionName SLICEWARDEN01). All UIDs and attributes are taken from
+ * the dcm_image fields (empty ones are omitted, except type 1 and 2 attributes of the MR Image IOD,
+ * which get valid defaults: new UIDs, ImageType ORIGINAL\PRIMARY\OTHER, ScanningSequence SE,
+ * SequenceVariant NONE, MRAcquisitionType 2D, PatientPosition HFS, BodyPartExamined HEAD).
+ * Geometry is required: finite ImagePositionPatient, ImageOrientationPatient of two orthogonal unit
+ * vectors (to 1e-4), positive PixelSpacing; a non-finite pixel, an invalid UID or a value too long
+ * for its VR is refused (SW_EINVAL). Non-ASCII text is written as UTF-8 (ISO_IR 192). The file is
+ * written to a hidden temporary ".<name>.XXXXXX" beside path, synced and renamed into place, so a
+ * watcher never sees it half-written (it should ignore names starting with '.'). */
 sw_status dcm_write_mr(const char *path, const dcm_image *img, sw_error *err);
 /* Enhanced MR Image Storage: n frames of one size in one file, with per-frame plane position,
  * shared plane orientation and pixel measures, and per-frame MR echo. UIDs of frames[0] name the
- * file; each frame's sop_instance_uid is ignored. */
+ * file; each frame's sop_instance_uid is ignored. Orientation, pixel measures, timing and rescale
+ * go to the shared groups when every frame has the same, else per frame. Each frame's
+ * rescale_slope / rescale_intercept (when finite, slope non-zero; else 1 and 0) is written in its
+ * Pixel Value Transformation and the stored value is round((value - intercept) / slope), clamped
+ * to 0..4095. Dimensions: StackID (stack_id, default "1"), InStackPositionNumber (in_stack_position
+ * when every frame has one, else the rank of the position along the slice normal) and
+ * EffectiveEchoTime with echo_number as its index. Also required here: echo_time_ms,
+ * repetition_time_ms, slice_thickness_mm, magnetic_field_t, imaging_frequency_mhz and echo_number
+ * 1..65535. */
 sw_status dcm_write_enhanced_mr(const char *path, const dcm_image *frames, int n, sw_error *err);
 
 /* A new UID in the 2.25 scheme (DICOM PS3.5 B.2: "2.25." and the decimal value of a random

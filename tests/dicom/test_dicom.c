@@ -13,6 +13,7 @@
 #include <string.h>
 #include <sys/stat.h>
 #include <sys/wait.h>
+#include <time.h>
 #include <unistd.h>
 
 #include "dicom.h"
@@ -1299,4 +1300,60 @@ Test(dicom, mutation_sweep, .timeout = 120)
     free(w.pixels);
     for (int i = 0; i < NF; i++)
         free(fr[i].pixels);
+}
+
+/* Reading speed, for the record (cr_log_info; ./test_dicom --verbose --filter 'dicom/speed*'):
+ * eleven 256 x 256 slices per transfer syntax, full and header-only reads. What is asserted is
+ * that every encoding decodes to the same pixels; the times are information, not a limit. */
+static double seconds(void)
+{
+    struct timespec t;
+    clock_gettime(CLOCK_MONOTONIC, &t);
+    return (double)t.tv_sec + (double)t.tv_nsec * 1e-9;
+}
+
+Test(dicom, speed_report, .timeout = 120)
+{
+    enum { NS = 11 };
+    const struct conv plain = {"explicit", NULL, NULL, NULL, TS_EXPLICIT_LE};
+    const struct conv *kinds[] = {&plain, &lossless[0], &lossless[3], &lossless[5], &lossless[6]};
+    dcm_image w;
+    make_image(&w, 256, 256, 13);
+    char names[NS][64];
+    sw_error e;
+    for (int s = 0; s < NS; s++) {
+        snprintf(names[s], sizeof names[s], "slice%02d.dcm", s);
+        dcm_new_uid(w.sop_instance_uid, NULL);
+        w.ipp[2] = 10.0 * s;
+        sw_error_clear(&e);
+        cr_assert_eq(dcm_write_mr(tpath(names[s]), &w, &e), SW_OK, "%s", e.msg);
+    }
+    dcm_file *ref = read_ok(tpath(names[0]), 0);
+    for (size_t k = 0; k < sizeof kinds / sizeof kinds[0]; k++) {
+        const char *files[NS];
+        for (int s = 0; s < NS; s++) {
+            if (kinds[k] == &plain) {
+                files[s] = tpath(names[s]);
+                continue;
+            }
+            char n[160];
+            snprintf(n, sizeof n, "%.32s_%.64s", kinds[k]->name, names[s]);
+            files[s] = tpath(n);
+            convert(kinds[k], tpath(names[s]), files[s]);
+        }
+        for (int header_only = 0; header_only <= 1; header_only++) {
+            double t0 = seconds();
+            for (int s = 0; s < NS; s++) {
+                dcm_file *f = read_ok(files[s], header_only);
+                if (s == 0 && !header_only)
+                    assert_same_pixels(&ref->frames[0], &f->frames[0], kinds[k]->name);
+                dcm_file_free(f);
+            }
+            double ms = (seconds() - t0) * 1e3 / NS;
+            cr_log_info("read %-10s %-11s %.3f ms per 256x256 image", kinds[k]->name,
+                        header_only ? "header-only" : "full", ms);
+        }
+    }
+    dcm_file_free(ref);
+    free(w.pixels);
 }
