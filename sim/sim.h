@@ -52,7 +52,7 @@ typedef struct sim_profile_params {
     int steady_state;     /* 1: weight by the local T1 steady state of Mz (flip varies across z);
                              needs the sequence timing (sim_profile_make_series) */
     double blur_mm;       /* RECT_GAUSS: the Gaussian's FWHM */
-    int steps;            /* Bloch time steps (0: 1000) */
+    int steps;            /* Bloch time steps (0: 500) */
 } sim_profile_params;
 
 /* A sampled complex slice profile along the slice normal z (mm, 0 at the slice centre, positive
