@@ -17,6 +17,8 @@ static const command commands[] = {
     {"check", wd_cmd_check, "validate the configuration and print the effective settings"},
     {"analyze", wd_cmd_analyze, "measure slice thickness and position in files or folders"},
     {"simulate", wd_cmd_simulate, "write a simulated phantom series with its truth"},
+    {"export", wd_cmd_export, "write stored measurements as CSV for accreditation"},
+    {"report", wd_cmd_report, "write a self-contained HTML report with trends and drift"},
     {"watch", wd_cmd_watch, "watch a folder: measure, store, archive and alert, unattended"},
     {"reanalyze", wd_cmd_reanalyze, "measure stored series again from their archived files (a new run)"},
 };

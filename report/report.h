@@ -98,4 +98,7 @@ void rp_cleanup(void);
 /* The verdict's word as the report prints it ("PASS", "WARN", "FAIL", "UNMEASURABLE"). */
 const char *rp_verdict_word(an_verdict v);
 
+/* ---- the HTML report with trend charts (added for trends): html.h ---- */
+#include "html.h"
+
 #endif
