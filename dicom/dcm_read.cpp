@@ -265,6 +265,7 @@ sw_status read_common(const Reader &r, DcmDataset *ds, DcmMetaInfo *meta, const 
         {DCM_SequenceVariant, t->sequence_variant, sizeof t->sequence_variant},
         {DCM_SoftwareVersions, t->software_versions, sizeof t->software_versions},
         {DCM_ReceiveCoilName, t->receive_coil, sizeof t->receive_coil},
+        {DCM_PatientPosition, t->patient_position, sizeof t->patient_position},
     };
     for (const TextTag &x : texts)
         get_text(ds, x.tag, x.dst, x.n);
@@ -361,6 +362,8 @@ void read_frame(const Frame &f, int echo_dim, dcm_image *im)
     if (!std::isfinite(im->imaging_frequency_mhz))
         elem_num(fg_elem(f, DCM_MRImagingModifierSequence, DCM_TransmitterFrequency, false), 0,
                  &im->imaging_frequency_mhz);
+    elem_num(fg_elem(f, DCM_MRImagingModifierSequence, DCM_PixelBandwidth, true), 0,
+             &im->pixel_bandwidth_hz);
     if (!im->receive_coil[0])
         elem_text(fg_elem(f, DCM_MRReceiveCoilSequence, DCM_ReceiveCoilName, false),
                   im->receive_coil, sizeof im->receive_coil);
@@ -439,6 +442,7 @@ void init_image(dcm_image *im)
     im->magnetic_field_t = NAN;
     im->imaging_frequency_mhz = NAN;
     im->flip_angle_deg = NAN;
+    im->pixel_bandwidth_hz = NAN;
     for (double &d : im->ipp)
         d = NAN;
     for (double &d : im->iop)

@@ -542,6 +542,8 @@ sw_status write_mr(W &w, const char *path, const dcm_image *im)
     if (im->echo_number > 0)
         w.put_int(ds, DCM_EchoNumbers, im->echo_number);
     w.put_ds3(ds, DCM_FlipAngle, im->flip_angle_deg);
+    if (im->pixel_bandwidth_hz > 0)
+        w.put_ds3(ds, DCM_PixelBandwidth, im->pixel_bandwidth_hz);
     w.put_opt(ds, DCM_ReceiveCoilName, im->receive_coil);
     /* Image Pixel */
     put_pixel_module(w, ds, im->rows, im->columns);
@@ -887,7 +889,11 @@ sw_status write_enhanced(W &w, const char *path, const dcm_image *f, int n)
         if (!std::isfinite(mhz))
             w.fail(SW_EINVAL, "ImagingFrequency is required in an Enhanced MR image");
         w.put_ds2(it, DCM_TransmitterFrequency, mhz);
-        w.put(it, DCM_PixelBandwidth, "130");
+        double bw = f0->pixel_bandwidth_hz;
+        if (!(bw > 0) || !std::isfinite(bw))
+            w.fail(SW_EINVAL, "PixelBandwidth is required in an Enhanced MR image");
+        else
+            w.put_ds(it, DCM_PixelBandwidth, &bw, 1);
     }
     it = w.item(sh, DCM_MRReceiveCoilSequence);
     if (it) {

@@ -75,6 +75,7 @@ typedef struct dcm_image {
     char stack_id[17];                   /* FrameContentSequence StackID (multi-frame) */
     int in_stack_position;               /* FrameContentSequence InStackPositionNumber, 0 absent */
     char patient_position[17];           /* PatientPosition: "HFS", "FFS", ...; written when set */
+    double pixel_bandwidth_hz;           /* PixelBandwidth, Hz per pixel (NAN absent) */
 } dcm_image;
 
 /* All frames of one file. */
@@ -134,7 +135,8 @@ void dcm_file_free(dcm_file *f);
  * slicewarden (ImplementationVersionName SLICEWARDEN01). All UIDs and attributes are taken from
  * the dcm_image fields (empty ones are omitted, except type 1 and 2 attributes of the MR Image IOD,
  * which get valid defaults: new UIDs, ImageType ORIGINAL\PRIMARY\OTHER, ScanningSequence SE,
- * SequenceVariant NONE, MRAcquisitionType 2D, PatientPosition HFS, BodyPartExamined HEAD).
+ * SequenceVariant NONE, MRAcquisitionType 2D, PatientPosition HFS unless patient_position is set,
+ * BodyPartExamined HEAD).
  * Geometry is required: finite ImagePositionPatient, ImageOrientationPatient of two orthogonal unit
  * vectors (to 1e-4), positive PixelSpacing; a non-finite pixel, an invalid UID or a value too long
  * for its VR is refused (SW_EINVAL). Non-ASCII text is written as UTF-8 (ISO_IR 192). The file is
@@ -149,9 +151,9 @@ sw_status dcm_write_mr(const char *path, const dcm_image *img, sw_error *err);
  * Pixel Value Transformation and the stored value is round((value - intercept) / slope), clamped
  * to 0..4095. Dimensions: StackID (stack_id, default "1"), InStackPositionNumber (in_stack_position
  * when every frame has one, else the rank of the position along the slice normal) and
- * EffectiveEchoTime with echo_number as its index. Also required here: echo_time_ms,
- * repetition_time_ms, slice_thickness_mm, magnetic_field_t, imaging_frequency_mhz and echo_number
- * 1..65535. */
+ * EffectiveEchoTime with echo_number as its index. Also required here (type 1 in this IOD):
+ * echo_time_ms, repetition_time_ms, slice_thickness_mm, magnetic_field_t, imaging_frequency_mhz,
+ * pixel_bandwidth_hz (> 0) and echo_number 1..65535. */
 sw_status dcm_write_enhanced_mr(const char *path, const dcm_image *frames, int n, sw_error *err);
 
 /* A new UID in the 2.25 scheme (DICOM PS3.5 B.2: "2.25." and the decimal value of a random

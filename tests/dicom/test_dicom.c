@@ -155,6 +155,7 @@ static void make_image(dcm_image *im, int rows, int cols, unsigned seed)
     im->magnetic_field_t = 1.5;
     im->imaging_frequency_mhz = 63.86;
     im->flip_angle_deg = 90.0;
+    im->pixel_bandwidth_hz = 130.0;
     im->echo_number = 1;
     im->series_number = 3;
     im->instance_number = 7;
@@ -392,6 +393,8 @@ static void assert_same_attributes(const dcm_image *w, const dcm_image *r)
     cr_assert_float_eq(r->magnetic_field_t, w->magnetic_field_t, 1e-12);
     cr_assert_float_eq(r->imaging_frequency_mhz, w->imaging_frequency_mhz, 1e-12);
     cr_assert_float_eq(r->flip_angle_deg, w->flip_angle_deg, 1e-12);
+    cr_assert_float_eq(r->pixel_bandwidth_hz, w->pixel_bandwidth_hz, 1e-12);
+    cr_assert_str_eq(r->patient_position, w->patient_position[0] ? w->patient_position : "HFS");
     /* DS holds at most 16 characters (PS3.5 Table 6.2-1): -124.5 + 10 cos(0.125) keeps 14
      * significant digits, so 1e-10 mm is the round trip's resolution. */
     assert_same_geometry(w, r, 1e-10);
@@ -419,6 +422,7 @@ Test(dicom, classic_roundtrip)
         w.pixels[i * 11] = special[i];
     sw_error e;
     sw_error_clear(&e);
+    strcpy(w.patient_position, "FFS");
     const char *p = tpath("classic.dcm");
     cr_assert_eq(dcm_write_mr(p, &w, &e), SW_OK, "%s", e.msg);
 
@@ -820,6 +824,7 @@ static void assert_frames(const dcm_file *f, const dcm_image *fr, int with_pixel
         cr_assert_float_eq(r->flip_angle_deg, 90.0, 0);
         cr_assert_float_eq(r->magnetic_field_t, 1.5, 0);
         cr_assert_float_eq(r->imaging_frequency_mhz, 63.86, 1e-12);
+        cr_assert_float_eq(r->pixel_bandwidth_hz, 130.0, 0);
         cr_assert_float_eq(r->rescale_slope, w->rescale_slope, 0);
         cr_assert_float_eq(r->rescale_intercept, w->rescale_intercept, 0);
         cr_assert_eq(r->in_stack_position, i % 3 + 1, "frame %d in-stack %d", i + 1,
