@@ -135,19 +135,22 @@ typedef struct an_disc {
     char reason[AN_REASON_MAX];
 } an_disc;
 
-/* Work buffers for the mask: w * h bytes and w * h ints, reused across images. */
+/* Work buffers for the (block-averaged) mask, reused across images. */
 typedef struct an_work {
     size_t cap;
     unsigned char *mask;
     int *stack;
+    float *coarse;
 } an_work;
 
 int an_work_reserve(an_work *w, size_t npx);
 void an_work_free(an_work *w);
 
-/* Finds the fluid disc (Otsu threshold, largest component, holes filled, circle fitted to sub-pixel
- * edge points along rays). Fills d->reason when not found. Returns 0, or -1 on allocation failure. */
-int an_find_disc(const an_image *im, const an_model *model, an_work *w, an_disc *d);
+/* Finds the fluid disc (Otsu threshold on block means, largest component, holes filled) and, with
+ * refine, fits a circle to sub-pixel edge points along rays (otherwise centre and radius come from
+ * the filled mask's centroid and area). Fills d->reason when not found. Returns 0, or -1 on
+ * allocation failure. */
+int an_find_disc(const an_image *im, const an_model *model, int refine, an_work *w, an_disc *d);
 
 /* Per-channel noise sigma from the air around a disc: the Rayleigh median in four bands around the
  * phantom, the mean of the two lowest bands (robust to ghosts along one direction). NAN when the air

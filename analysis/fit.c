@@ -233,15 +233,18 @@ double an_walk_cross(const double *p, int n, int start, int dir, double level, i
 
 void an_smooth(const double *p, int n, int w, double *q)
 {
-    int h = w / 2;
+    /* Running sums over the finite samples: O(n) whatever the width. */
+    int h = w / 2, c = 0;
+    double s = 0;
+    for (int j = 0; j < h && j < n; j++)
+        if (isfinite(p[j]))
+            s += p[j], c++;
     for (int i = 0; i < n; i++) {
-        double s = 0;
-        int c = 0;
-        for (int j = i - h; j <= i + h; j++)
-            if (j >= 0 && j < n && isfinite(p[j])) {
-                s += p[j];
-                c++;
-            }
+        int in = i + h, out = i - h - 1;
+        if (in < n && isfinite(p[in]))
+            s += p[in], c++;
+        if (out >= 0 && isfinite(p[out]))
+            s -= p[out], c--;
         q[i] = c ? s / c : NAN;
     }
 }

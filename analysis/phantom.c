@@ -21,6 +21,10 @@ int an_work_reserve(an_work *w, size_t npx)
     if (!s)
         return -1;
     w->stack = s;
+    float *c = realloc(w->coarse, npx * sizeof *c);
+    if (!c)
+        return -1;
+    w->coarse = c;
     w->cap = npx;
     return 0;
 }
@@ -31,23 +35,21 @@ void an_work_free(an_work *w)
         return;
     free(w->mask);
     free(w->stack);
+    free(w->coarse);
     memset(w, 0, sizeof *w);
 }
 
-/* Otsu's threshold over a 256-bin histogram between lo and hi. */
-static double otsu(const an_image *im, double lo, double hi)
+/* Otsu's threshold over a 256-bin histogram of v[0..n) between lo and hi. */
+static double otsu(const float *v, size_t n, double lo, double hi)
 {
     double hist[256] = {0}, scale = 255.999 / (hi - lo);
     size_t total = 0;
-    for (int y = 0; y < im->height; y++) {
-        const float *r = im->px + (ptrdiff_t)y * im->stride;
-        for (int x = 0; x < im->width; x++)
-            if (isfinite(r[x])) {
-                int b = (int)((r[x] - lo) * scale);
-                hist[b < 0 ? 0 : b > 255 ? 255 : b] += 1;
-                total++;
-            }
-    }
+    for (size_t i = 0; i < n; i++)
+        if (isfinite(v[i])) {
+            int b = (int)((v[i] - lo) * scale);
+            hist[b < 0 ? 0 : b > 255 ? 255 : b] += 1;
+            total++;
+        }
     double sum = 0;
     for (int i = 0; i < 256; i++)
         sum += i * hist[i];
@@ -146,9 +148,9 @@ static int kasa(const double *X, const double *Y, const unsigned char *use, int 
     return 0;
 }
 
-#define NRAY 72
+#define NRAY 48
 
-int an_find_disc(const an_image *im, const an_model *model, an_work *wk, an_disc *d)
+int an_find_disc(const an_image *im, const an_model *model, int refine, an_work *wk, an_disc *d)
 {
     memset(d, 0, sizeof *d);
     d->xc = d->yc = d->r_mm = NAN;
@@ -158,95 +160,163 @@ int an_find_disc(const an_image *im, const an_model *model, an_work *wk, an_disc
         sw_strlcpy(d->reason, "phantom not found: image too small or too large", sizeof d->reason);
         return 0;
     }
-    if (an_work_reserve(wk, npx))
-        return -1;
+    /* The mask works on block means (about 48 blocks across): cheap, and less noisy than pixels;
+     * the rays below refine the edge at full resolution. */
     int w = im->width, h = im->height;
+    int f = (w < h ? w : h) / 48;
+    if (f < 1)
+        f = 1;
+    int cw = w / f, ch = h / f;
+    size_t cn = (size_t)cw * ch;
+    if (an_work_reserve(wk, cn))
+        return -1;
     double col = im->col_mm > 0 ? im->col_mm : 1, row = im->row_mm > 0 ? im->row_mm : 1;
+    float *cv = wk->coarse;
     double lo = INFINITY, hi = -INFINITY;
-    for (int y = 0; y < h; y++) {
-        const float *r = im->px + (ptrdiff_t)y * im->stride;
-        for (int x = 0; x < w; x++)
-            if (isfinite(r[x])) {
-                lo = fmin(lo, r[x]);
-                hi = fmax(hi, r[x]);
+    /* Each block is represented by the mean of (up to) 2 x 2 pixels at its centre: a quarter of the
+     * pixels or fewer are read, which is plenty to tell fluid from air. */
+    int o0 = f > 1 ? f / 2 - 1 : 0, o1 = f > 1 ? f / 2 : 0;
+    for (int by = 0; by < ch; by++)
+        for (int bx = 0; bx < cw; bx++) {
+            double acc = 0;
+            int c = 0;
+            for (int y = by * f + o0; y <= by * f + o1; y++) {
+                const float *r = im->px + (ptrdiff_t)y * im->stride + bx * f;
+                for (int x = o0; x <= o1; x++)
+                    if (isfinite(r[x])) {
+                        acc += r[x];
+                        c++;
+                    }
             }
-    }
+            float m = c ? (float)(acc / c) : NAN;
+            cv[(size_t)by * cw + bx] = m;
+            if (c) {
+                lo = m < lo ? m : lo;
+                hi = m > hi ? m : hi;
+            }
+        }
     if (!(hi > lo)) {
         sw_strlcpy(d->reason, "phantom not found: the image is uniform", sizeof d->reason);
         return 0;
     }
-    double t = otsu(im, lo, hi);
+    double t = otsu(cv, cn, lo, hi);
     d->thresh = t;
     unsigned char *m = wk->mask;
-    for (int y = 0; y < h; y++) {
-        const float *r = im->px + (ptrdiff_t)y * im->stride;
-        for (int x = 0; x < w; x++)
-            m[(size_t)y * w + x] = r[x] > t;
-    }
+    for (size_t q = 0; q < cn; q++)
+        m[q] = cv[q] > t;
     size_t best = 0;
     int seed = -1;
-    for (size_t p = 0; p < npx; p++)
-        if (m[p] == 1) {
-            size_t c = flood(m, wk->stack, w, h, (int)p, 1, 2);
+    for (size_t q = 0; q < cn; q++)
+        if (m[q] == 1) {
+            size_t c = flood(m, wk->stack, cw, ch, (int)q, 1, 2);
             if (c > best) {
                 best = c;
-                seed = (int)p;
+                seed = (int)q;
             }
         }
     if (seed < 0) {
         sw_strlcpy(d->reason, "phantom not found: nothing above the threshold", sizeof d->reason);
         return 0;
     }
-    flood(m, wk->stack, w, h, seed, 2, 3);
-    /* Holes: whatever the outside cannot reach through non-phantom pixels. */
-    for (int x = 0; x < w; x++) {
-        if (m[x] != 3 && m[x] != 4)
-            flood(m, wk->stack, w, h, x, m[x], 4);
-        size_t q = (size_t)(h - 1) * w + x;
-        if (m[q] != 3 && m[q] != 4)
-            flood(m, wk->stack, w, h, (int)q, m[q], 4);
-    }
-    for (int y = 0; y < h; y++) {
-        size_t q0 = (size_t)y * w, q1 = q0 + w - 1;
+    flood(m, wk->stack, cw, ch, seed, 2, 3);
+    /* Holes: whatever the outside cannot reach through non-phantom blocks. */
+    for (int x = 0; x < cw; x++) {
+        size_t q0 = x, q1 = (size_t)(ch - 1) * cw + x;
         if (m[q0] != 3 && m[q0] != 4)
-            flood(m, wk->stack, w, h, (int)q0, m[q0], 4);
+            flood(m, wk->stack, cw, ch, (int)q0, m[q0], 4);
         if (m[q1] != 3 && m[q1] != 4)
-            flood(m, wk->stack, w, h, (int)q1, m[q1], 4);
+            flood(m, wk->stack, cw, ch, (int)q1, m[q1], 4);
+    }
+    for (int y = 0; y < ch; y++) {
+        size_t q0 = (size_t)y * cw, q1 = q0 + cw - 1;
+        if (m[q0] != 3 && m[q0] != 4)
+            flood(m, wk->stack, cw, ch, (int)q0, m[q0], 4);
+        if (m[q1] != 3 && m[q1] != 4)
+            flood(m, wk->stack, cw, ch, (int)q1, m[q1], 4);
     }
     double sx = 0, sy = 0;
     size_t cnt = 0;
-    for (int y = 0; y < h; y++)
-        for (int x = 0; x < w; x++)
-            if (m[(size_t)y * w + x] != 4) {
+    for (int y = 0; y < ch; y++)
+        for (int x = 0; x < cw; x++)
+            if (m[(size_t)y * cw + x] != 4) {
                 sx += x;
                 sy += y;
                 cnt++;
             }
-    if (cnt < 200 || cnt > npx * 0.95) {
+    if (cnt < 12 || cnt > cn * 0.95) {
         sw_strlcpy(d->reason, "phantom not found: no disc-like object", sizeof d->reason);
         return 0;
     }
-    double xc = sx / cnt, yc = sy / cnt, R = sqrt(cnt * col * row / M_PI);
-    /* Fluid level: median inside 0.6 R (the mask's inside). */
+    /* block (bx, by) is sampled around pixel bx f + (o0 + o1) / 2 */
+    double xc = sx / cnt * f + 0.5 * (o0 + o1), yc = sy / cnt * f + 0.5 * (o0 + o1);
+    double R = sqrt(cnt * f * f * col * row / M_PI);
+    /* Fluid level: median of the blocks inside 0.6 R. */
     {
-        float *buf = (float *)wk->stack; /* the stack is free now; npx ints hold npx floats */
+        float *buf = (float *)wk->stack; /* free now: cn ints hold cn floats */
         size_t nb = 0;
         double r6 = 0.6 * R;
-        for (int y = (int)fmax(0, yc - r6 / row); y <= (int)fmin(h - 1, yc + r6 / row); y++)
-            for (int x = (int)fmax(0, xc - r6 / col); x <= (int)fmin(w - 1, xc + r6 / col); x++) {
-                double dx = (x - xc) * col, dy = (y - yc) * row;
-                float v = im->px[(ptrdiff_t)y * im->stride + x];
+        for (int y = 0; y < ch; y++)
+            for (int x = 0; x < cw; x++) {
+                double dx = (x * f + 0.5 * (o0 + o1) - xc) * col, dy = (y * f + 0.5 * (o0 + o1) - yc) * row;
+                float v = cv[(size_t)y * cw + x];
                 if (dx * dx + dy * dy <= r6 * r6 && isfinite(v))
                     buf[nb++] = v;
             }
         d->fluid = an_median(buf, nb);
+    }
+    if (!refine) {
+        /* Coarse only: centre and radius from the filled mask, which must be a round object of
+         * about the model's size (its second moments isotropic). */
+        double sxx = 0, syy = 0, sxy = 0, mx = sx / cnt, my = sy / cnt;
+        for (int y = 0; y < ch; y++)
+            for (int x = 0; x < cw; x++)
+                if (m[(size_t)y * cw + x] != 4) {
+                    double ax = (x - mx) * f * col, ay = (y - my) * f * row;
+                    sxx += ax * ax;
+                    syy += ay * ay;
+                    sxy += ax * ay;
+                }
+        sxx /= cnt;
+        syy /= cnt;
+        sxy /= cnt;
+        /* Compact: the mask fills the circle of its own area and little lies outside it (a
+         * thresholded noise field spreads everywhere). */
+        size_t in = 0, inside = 0, outside = 0;
+        for (int y = 0; y < ch; y++)
+            for (int x = 0; x < cw; x++) {
+                double ax = (x * f + 0.5 * (o0 + o1) - xc) * col, ay = (y * f + 0.5 * (o0 + o1) - yc) * row;
+                double rr = ax * ax + ay * ay;
+                int msk = m[(size_t)y * cw + x] != 4;
+                if (rr <= 0.81 * R * R) {
+                    in++;
+                    inside += msk;
+                } else if (rr >= 1.21 * R * R) {
+                    outside += msk;
+                }
+            }
+        if (in == 0 || inside < 0.95 * in || outside > 0.03 * cnt) {
+            sw_strlcpy(d->reason, "phantom not found: no compact disc", sizeof d->reason);
+            return 0;
+        }
+        double tr = sxx + syy, det = sxx * syy - sxy * sxy, disc = sqrt(fmax(0, tr * tr / 4 - det));
+        double l1 = tr / 2 + disc, l2 = tr / 2 - disc;
+        if (!(l2 > 0) || l1 / l2 > 1.3 || !(R > 0.6 * model->radius_mm && R < 1.4 * model->radius_mm)) {
+            sw_strlcpy(d->reason, "phantom not found: no disc of the model's size", sizeof d->reason);
+            return 0;
+        }
+        d->xc = xc;
+        d->yc = yc;
+        d->r_mm = R;
+        d->rms_mm = NAN;
+        d->found = 1;
+        return 0;
     }
     /* Sub-pixel edge points along rays: the crossing of the level halfway between the local fluid
      * and air, found walking inward from outside. */
     double X[NRAY], Y[NRAY];
     unsigned char use[NRAY];
     int ne = 0;
-    double step = 0.5, r0 = 0.7 * R, r1 = 1.3 * R;
+    double step = 0.5, r0 = 0.82 * R, r1 = 1.18 * R;
     int ns = (int)((r1 - r0) / step) + 1;
     double prof[512];
     if (ns > 512)
@@ -258,8 +328,8 @@ int an_find_disc(const an_image *im, const an_model *model, an_work *wk, an_disc
             double rr = r0 + i * step;
             prof[i] = an_bilinear(im, (Xc + rr * cx) / col, (Yc + rr * cy) / row);
         }
-        double in = an_mean_range(prof, ns, (int)((0.02 * R) / step), (int)((0.18 * R) / step));
-        double out = an_mean_range(prof, ns, (int)((0.42 * R) / step), ns - 1);
+        double in = an_mean_range(prof, ns, 0, (int)((0.1 * R) / step));
+        double out = an_mean_range(prof, ns, (int)((0.26 * R) / step), ns - 1);
         if (!isfinite(in) || !isfinite(out) || !(in - out > 0.25 * (d->fluid - lo)))
             continue;
         double lev = 0.5 * (in + out);
@@ -344,7 +414,7 @@ int an_find_disc(const an_image *im, const an_model *model, an_work *wk, an_disc
     d->n_edge = ni;
     d->rms_mm = ni ? sqrt(ss / ni) : NAN;
     double rmod = model->radius_mm;
-    double fill = cnt * col * row / (M_PI * fr * fr);
+    double fill = cnt * f * f * col * row / (M_PI * fr * fr);
     if (ni < NRAY / 3 || !(d->rms_mm < 1.5) || !(fr > 0.6 * rmod && fr < 1.4 * rmod) ||
         !(fill > 0.8 && fill < 1.15)) {
         sw_strlcpy(d->reason, "phantom not found: no disc of the model's size", sizeof d->reason);
@@ -366,8 +436,9 @@ double an_noise_air(const an_image *im, const an_disc *d, float *scratch)
     double col = im->col_mm > 0 ? im->col_mm : 1, row = im->row_mm > 0 ? im->row_mm : 1;
     double rmin = d->r_mm + fmax(10.0, 0.1 * d->r_mm);
     size_t quarter = (size_t)w * h / 4, cnt[4] = {0}, zeros = 0, total = 0;
-    for (int y = 2; y < h - 2; y++)
-        for (int x = 2; x < w - 2; x++) {
+    /* Every other pixel in each direction: thousands per band are plenty for a median. */
+    for (int y = 2; y < h - 2; y += 2)
+        for (int x = 2; x < w - 2; x += 2) {
             double dx = (x - d->xc) * col, dy = (y - d->yc) * row;
             if (dx * dx + dy * dy < rmin * rmin)
                 continue;
@@ -381,12 +452,12 @@ double an_noise_air(const an_image *im, const an_disc *d, float *scratch)
             if (cnt[b] < quarter)
                 scratch[b * quarter + cnt[b]++] = v;
         }
-    if (total < 400 || zeros > total * 0.3)
+    if (total < 200 || zeros > total * 0.3)
         return NAN;
     double s[4];
     int ns = 0;
     for (int b = 0; b < 4; b++)
-        if (cnt[b] >= 200)
+        if (cnt[b] >= 100)
             s[ns++] = an_median(scratch + b * quarter, cnt[b]) / sqrt(2 * log(2.0));
     if (ns == 0)
         return NAN;

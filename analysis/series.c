@@ -288,7 +288,7 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
     /* 2. The phantom on every slice. */
     int nfound = 0;
     for (int i = 0; i < n; i++) {
-        if (an_find_disc(&imgs[i], model, &wk, &disc[i])) {
+        if (an_find_disc(&imgs[i], model, 0, &wk, &disc[i])) {
             st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
             goto out;
         }
@@ -314,41 +314,94 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
                 order[j] = order[j - 1];
                 order[j - 1] = t;
             }
-    /* 4. The ramp slice: the end of the stack that holds the insert with its strips. */
-    int ends[2] = {order[0], order[n - 1]}, nends = n > 1 ? 2 : 1, ramp = -1;
-    an_insert ins;
-    memset(&ins, 0, sizeof ins);
-    char why[AN_REASON_MAX] = "ramp slice not found: no insert at either end of the stack";
-    for (int e = 0; e < nends && ramp < 0; e++) {
-        int i = ends[e];
-        if (!disc[i].found)
-            continue;
-        double ang, el, area, off;
-        double area_model = (model->insert_u_max - model->insert_u_min) * (model->insert_v_max - model->insert_v_min);
-        if (an_dark_axis(&imgs[i], &geo[i], &disc[i], &ang, &el, &area, &off) || el < 2.5 ||
-            area < 0.25 * area_model || area > 3 * area_model || off > 0.25 * disc[i].r_mm)
-            continue;
-        an_insert tmp;
-        if (an_insert_find(&imgs[i], &geo[i], &disc[i], model, ang, 1, &tmp)) {
+    /* The two ends of the stack (the candidates for the wedge and ramp slices) get the full
+     * sub-pixel circle fit. */
+    for (int e = 0; e < (n > 1 ? 2 : 1); e++) {
+        int i = e == 0 ? order[0] : order[n - 1];
+        if (an_find_disc(&imgs[i], model, 1, &wk, &disc[i])) {
             st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
             goto out;
         }
-        if (tmp.found) {
-            ramp = i;
-            ins = tmp;
-        } else {
-            reason2(why, "ramp slice not found: ", tmp.reason);
-        }
+        out->phantom[i].found = disc[i].found;
+        out->phantom[i].centre.x = disc[i].found ? disc[i].xc : NAN;
+        out->phantom[i].centre.y = disc[i].found ? disc[i].yc : NAN;
+        out->phantom[i].radius_mm = disc[i].found ? disc[i].r_mm : NAN;
     }
-    int other = -1;
-    if (ramp >= 0 && nends == 2)
-        other = ramp == ends[0] ? ends[1] : ends[0];
-    /* 5. w toward slice 11: the ramp slice is slice 1 whatever the patient orientation. */
-    int wsign = 1;
-    if (ramp >= 0 && other >= 0 && has_geo && geo[ramp].z_n > geo[other].z_n)
-        wsign = -1;
-    for (int i = 0; i < n; i++)
-        an_geom_make(&imgs[i], wsign, &geo[i]);
+    /* 4. The ramp slice: the end of the stack that holds the insert with its strips. The ends are
+     * screened by the dark region near the centre (an elongated block of about the insert's area);
+     * the full insert search (edges, ends, strips) then runs in the final frame of the candidate. */
+    int ends[2] = {order[0], order[n - 1]}, nends = n > 1 ? 2 : 1, ramp = -1, other = -1, wsign = 1;
+    int cand[2], ncand = 0;
+    an_insert ins;
+    memset(&ins, 0, sizeof ins);
+    char why[AN_REASON_MAX] = "ramp slice not found: no insert at either end of the stack";
+    double area_model = (model->insert_u_max - model->insert_u_min) * (model->insert_v_max - model->insert_v_min);
+    double elong[2] = {0, 0};
+    for (int e = 0; e < nends; e++) {
+        int i = ends[e];
+        double ang, el, area, off;
+        if (!disc[i].found || an_dark_axis(&imgs[i], &geo[i], &disc[i], &ang, &el, &area, &off) ||
+            el < 2.5 || area < 0.25 * area_model || area > 3 * area_model || off > 0.25 * disc[i].r_mm)
+            continue;
+        elong[ncand] = el;
+        cand[ncand++] = i;
+    }
+    if (ncand == 2 && elong[1] > elong[0]) {
+        int t = cand[0];
+        cand[0] = cand[1];
+        cand[1] = t;
+    }
+    for (int c = 0; c < ncand && ramp < 0; c++) {
+        int i = cand[c];
+        int oth = nends == 2 ? (i == ends[0] ? ends[1] : ends[0]) : -1;
+        /* 5. w toward slice 11: the ramp slice is slice 1 whatever the patient orientation. */
+        wsign = oth >= 0 && has_geo && geo[i].z_n > geo[oth].z_n ? -1 : 1;
+        for (int k = 0; k < n; k++)
+            an_geom_make(&imgs[k], wsign, &geo[k]);
+        /* 6. Rotation: the insert's axis (modulo 180 degrees), the bridge telling up from down, then
+         * the long edges. */
+        double ang, el, area, off;
+        if (an_dark_axis(&imgs[i], &geo[i], &disc[i], &ang, &el, &area, &off))
+            ang = 0;
+        double sc[2] = {0, 0};
+        for (int f = 0; f < 2; f++) {
+            int ims[2] = {i, oth};
+            for (int q = 0; q < 2; q++) {
+                int k = ims[q];
+                if (k < 0 || !disc[k].found || !model->has_wedges)
+                    continue;
+                an_pose p;
+                an_pose_make(&geo[k], disc[k].xc, disc[k].yc, ang + 180.0 * f, &p);
+                double sb = bridge_score(&imgs[k], &p, model);
+                if (isfinite(sb))
+                    sc[f] += sb;
+            }
+        }
+        if (sc[1] > sc[0] + 0.2)
+            ang += 180.0;
+        if (an_insert_find(&imgs[i], &geo[i], &disc[i], model, ang, 1, &ins)) {
+            st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
+            goto out;
+        }
+        if (!ins.found) {
+            reason2(why, "ramp slice not found: ", ins.reason);
+            continue;
+        }
+        ramp = i;
+        other = oth;
+        double r = fmod(ins.rot_deg, 360.0);
+        if (r > 180)
+            r -= 360;
+        if (r <= -180)
+            r += 360;
+        ins.rot_deg = r;
+        out->rotation_deg = r;
+    }
+    if (ramp < 0) {
+        wsign = 1;
+        for (int k = 0; k < n; k++)
+            an_geom_make(&imgs[k], wsign, &geo[k]);
+    }
     /* Ordinals by position from the ramp end. */
     if (ramp >= 0) {
         double gaps[AN_MAX_IMAGES];
@@ -376,44 +429,6 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
             for (int i = 0; i < n; i++)
                 if (out->ordinal[i])
                     out->ordinal[i] += model->ramp_slice - 1;
-    }
-    /* 6. Rotation from the ramp slice's insert (final frame), the bridge telling up from down. */
-    if (ramp >= 0) {
-        double ang, el, area, off;
-        if (an_dark_axis(&imgs[ramp], &geo[ramp], &disc[ramp], &ang, &el, &area, &off))
-            ang = 0;
-        double sc[2] = {0, 0};
-        for (int f = 0; f < 2; f++) {
-            int ims[2] = {ramp, other};
-            for (int q = 0; q < 2; q++) {
-                int i = ims[q];
-                if (i < 0 || !disc[i].found || !model->has_wedges)
-                    continue;
-                an_pose p;
-                an_pose_make(&geo[i], disc[i].xc, disc[i].yc, ang + 180.0 * f, &p);
-                double s = bridge_score(&imgs[i], &p, model);
-                if (isfinite(s))
-                    sc[f] += s;
-            }
-        }
-        if (sc[1] > sc[0] + 0.2)
-            ang += 180.0;
-        if (an_insert_find(&imgs[ramp], &geo[ramp], &disc[ramp], model, ang, 1, &ins)) {
-            st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
-            goto out;
-        }
-        if (!ins.found) {
-            reason2(why, "ramp slice not found: ", ins.reason);
-            ramp = -1;
-        } else {
-            double r = fmod(ins.rot_deg, 360.0);
-            if (r > 180)
-                r -= 360;
-            if (r <= -180)
-                r += 360;
-            ins.rot_deg = r;
-            out->rotation_deg = r;
-        }
     }
     for (int i = 0; i < n; i++) {
         an_phantom_fit *pf = &out->phantom[i];

@@ -65,12 +65,18 @@ Test(drawn, disc_centre_and_radius)
     an_model_large(&m);
     an_work w = {0};
     an_disc d;
-    cr_assert_eq(an_find_disc(&v, &m, &w, &d), 0);
+    cr_assert_eq(an_find_disc(&v, &m, 1, &w, &d), 0);
     cr_assert(d.found, "%s", d.reason);
     double dx = 250.0 / 256;
     cr_assert(fabs(d.xc - (127.5 + 12.3 / dx)) < 0.05, "xc %f", d.xc);
     cr_assert(fabs(d.yc - (127.5 + 7.9 / dx)) < 0.05, "yc %f", d.yc);
     cr_assert(fabs(d.r_mm - 95.0) < 0.05, "r %f", d.r_mm);
+    /* the coarse mode (no rays) is good to about a pixel */
+    cr_assert_eq(an_find_disc(&v, &m, 0, &w, &d), 0);
+    cr_assert(d.found, "%s", d.reason);
+    cr_assert(fabs(d.xc - (127.5 + 12.3 / dx)) < 1.0, "coarse xc %f", d.xc);
+    cr_assert(fabs(d.yc - (127.5 + 7.9 / dx)) < 1.0, "coarse yc %f", d.yc);
+    cr_assert(fabs(d.r_mm - 95.0) < 1.5, "coarse r %f", d.r_mm);
     an_work_free(&w);
     free(px);
 }
@@ -91,7 +97,7 @@ Test(drawn, noise_from_air)
     an_model_large(&m);
     an_work w = {0};
     an_disc d;
-    cr_assert_eq(an_find_disc(&v, &m, &w, &d), 0);
+    cr_assert_eq(an_find_disc(&v, &m, 1, &w, &d), 0);
     cr_assert(d.found);
     float *scratch = malloc(sizeof(float) * 256 * 256);
     double s = an_noise_air(&v, &d, scratch);
