@@ -189,6 +189,8 @@ static void bloch_result_free(bloch_result *b)
     free(b->mz_ref);
 }
 
+/* Fills b with the Bloch simulation of p's pulses on the frequency grid. On success b's arrays are
+ * the caller's to release with bloch_result_free; on failure they are released and NULL. */
 static sw_status bloch_profile(const sim_profile_params *p, bloch_result *b, sw_error *err)
 {
     sw_status st = SW_OK;

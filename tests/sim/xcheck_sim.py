@@ -12,10 +12,14 @@
                  pydicom; each variant is brought back to the phantom frame from
                  ImageOrientationPatient, ImagePositionPatient and PatientPosition alone (DICOM PS3.3
                  C.7.6.2.1.1) and must equal the standard series pixel for pixel.
+  cli BIN DIR    runs `BIN simulate` into DIR (emptied first) with options and checks with pydicom
+                 that the files and truth.json carry what the options asked for.
 Exit status 0 when every check holds; the first failure is printed."""
 import glob
 import json
 import os
+import shutil
+import subprocess
 import sys
 
 import numpy as np
@@ -187,7 +191,88 @@ def check_series(root):
         fail("no series found under %s" % root)
 
 
+def run(binary, *args):
+    p = subprocess.run([binary, "simulate"] + list(args), capture_output=True, text=True,
+                       timeout=120)
+    return p.returncode, p.stdout, p.stderr
+
+
+def check_cli(binary, root):
+    import pydicom
+    shutil.rmtree(root, ignore_errors=True)
+    os.makedirs(root)
+    rc, out, _ = run(binary, "--help")
+    if rc != 0 or "usage: slicewarden simulate" not in out:
+        fail("--help: status %d" % rc)
+    rc, _, err = run(binary, "--snr", "ten", os.path.join(root, "bad"))
+    if rc != 2 or "--snr" not in err:
+        fail("a bad number gave status %d, message %r" % (rc, err))
+    rc, _, err = run(binary, "--orientation", "sideways", os.path.join(root, "bad"))
+    if rc != 2:
+        fail("an unknown orientation gave status %d" % rc)
+    d = os.path.join(root, "t2")
+    args = ["--series", "t2", "--thickness", "4", "--station", "ALDMR2", "--serial", "SWS-0002",
+            "--scanner-model", "SW-SIM 3T", "--field", "3", "--position-offset", "1.5",
+            "--orientation", "feet-first", "--shuffle", "--seed", "42", "--snr", "50",
+            "--date", "20260105", "--time", "083000", d]
+    rc, out, err = run(binary, *args)
+    if rc != 0:
+        fail("simulate failed (%d): %s" % (rc, err))
+    with open(os.path.join(d, "truth.json")) as fh:
+        t = json.load(fh)
+    names = [n for n in os.listdir(d) if n != "truth.json"]
+    if len(names) != 22:
+        fail("%d files for a T2 series" % len(names))
+    echoes = set()
+    for n in names:
+        ds = pydicom.dcmread(os.path.join(d, n))
+        want = {"StationName": "ALDMR2", "DeviceSerialNumber": "SWS-0002",
+                "ManufacturerModelName": "SW-SIM 3T", "PatientPosition": "FFS",
+                "SeriesDate": "20260105", "InstitutionName": "Alderbrook Regional Hospital"}
+        for k, v in want.items():
+            if str(getattr(ds, k)) != v:
+                fail("%s: %s is %r, asked %r" % (n, k, getattr(ds, k), v))
+        if not str(ds.SeriesTime).startswith("083000"):
+            fail("%s: SeriesTime %s" % (n, ds.SeriesTime))
+        if abs(float(ds.MagneticFieldStrength) - 3) > 1e-9:
+            fail("%s: field %s" % (n, ds.MagneticFieldStrength))
+        if abs(float(ds.ImagingFrequency) - GAMMA_BAR * 3 * 1e-6) > 1e-5:
+            fail("%s: ImagingFrequency %s, gamma-bar B0 %.6f" % (n, ds.ImagingFrequency,
+                                                                GAMMA_BAR * 3e-6))
+        if abs(float(ds.SliceThickness) - 4) > 1e-9:
+            fail("%s: SliceThickness %s" % (n, ds.SliceThickness))
+        echoes.add(int(ds.EchoNumbers))
+    if echoes != {1, 2}:
+        fail("echo numbers %s" % sorted(echoes))
+    if t["seed"] != "42" or t["profile"]["requested_thickness_mm"] != 4:
+        fail("truth.json does not carry the options: %s" % t["profile"])
+    if abs(t["echoes"][0]["thickness_fwhm_mm"] - 4) > 0.05:
+        fail("echo 1 FWHM %.4f for a 4 mm request" % t["echoes"][0]["thickness_fwhm_mm"])
+    for sl in t["slices"]:
+        if abs(sl["displacement_mm"] - 1.5) > 1e-9:
+            fail("slice %d displacement %.4f, asked 1.5" % (sl["ordinal"], sl["displacement_mm"]))
+    if abs(t["noise"]["sigma"] * 50 - t["echoes"][0]["fluid_signal"]) > 1e-6 * t["noise"]["sigma"]:
+        fail("noise sigma %.4f does not give SNR 50" % t["noise"]["sigma"])
+    if "22 images" not in out or ("%.3f mm" % t["echoes"][0]["thickness_fwhm_mm"]) not in out:
+        fail("summary does not state the files and the truth thickness:\n" + out)
+    rc, _, err = run(binary, *args)
+    if rc != 2 or "already" not in err:
+        fail("a second run into %s gave status %d (%s)" % (d, rc, err))
+    d = os.path.join(root, "mf")
+    rc, out, err = run(binary, "--enhanced", "--slices", "5", "--quiet", d)
+    if rc != 0 or out:
+        fail("--enhanced --quiet: status %d, output %r, %s" % (rc, out, err))
+    names = [n for n in os.listdir(d) if n != "truth.json"]
+    if len(names) != 1 or int(pydicom.dcmread(os.path.join(d, names[0])).NumberOfFrames) != 5:
+        fail("enhanced output %s" % names)
+    print("cli: options reach the files and truth.json")
+
+
 def main():
+    if len(sys.argv) == 4 and sys.argv[1] == "cli":
+        check_cli(sys.argv[2], sys.argv[3])
+        print("ok")
+        return 0
     if len(sys.argv) != 3 or sys.argv[1] not in ("profile", "series"):
         print(__doc__)
         return 2
