@@ -433,6 +433,7 @@ static void fill_common(const sim_series *s, const sim_timing *tm, const char *s
     im->magnetic_field_t = id->field_t;
     /* the frequency the scanner used: gamma-bar B0 plus the simulated centre-frequency error */
     im->imaging_frequency_mhz = SIM_GAMMA_BAR_MHZ_PER_T * id->field_t + p->cf_offset_hz * 1e-6;
+    im->pixel_bandwidth_hz = p->readout_bw_hz_per_px;
     im->flip_angle_deg = p->profile.kind == SIM_PROFILE_BLOCH_SINC ? p->profile.flip_deg : 90.0;
     im->rows = im->columns = p->matrix;
     im->pixel_spacing[0] = im->pixel_spacing[1] = p->fov_mm / p->matrix;

@@ -106,6 +106,8 @@ Test(io, classic_files_read_back_exactly)
         cr_assert_str_eq(b->station_name, "ALDMR1");
         cr_assert_str_eq(b->institution, "Alderbrook Regional Hospital");
         cr_assert_eq(b->bits_stored, 12);
+        cr_assert_float_eq(b->pixel_bandwidth_hz, 130.0, 1e-9, "PixelBandwidth is the readout's");
+        cr_assert_str_eq(b->patient_position, "HFS");
         cr_assert_eq(memcmp(a->pixels, b->pixels, sizeof(float) * 256 * 256), 0,
                      "%s: pixels differ", s->file_name[i]);
         dcm_file_free(f);
