@@ -170,23 +170,25 @@ static double beta_cf(double a, double b, double x)
     return h;
 }
 
-/* Regularized incomplete beta I_x(a, b). */
-static double beta_inc(double a, double b, double x)
+/* Regularized incomplete beta I_x(a, b), with y = 1 - x given separately so that neither loses
+ * digits when the other is small. */
+static double beta_inc(double a, double b, double x, double y)
 {
     if (x <= 0)
         return 0.0;
-    if (x >= 1)
+    if (y <= 0)
         return 1.0;
-    double lf = lgamma(a + b) - lgamma(a) - lgamma(b) + a * log(x) + b * log1p(-x);
+    double lf = lgamma(a + b) - lgamma(a) - lgamma(b) + a * log(x) + b * log(y);
     if (x < (a + 1.0) / (a + b + 2.0))
         return exp(lf) * beta_cf(a, b, x) / a;
-    return 1.0 - exp(lf) * beta_cf(b, a, 1.0 - x) / b;
+    return 1.0 - exp(lf) * beta_cf(b, a, y) / b;
 }
 
 /* P(T > t) for t >= 0: I_{df / (df + t^2)}(df / 2, 1 / 2) / 2. */
 static double t_upper_tail(double t, double df)
 {
-    return 0.5 * beta_inc(df / 2.0, 0.5, df / (df + t * t));
+    double d = df + t * t;
+    return 0.5 * beta_inc(df / 2.0, 0.5, df / d, t * t / d);
 }
 
 double an_student_t_cdf(double t, double df)
