@@ -150,7 +150,7 @@ typedef struct sim_identity {
 
 typedef struct sim_params {
     const an_model *model; /* the phantom; NULL: an_model_large(). Not owned; must outlive calls. */
-    sim_profile_params profile;
+    sim_profile_params profile; /* thickness_mm 0: the model's nominal thickness */
     sim_pose pose;
     sim_series_kind kind;
     double tr_ms;                 /* 0: from kind */
@@ -163,12 +163,12 @@ typedef struct sim_params {
     int oversample;               /* in-plane oversampling of the object grid (4), 1..8 */
     double snr;          /* as phantom-large.md defines it, for the first echo; 0: no noise */
     double coil_shading; /* relative rise of the receive sensitivity at the phantom's rim (0) */
-    double
-        position_offset_mm; /* slice position error e(z) = offset + scale z, z along the normal */
-    double position_scale;  /* dimensionless (0.01 = 1 %) */
-    double centre_z_mm;  /* patient-frame coordinate along the normal of the stack's centre (0) */
-    double cf_offset_hz; /* centre frequency error: slices shift by df / (gamma-bar G) toward the
-                            last slice, the image by df / readout_bw_hz_per_px pixels along +x */
+    /* slice position error e(z) = offset + scale z, z along the normal (patient frame) */
+    double position_offset_mm;
+    double position_scale; /* dimensionless (0.01 = 1 %) */
+    double centre_z_mm;    /* patient-frame coordinate along the normal of the stack's centre (0) */
+    double cf_offset_hz;   /* centre frequency error: slices shift by df / (gamma-bar G) toward the
+                              last slice, the image by df / readout_bw_hz_per_px pixels along +x */
     double readout_bw_hz_per_px; /* receiver bandwidth per pixel (130) */
     sim_orientation orientation;
     uint64_t seed;
@@ -189,7 +189,8 @@ sw_status sim_params_check(const sim_params *p, sw_error *err);
 /* What a simulated series carries as truth (also written as truth.json beside the files). */
 typedef struct sim_ramp_truth {
     double length_mm[2];   /* expected FWHM length of [0] top and [1] bottom strip (in-plane mm) */
-    double centre_u_mm[2]; /* strip centre, phantom u (mm): +-10 d without tilt */
+    double centre_u_mm[2]; /* strip centre: in-plane distance from where the phantom axis crosses
+                              the slice centre plane, along u rotated by rot (+-10 d untilted) */
 } sim_ramp_truth;
 
 typedef struct sim_wedge_truth {
