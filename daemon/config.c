@@ -47,7 +47,7 @@ static const field config_fields[] = {
     S("match", "t1", wd_config, t1_match, "*T1*|*t1*", "patterns on SeriesDescription/ProtocolName for the T1 series ('|' separated)"),
     S("match", "t2", wd_config, t2_match, "*T2*|*t2*", "patterns for the double-echo T2 series"),
     B("match", "by_content", wd_config, match_by_content, "yes", "measure unmatched series whose image count fits the phantom"),
-    E("analysis", "half_level", wd_config, half_level, "zero", half_levels, "half level of a ramp profile: zero, floor or background"),
+    E("analysis", "half_level", wd_config, half_level, "floor", half_levels, "half level of a ramp profile: zero, floor or background (floor: the analysis default)"),
     S("alert", "command", wd_config, alert_command, "", "command run for each alert, facts in SLICEWARDEN_* variables"),
     D("alert", "retry_seconds", wd_config, alert_retry_seconds, "300", 1, 86400, "retry a failed alert command after this long"),
     D("alert", "timeout_seconds", wd_config, alert_timeout_seconds, "30", 1, 3600, "kill an alert command that runs longer than this"),

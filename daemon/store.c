@@ -39,10 +39,11 @@ static json_t *jnum(double v)
 }
 
 /* Emits one row. A value that is not finite, or a verdict of unmeasurable, makes an unmeasurable
- * row that carries the reason (never a number). details (may be NULL) is consumed. */
-static void row(flat *f, const char *metric, int slice, double value, double unc, const char *unit,
-                db_verdict verdict, const char *reason, double nominal, double lo, double hi,
-                json_t *details)
+ * row that carries why (never a number); a measured row carries note (the analysis' own remark, ""
+ * when it made none). details (may be NULL) is consumed. */
+static void row_note(flat *f, const char *metric, int slice, double value, double unc,
+                     const char *unit, db_verdict verdict, const char *why, const char *note,
+                     double nominal, double lo, double hi, json_t *details)
 {
     if (f->rc != SW_OK) {
         json_decref(details);
@@ -61,12 +62,12 @@ static void row(flat *f, const char *metric, int slice, double value, double unc
         m.verdict = DB_UNMEASURABLE;
         m.value = NAN;
         m.uncertainty = NAN;
-        m.reason = reason && *reason ? reason : "not measured";
+        m.reason = why && *why ? why : "not measured";
     } else {
         m.verdict = verdict;
         m.value = value;
         m.uncertainty = isfinite(unc) && unc >= 0 ? unc : NAN;
-        m.reason = verdict == DB_INFO ? "" : (reason ? reason : "");
+        m.reason = note ? note : "";
     }
     char *text = details ? json_dumps(details, JSON_COMPACT | JSON_REAL_PRECISION(10)) : NULL;
     m.details_json = text;
@@ -75,10 +76,17 @@ static void row(flat *f, const char *metric, int slice, double value, double unc
     json_decref(details);
 }
 
-static void info(flat *f, const char *metric, int slice, double value, double unc, const char *unit,
-                 const char *reason)
+static void row(flat *f, const char *metric, int slice, double value, double unc, const char *unit,
+                db_verdict verdict, const char *why, double nominal, double lo, double hi,
+                json_t *details)
 {
-    row(f, metric, slice, value, unc, unit, DB_INFO, reason, NAN, NAN, NAN, NULL);
+    row_note(f, metric, slice, value, unc, unit, verdict, why, "", nominal, lo, hi, details);
+}
+
+static void info(flat *f, const char *metric, int slice, double value, double unc, const char *unit,
+                 const char *why)
+{
+    row(f, metric, slice, value, unc, unit, DB_INFO, why, NAN, NAN, NAN, NULL);
 }
 
 static json_t *strip_details(const an_strip *s)
@@ -122,9 +130,9 @@ static void flatten_thickness(flat *f, const an_thickness *t, const wd_method *m
     json_object_set_new(d, "warn_low_mm", jnum(wlo));
     json_object_set_new(d, "warn_high_mm", jnum(whi));
     json_object_set_new(d, "tolerance_set", json_string(tol->name));
-    row(f, "slice_thickness", t->slice, t->measured ? t->corrected_mm : NAN, t->uncertainty_mm,
-        "mm", t->measured ? wd_db_verdict(t->verdict) : DB_UNMEASURABLE, why, t->nominal_mm,
-        t->limit_lo_mm, t->limit_hi_mm, d);
+    row_note(f, "slice_thickness", t->slice, t->measured ? t->corrected_mm : NAN,
+             t->uncertainty_mm, "mm", t->measured ? wd_db_verdict(t->verdict) : DB_UNMEASURABLE,
+             why, t->reason, t->nominal_mm, t->limit_lo_mm, t->limit_hi_mm, d);
     const char *top_why = t->top.reason[0] ? t->top.reason : why;
     row(f, "ramp_length_top", t->slice, t->top.measured ? t->top.length_mm : NAN,
         t->top.length_unc_mm, "mm", DB_INFO, top_why, NAN, NAN, NAN,
@@ -164,9 +172,9 @@ static void flatten_position(flat *f, const an_position *p, int k, const an_seri
     json_object_set_new(d, "warn_mm", jnum(tol->bar_difference_warn));
     json_object_set_new(d, "z_mm", jnum(p->z_mm));
     json_object_set_new(d, "tolerance_set", json_string(tol->name));
-    row(f, "bar_length_difference", slice, p->measured ? p->bar_difference_mm : NAN,
-        p->uncertainty_mm, "mm", p->measured ? wd_db_verdict(p->verdict) : DB_UNMEASURABLE, why, 0,
-        -lim, lim, d);
+    row_note(f, "bar_length_difference", slice, p->measured ? p->bar_difference_mm : NAN,
+             p->uncertainty_mm, "mm", p->measured ? wd_db_verdict(p->verdict) : DB_UNMEASURABLE,
+             why, p->reason, 0, -lim, lim, d);
     /* d = -(bar difference) / 2, so its uncertainty is half the difference's. */
     info(f, "slice_displacement", slice, p->measured ? p->displacement_mm : NAN,
          p->uncertainty_mm / 2, "mm", why);

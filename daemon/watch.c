@@ -1885,8 +1885,10 @@ static void ping(watcher *w, int force)
 static void after_take(watcher *w, const qitem *it, int r)
 {
     if (r == RETRY) {
+        /* 1, 2, 4, then every 4 s: a lock held by another writer is brief, and each try waits
+         * for it a second anyway. */
         int tries = it->tries + 1;
-        double delay = tries < 5 ? (double)(1 << (tries - 1)) : 30.0;
+        double delay = tries < 3 ? (double)(1 << (tries - 1)) : 4.0;
         (void)enqueue(&w->q, it->path, delay, tries);
         return;
     }
