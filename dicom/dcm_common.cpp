@@ -1,6 +1,7 @@
 /* dcm_common.cpp: process-wide DCMTK setup (log, dictionary, codecs), UIDs and message helpers. */
 #include "dcm_internal.h"
 
+#include <atomic>
 #include <cerrno>
 #include <cstdint>
 #include <cstdio>
@@ -192,13 +193,13 @@ void dcm_new_uid(char *buf, const char *suffix_hint)
     unsigned char b[16];
     if (random_bytes(b, sizeof b) != 0) {
         /* No kernel randomness: time, pid, a counter and an address, mixed. Unique per call. */
-        static uint64_t counter;
+        static std::atomic<uint64_t> counter;
         struct timespec ts;
         clock_gettime(CLOCK_REALTIME, &ts);
         uint64_t hi = mix64(static_cast<uint64_t>(ts.tv_sec) * 1000000000ull +
                             static_cast<uint64_t>(ts.tv_nsec));
         uint64_t lo = mix64((static_cast<uint64_t>(getpid()) << 32) ^ ++counter ^
-                            reinterpret_cast<uintptr_t>(&counter));
+                            reinterpret_cast<uintptr_t>(&ts));
         for (int i = 0; i < 8; i++) {
             b[i] = static_cast<unsigned char>(hi >> (8 * i));
             b[8 + i] = static_cast<unsigned char>(lo >> (8 * i));

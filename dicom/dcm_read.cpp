@@ -473,10 +473,10 @@ struct Raw {
             return v;
         }
         switch (nbytes) {
-        case 1: {
+        case 1: { /* byte k of the stream: in little endian the odd bytes are high halves */
             Uint16 word = w[k >> 1];
-            int lowfirst = big ? !(k & 1) : (k & 1);
-            return lowfirst ? (word >> 8) & 0xFFu : word & 0xFFu;
+            bool high = big ? !(k & 1) : (k & 1);
+            return high ? (word >> 8) & 0xFFu : word & 0xFFu;
         }
         case 2:
             return w[k];
