@@ -2,6 +2,7 @@
 """compare_pydicom.py: check what slicewarden's DICOM reader returned against pydicom's reading.
 
 Usage: compare_pydicom.py MANIFEST.json
+       compare_pydicom.py --make-enhanced OUT.dcm
 
 The manifest (written by test_dicom.c) lists DICOM files, each with the attributes our reader
 returned per frame and a raw float32 dump of the rescaled pixels. This script reads every file
@@ -153,7 +154,88 @@ def compare(entry, c):
         c.check(bad == 0, f"{tag}: {bad} pixels differ (max {diff.max():.6g}, tolerance {tol})")
 
 
+def make_enhanced(path):
+    """Writes, with pydicom, an Enhanced MR file laid out unlike ours: the echo dimension first,
+    pixel measures and rescale per frame, orientation shared, timing at the top of the shared
+    item, 2 echoes x 2 positions in echo-major order, signed 16-bit pixels."""
+    from pydicom.dataset import Dataset, FileMetaDataset
+    from pydicom.sequence import Sequence
+    from pydicom.uid import ExplicitVRLittleEndian, generate_uid
+
+    rows, cols, n = 6, 5, 4
+    meta = FileMetaDataset()
+    meta.MediaStorageSOPClassUID = "1.2.840.10008.5.1.4.1.1.4.1"
+    meta.MediaStorageSOPInstanceUID = generate_uid(prefix="2.25.")
+    meta.TransferSyntaxUID = ExplicitVRLittleEndian
+    ds = Dataset()
+    ds.file_meta = meta
+    ds.preamble = b"\0" * 128
+    ds.is_little_endian = True
+    ds.is_implicit_VR = False
+    ds.SOPClassUID = meta.MediaStorageSOPClassUID
+    ds.SOPInstanceUID = meta.MediaStorageSOPInstanceUID
+    ds.StudyInstanceUID = generate_uid(prefix="2.25.")
+    ds.SeriesInstanceUID = generate_uid(prefix="2.25.")
+    ds.FrameOfReferenceUID = generate_uid(prefix="2.25.")
+    ds.Modality = "MR"
+    ds.StationName = "ALDMR3"
+    ds.Manufacturer = "Slicewarden Simulator"
+    ds.ManufacturerModelName = "SW-SIM 3T"
+    ds.MagneticFieldStrength = 3
+    ds.NumberOfFrames = n
+    ds.Rows, ds.Columns = rows, cols
+    ds.SamplesPerPixel = 1
+    ds.PhotometricInterpretation = "MONOCHROME2"
+    ds.BitsAllocated, ds.BitsStored, ds.HighBit, ds.PixelRepresentation = 16, 16, 15, 1
+    ds.DimensionIndexSequence = Sequence()
+    for ptr, grp in ((0x00189082, 0x00189114), (0x00209057, 0x00209111)):
+        d = Dataset()
+        d.DimensionIndexPointer = ptr
+        d.FunctionalGroupPointer = grp
+        ds.DimensionIndexSequence.append(d)
+    shared = Dataset()
+    po = Dataset()
+    po.ImageOrientationPatient = [0, 1, 0, 0, 0, -1]
+    shared.PlaneOrientationSequence = Sequence([po])
+    tim = Dataset()
+    tim.RepetitionTime = 1200
+    tim.FlipAngle = 70
+    shared.MRTimingAndRelatedParametersSequence = Sequence([tim])
+    ds.SharedFunctionalGroupsSequence = Sequence([shared])
+    ds.PerFrameFunctionalGroupsSequence = Sequence()
+    pix = []
+    for i in range(n):
+        echo, pos = i // 2 + 1, i % 2 + 1
+        f = Dataset()
+        fc = Dataset()
+        fc.InStackPositionNumber = pos
+        fc.DimensionIndexValues = [echo, pos]
+        f.FrameContentSequence = Sequence([fc])
+        pp = Dataset()
+        pp.ImagePositionPatient = [-3.5 + 7.0 * pos, -120.25, 88.0]
+        f.PlanePositionSequence = Sequence([pp])
+        pm = Dataset()
+        pm.PixelSpacing = [1.5, 1.25]
+        pm.SliceThickness = 3
+        f.PixelMeasuresSequence = Sequence([pm])
+        me = Dataset()
+        me.EffectiveEchoTime = 15.0 * echo
+        f.MREchoSequence = Sequence([me])
+        pv = Dataset()
+        pv.RescaleSlope = 0.75 + 0.5 * i
+        pv.RescaleIntercept = -2.25 * i
+        pv.RescaleType = "US"
+        f.PixelValueTransformationSequence = Sequence([pv])
+        ds.PerFrameFunctionalGroupsSequence.append(f)
+        pix.append((np.arange(rows * cols, dtype=np.int16) * (i + 3) - 40).reshape(rows, cols))
+    ds.PixelData = np.stack(pix).astype("<i2").tobytes()
+    ds.save_as(path, write_like_original=False)
+
+
 def main():
+    if len(sys.argv) == 3 and sys.argv[1] == "--make-enhanced":
+        make_enhanced(sys.argv[2])
+        return 0
     with open(sys.argv[1], encoding="utf-8") as fp:
         manifest = json.load(fp)
     c = Checker()

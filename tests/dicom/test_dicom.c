@@ -1092,11 +1092,38 @@ Test(dicom, pydicom_agrees, .timeout = 120)
         json_array_append_new(manifest, describe(tpath(name), 0, NULL));
     }
 
+    /* An Enhanced MR file written by pydicom, laid out unlike ours (compare_pydicom.py
+     * --make-enhanced: echo dimension first, measures and rescale per frame, signed pixels). */
+    char script[1024];
+    snprintf(script, sizeof script, "%s/tests/dicom/compare_pydicom.py", SW_SOURCE_DIR);
+    const char *pe = tpath("py_made_enhanced.dcm");
+    const char *mk[] = {SW_PYTHON3, script, "--make-enhanced", pe, NULL};
+    run_ok(mk);
+    json_array_append_new(manifest, describe(pe, 0, NULL));
+    dcm_file *f = read_ok(pe, 0);
+    cr_assert_eq(f->nframes, 4);
+    for (int i = 0; i < 4; i++) {
+        const dcm_image *r = &f->frames[i];
+        cr_assert_eq(r->echo_number, i / 2 + 1, "frame %d echo %d", i + 1, r->echo_number);
+        cr_assert_eq(r->in_stack_position, i % 2 + 1);
+        cr_assert_float_eq(r->echo_time_ms, 15.0 * (i / 2 + 1), 0);
+        cr_assert_float_eq(r->repetition_time_ms, 1200, 0);
+        cr_assert_float_eq(r->rescale_slope, 0.75 + 0.5 * i, 0);
+        cr_assert_float_eq(r->rescale_intercept, -2.25 * i, 0);
+        cr_assert_float_eq(r->ipp[0], -3.5 + 7.0 * (i % 2 + 1), 0);
+        cr_assert_float_eq(r->iop[1], 1, 0);
+        cr_assert_float_eq(r->pixel_spacing[1], 1.25, 0);
+        cr_assert_float_eq(r->slice_thickness_mm, 3, 0);
+        /* pixel k of frame i is (k (i + 3) - 40) x slope + intercept */
+        for (int k = 0; k < r->rows * r->columns; k++)
+            cr_assert_eq(r->pixels[k], (float)((k * (i + 3) - 40) * r->rescale_slope +
+                                               r->rescale_intercept));
+    }
+    dcm_file_free(f);
+
     const char *mf = tpath("manifest.json");
     cr_assert_eq(json_dump_file(manifest, mf, JSON_INDENT(1)), 0);
     json_decref(manifest);
-    char script[1024];
-    snprintf(script, sizeof script, "%s/tests/dicom/compare_pydicom.py", SW_SOURCE_DIR);
     static char out[1 << 16];
     const char *argv[] = {SW_PYTHON3, script, mf, NULL};
     int rc = run(argv, out, sizeof out);
