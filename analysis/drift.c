@@ -19,6 +19,8 @@ void an_drift_params_default(an_drift_params *p)
     p->baseline_from = NAN;
     p->baseline_to = NAN;
     p->confidence = 0.95;
+    p->cusum_restart = 1;
+    p->close_after = 3;
 }
 
 sw_status an_drift_params_check(const an_drift_params *p, sw_error *err)
@@ -43,6 +45,9 @@ sw_status an_drift_params_check(const an_drift_params *p, sw_error *err)
     if (!(p->confidence > 0 && p->confidence < 1))
         return sw_error_set(err, SW_EINVAL, "drift: confidence %g is not in (0, 1)",
                             p->confidence);
+    if (p->close_after < 1 || p->close_after > 1000)
+        return sw_error_set(err, SW_EINVAL, "drift: close_after %d is not in 1 to 1000",
+                            p->close_after);
     return SW_OK;
 }
 
@@ -398,8 +403,6 @@ sw_status an_drift_evaluate(const an_drift_input *in, const an_drift_params *p,
         memcpy(z, bx, (size_t)m * sizeof *z);
     if ((rc = an_ewma(in->x + first, m, mu, sg, p->lambda, p->L, NULL, lcl, ucl, err)) != SW_OK)
         goto out;
-    if ((rc = an_cusum(in->x + first, m, mu, sg, p->k, cp, cm, err)) != SW_OK)
-        goto out;
     double zi = mu, q2i = 1.0, cpi = 0, cmi = 0, K = p->k * sg;
     for (int j = 0; j < m; j++) {
         int i = first + j;
@@ -409,6 +412,10 @@ sw_status an_drift_evaluate(const an_drift_input *in, const an_drift_params *p,
         double w = p->L * sg * sqrt(p->lambda / (2.0 - p->lambda) * (1.0 - q2i));
         cpi = fmax(0.0, x - (mu + K) + cpi);
         cmi = fmax(0.0, (mu - K) - x + cmi);
+        if (cp)
+            cp[j] = cpi;
+        if (cm)
+            cm[j] = cmi;
         unsigned f = AN_DRIFT_F_MONITORED;
         if (zi > mu + w)
             f |= AN_DRIFT_F_EWMA_HI;
@@ -421,6 +428,12 @@ sw_status an_drift_evaluate(const an_drift_input *in, const an_drift_params *p,
         if (track->flags)
             track->flags[i] |= f;
         out->last_flags = f;
+        out->in_control_run = f & AN_DRIFT_F_OUT ? 0 : out->in_control_run + 1;
+        /* The restart: the signal stays on this point; the next one sums from zero. */
+        if (p->cusum_restart && cpi > out->H)
+            cpi = 0;
+        if (p->cusum_restart && cmi > out->H)
+            cmi = 0;
     }
     out->status = out->last_flags & AN_DRIFT_F_OUT ? AN_DRIFT_OUT : AN_DRIFT_IN_CONTROL;
     sw_error terr;

@@ -11,7 +11,10 @@
 /* ---- parameters ----
  * Defaults (an_drift_params_default): lambda 0.2 and L 3 for the EWMA, k 0.5 and h 5 (sigma
  * units) for the CUSUM: common choices in Montgomery's textbook on statistical quality control
- * (from memory); 8 baseline results; a 95 % interval for the trend. */
+ * (from memory); 8 baseline results; a 95 % interval for the trend. Without a restart a CUSUM that
+ * signalled decays by only K a point after the process is back, so it would hold an alarm for
+ * months; restarting after a signal (as after corrective action) lets the charts say "back in
+ * control", and close_after consecutive in-control points end an episode (hysteresis). */
 typedef struct an_drift_params {
     double lambda;     /* EWMA weight of the newest result, 0 < lambda <= 1 */
     double L;          /* EWMA limit half-width in standard deviations of the statistic, > 0 */
@@ -21,6 +24,8 @@ typedef struct an_drift_params {
     double baseline_from, baseline_to; /* ... or the accepted results with t in [from, to), when
                                           both are finite (days, the caller's time axis) */
     double confidence; /* of the trend's intervals, 0 < confidence < 1 (0.95) */
+    int cusum_restart; /* 1: a sum that signalled restarts from 0 at the next point (default) */
+    int close_after;   /* an episode ends after this many consecutive in-control points (3) */
 } an_drift_params;
 
 void an_drift_params_default(an_drift_params *p);
@@ -107,8 +112,9 @@ typedef struct an_drift_input {
     const int *accepted;     /* NULL: every point */
 } an_drift_input;
 
-/* Arrays of n the caller owns (any may be NULL): per point, EWMA and its limits, CUSUM sums, and
- * flags (AN_DRIFT_F_*). Points before the first monitored one get NAN and flag 0. */
+/* Arrays of n the caller owns (any may be NULL): per point, EWMA and its limits, CUSUM sums (with
+ * the restart after a signal when p->cusum_restart), and flags (AN_DRIFT_F_*). Points before the
+ * first monitored one get NAN and flag 0. */
 #define AN_DRIFT_F_BASELINE 1u  /* the point is in the baseline */
 #define AN_DRIFT_F_MONITORED 2u /* the point is at or after the baseline's first */
 #define AN_DRIFT_F_EWMA_HI 4u   /* z above the upper limit */
@@ -134,6 +140,7 @@ typedef struct an_drift_summary {
     int first;          /* index of the first monitored point, -1 without a baseline */
     int n_monitored;
     unsigned last_flags; /* flags of the latest point */
+    int in_control_run;  /* consecutive in-control points at the end of the history */
     double H;            /* h sigma, in the value's unit */
     int have_trend;      /* trend fitted over the monitored points (needs 3) */
     an_trend trend;

@@ -3,7 +3,7 @@
  *
  * An episode's life, per key (db_drift_key), evaluated after every stored run:
  *   no episode --(latest point out of control: db_alert_add + db_drift_episode_open)--> open
- *   open --(latest point back in control: db_drift_episode_close)--> closed (history)
+ *   open --(the latest close_after points in control: db_drift_episode_close)--> closed
  *   open --(still out of control)--> open (no new alert)
  * A key without a complete baseline changes nothing. */
 #include "trends.h"
@@ -359,14 +359,15 @@ sw_status wd_drift_check(db *d, const db_drift_key *k, const wd_drift_opts *o,
                                         out->alert_id, &out->episode_id, err)) != SW_OK)
             goto out;
         out->started = 1;
-    } else if (e.sum.status == AN_DRIFT_IN_CONTROL && found) {
+    } else if (e.sum.status == AN_DRIFT_IN_CONTROL && found &&
+               e.sum.in_control_run >= o->p.close_after) {
         if ((rc = db_drift_episode_close(d, ep.id, last->series_id, last->acquired_at, err)) !=
             SW_OK)
             goto out;
         out->episode_id = ep.id;
         out->ended = 1;
-        snprintf(out->message, sizeof out->message, "%s: back in control since %s", k->metric,
-                 last->acquired_at);
+        snprintf(out->message, sizeof out->message, "%s: back in control for %d results, to %s",
+                 k->metric, e.sum.in_control_run, last->acquired_at);
     } else {
         out->episode_id = found ? ep.id : 0;
         snprintf(out->message, sizeof out->message, "%s: %s%s", k->metric,

@@ -68,8 +68,8 @@ char *wd_drift_flags_text(unsigned flags, char *buf, size_t n);
 
 /* ---- the alarm ----
  * Evaluates the key's history; when its latest point is out of control and no episode is open,
- * opens one with a drift alert (one per episode); when it is back in control, closes the open
- * episode (no alert). Without a complete baseline nothing changes. Runs in the caller's
+ * opens one with a drift alert (one per episode); when its latest o->p.close_after points are in
+ * control, closes the open episode (no alert). Without a complete baseline nothing changes. Runs in the caller's
  * transaction when one is open, else in its own. png_path (may be NULL) goes with the alert. */
 typedef struct wd_drift_outcome {
     an_drift_status status;

@@ -5,7 +5,8 @@ Reads one JSON case on stdin, prints the reference results as JSON on stdout:
 - baseline: mean (numpy.mean), SD (numpy.std, ddof=1), RMS uncertainty, sigma = max of the two;
 - EWMA (Roberts 1959) by scipy.signal.lfilter, z_i = lambda x_i + (1 - lambda) z_{i-1}, z_0 = mu0,
   with the exact limits mu0 +/- L sigma sqrt(lambda/(2-lambda) (1-(1-lambda)^(2i)));
-- tabular CUSUM (Page 1954; the form in Montgomery's textbook, from memory), a plain loop;
+- tabular CUSUM (Page 1954; the form in Montgomery's textbook, from memory), a plain loop, with
+  or without the restart after a signal;
 - least-squares trend by scipy.stats.linregress; its t quantile by inverting scipy.stats.t.cdf with
   brentq (scipy.stats.t.ppf itself is good to about 1e-9 relative only: both are reported);
 - the crossing time of a tolerance limit and its inverse-prediction interval: the roots of
@@ -65,6 +66,8 @@ def charts(x, mu, sigma, case):
     i = np.arange(1, x.size + 1)
     w = L * sigma * np.sqrt(lam / (2.0 - lam) * (1.0 - (1.0 - lam) ** (2 * i)))
     K = k * sigma
+    H = case["h"] * sigma
+    restart = case.get("cusum_restart", True)
     cp, cm = [], []
     p = m = 0.0
     for v in x:
@@ -72,7 +75,11 @@ def charts(x, mu, sigma, case):
         m = max(0.0, (mu - K) - v + m)
         cp.append(p)
         cm.append(m)
-    H = case["h"] * sigma
+        # After a signal the sum starts again from zero at the next result.
+        if restart and p > H:
+            p = 0.0
+        if restart and m > H:
+            m = 0.0
     out = [bool(z[j] > mu + w[j] or z[j] < mu - w[j] or cp[j] > H or cm[j] > H)
            for j in range(x.size)]
     return {"z": z.tolist(), "lcl": (mu - w).tolist(), "ucl": (mu + w).tolist(), "cp": cp,
@@ -128,9 +135,10 @@ def evaluate(case, n=None):
 
 def episodes(case):
     """Evaluates after each result: an episode opens when the latest point is out of control and
-    none is open, and closes when the latest point is back in control."""
+    none is open, and closes when the latest close_after points are all in control."""
     opened, closed = [], []
     is_open = False
+    m = case.get("close_after", 3)
     for n in range(1, len(case["x"]) + 1):
         b, c, _ = evaluate(case, n)
         if b is None:
@@ -139,7 +147,7 @@ def episodes(case):
         if out and not is_open:
             opened.append(n - 1)
             is_open = True
-        elif not out and is_open:
+        elif is_open and len(c["out"]) >= m and not any(c["out"][-m:]):
             closed.append(n - 1)
             is_open = False
     return {"opened": opened, "closed": closed}

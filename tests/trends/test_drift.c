@@ -139,7 +139,8 @@ Test(drift, refuses_bad_input)
     an_drift_params p;
     an_drift_params_default(&p);
     cr_assert_eq(an_drift_params_check(&p, NULL), SW_OK);
-    cr_assert(p.lambda == 0.2 && p.L == 3 && p.k == 0.5 && p.h == 5 && p.baseline_n == 8);
+    cr_assert(p.lambda == 0.2 && p.L == 3 && p.k == 0.5 && p.h == 5 && p.baseline_n == 8 &&
+              p.cusum_restart == 1 && p.close_after == 3);
     an_drift_params q = p;
     q.lambda = 0;
     cr_assert_eq(an_drift_params_check(&q, NULL), SW_EINVAL);
@@ -192,6 +193,8 @@ static json_t *case_json(const example *e, const an_drift_params *p, double lo, 
                           "u", u, "accepted", a, "lambda", p->lambda, "L", p->L, "k", p->k, "h",
                           p->h, "baseline_n", p->baseline_n, "confidence", p->confidence, "lo", lo,
                           "hi", hi);
+    json_object_set_new(c, "cusum_restart", json_boolean(p->cusum_restart));
+    json_object_set_new(c, "close_after", json_integer(p->close_after));
     if (isfinite(p->baseline_from)) {
         json_object_set_new(c, "baseline_from", json_real(p->baseline_from));
         json_object_set_new(c, "baseline_to", json_real(p->baseline_to));
@@ -308,6 +311,7 @@ Test(drift, period_uncertainty_and_rejects_against_numpy)
     p.k = 0.25;
     p.h = 4;
     p.confidence = 0.9;
+    p.cusum_restart = 0; /* Page's CUSUM as it is, without the restart */
     p.baseline_from = 19030.0; /* points 3 .. 14 */
     p.baseline_to = 19150.0;
     compare(&e, &p, -5.0, 5.0, AN_SIGMA_UNCERTAINTY);
@@ -330,4 +334,52 @@ Test(drift, flat_noisy_against_numpy)
     an_drift_params_default(&p);
     p.baseline_n = 5;
     compare(&e, &p, 4.3, 5.7, AN_SIGMA_SD);
+}
+
+/* The restart after a signal, worked by hand: a baseline of -1, +1, ... (mean 0, SD sqrt(8/7) =
+ * 1.0690), k 0.5 (K = 0.5345), h 2 (H = 2.1381), then 1.5, 1.5, 1.5, 0:
+ * C+ at the last baseline point (+1, after a -1 that left 0) = 0.4655; then 1.4310, 2.3964 (> H:
+ * a signal, and the restart), 0.9655, 0.4310: the last two points are in control. Without the
+ * restart: 2.3964, 3.3619, 2.8274: the alarm holds to the end. */
+Test(cusum, restart_after_signal)
+{
+    double t[12], x[12], cp[12];
+    unsigned fl[12];
+    for (int i = 0; i < 8; i++)
+        t[i] = i, x[i] = i % 2 ? 1.0 : -1.0; /* baseline: mean 0, SD 1.069 */
+    double tail[] = {1.5, 1.5, 1.5, 0.0};
+    for (int i = 0; i < 4; i++)
+        t[8 + i] = 8 + i, x[8 + i] = tail[i];
+    an_drift_params p;
+    an_drift_params_default(&p);
+    p.h = 2;
+    p.L = 100; /* keep the EWMA quiet: this is about the CUSUM */
+    an_drift_input in = {.n = 12, .t = t, .x = x};
+    an_drift_track tr = {.cp = cp, .flags = fl};
+    an_drift_summary s;
+    cr_assert_eq(an_drift_evaluate(&in, &p, &tr, &s, NULL), SW_OK);
+    double sg = s.base.sd, K = 0.5 * sg;
+    cr_assert(fabs(sg - sqrt(8.0 / 7.0)) < 1e-12, "baseline SD %g", sg);
+    /* The baseline points sum to zero in C+ only when each +1 stays under K + C+: check them
+     * directly, then the tail. */
+    double c = 0;
+    for (int i = 0; i < 11; i++) {
+        c = fmax(0, x[i] - K + c);
+        cr_assert(fabs(cp[i] - c) < 1e-12, "C+ at %d: %g vs %g", i, cp[i], c);
+        if (c > 2 * sg) {
+            cr_assert(fl[i] & AN_DRIFT_F_CUSUM_HI);
+            c = 0;
+        }
+    }
+    cr_assert(fl[9] & AN_DRIFT_F_CUSUM_HI, "the signal");
+    cr_assert(fabs(cp[9] - 2.3964) < 1e-4 && fabs(cp[10] - 0.9655) < 1e-4 &&
+                  fabs(cp[11] - 0.4310) < 1e-4,
+              "C+ %g %g %g", cp[9], cp[10], cp[11]);
+    cr_assert_eq(fl[10] & AN_DRIFT_F_OUT, 0u, "after the restart the sum is small again");
+    cr_assert_eq(s.in_control_run, 2);
+    p.cusum_restart = 0;
+    cr_assert_eq(an_drift_evaluate(&in, &p, &tr, &s, NULL), SW_OK);
+    cr_assert(fl[11] & AN_DRIFT_F_CUSUM_HI && fabs(cp[11] - 2.8274) < 1e-4,
+              "without the restart the alarm holds: %x %g", fl[11], cp[11]);
+    cr_assert_eq(s.in_control_run, 0);
 }
