@@ -4,8 +4,8 @@
 #include <cerrno>
 #include <cmath>
 #include <cstdint>
-#include <cstdlib>
 #include <cstdio>
+#include <cstdlib>
 #include <cstring>
 #include <new>
 #include <sys/mman.h>
@@ -23,7 +23,8 @@
 #include <dcmtk/dcmdata/dcvrat.h>
 #include <dcmtk/dcmdata/dcxfer.h>
 
-namespace {
+namespace
+{
 
 /* Everything the reader needs while it works on one file. */
 struct Reader {
@@ -115,8 +116,7 @@ bool elem_num(DcmElement *e, unsigned long pos, double *out)
         v = x;
         break;
     }
-    default:
-        return false;
+    default: return false;
     }
     if (c.bad() || !std::isfinite(v))
         return false;
@@ -150,8 +150,8 @@ void elem_text(DcmElement *e, char *dst, size_t n)
         return;
     /* PN: trailing empty components and groups carry nothing (PS3.5 6.2.1.1). */
     if (e->ident() == EVR_PN)
-        while (!s.empty() && (s[s.size() - 1] == '^' || s[s.size() - 1] == '=' ||
-                              s[s.size() - 1] == ' '))
+        while (!s.empty() &&
+               (s[s.size() - 1] == '^' || s[s.size() - 1] == '=' || s[s.size() - 1] == ' '))
             s.erase(s.size() - 1);
     dcm_copy_text(dst, n, s.c_str());
 }
@@ -228,7 +228,8 @@ sw_status read_common(const Reader &r, DcmDataset *ds, DcmMetaInfo *meta, const 
     for (const UidTag &u : uids)
         if (!get_uid(ds, u.tag, u.dst))
             return dcm_fail(r.err, SW_EFORMAT, r.name, "%s is longer than 64 characters", u.label);
-    if (!t->sop_class_uid[0] && meta && !get_uid(meta, DCM_MediaStorageSOPClassUID, t->sop_class_uid))
+    if (!t->sop_class_uid[0] && meta &&
+        !get_uid(meta, DCM_MediaStorageSOPClassUID, t->sop_class_uid))
         return dcm_fail(r.err, SW_EFORMAT, r.name, "MediaStorageSOPClassUID is too long");
     if (!t->sop_instance_uid[0] && meta &&
         !get_uid(meta, DCM_MediaStorageSOPInstanceUID, t->sop_instance_uid))
@@ -344,7 +345,8 @@ void read_frame(const Frame &f, int echo_dim, dcm_image *im)
              &im->spacing_between_slices_mm);
 
     double slope = 1.0, icept = 0.0;
-    if (elem_num(fg_elem(f, DCM_PixelValueTransformationSequence, DCM_RescaleSlope, true), 0, &v[0]))
+    if (elem_num(fg_elem(f, DCM_PixelValueTransformationSequence, DCM_RescaleSlope, true), 0,
+                 &v[0]))
         slope = v[0];
     if (elem_num(fg_elem(f, DCM_PixelValueTransformationSequence, DCM_RescaleIntercept, true), 0,
                  &v[0]))
@@ -353,7 +355,8 @@ void read_frame(const Frame &f, int echo_dim, dcm_image *im)
     im->rescale_intercept = icept;
 
     /* Echo time: Enhanced MREchoSequence EffectiveEchoTime, else classic EchoTime. */
-    if (!elem_num(fg_elem(f, DCM_MREchoSequence, DCM_EffectiveEchoTime, true), 0, &im->echo_time_ms))
+    if (!elem_num(fg_elem(f, DCM_MREchoSequence, DCM_EffectiveEchoTime, true), 0,
+                  &im->echo_time_ms))
         elem_num(elem(f.top, DCM_EchoTime), 0, &im->echo_time_ms);
     elem_num(fg_elem(f, DCM_MRTimingAndRelatedParametersSequence, DCM_RepetitionTime, true), 0,
              &im->repetition_time_ms);
@@ -478,8 +481,7 @@ struct Raw {
             bool high = big ? !(k & 1) : (k & 1);
             return high ? (word >> 8) & 0xFFu : word & 0xFFu;
         }
-        case 2:
-            return w[k];
+        case 2: return w[k];
         default:
             return big ? (static_cast<uint32_t>(w[2 * k]) << 16) | w[2 * k + 1]
                        : w[2 * k] | (static_cast<uint32_t>(w[2 * k + 1]) << 16);
@@ -538,8 +540,8 @@ sw_status read_pixels(const Reader &r, DcmDataset *ds, E_TransferSyntax xfer, dc
         hb = bs - 1;
     get_int(ds, DCM_PixelRepresentation, &rep);
     if (rows < 1 || cols < 1 || rows > 65535 || cols > 65535)
-        return dcm_fail(r.err, SW_EFORMAT, r.name, "bad or missing image size (Columns %d, Rows %d)",
-                        cols, rows);
+        return dcm_fail(r.err, SW_EFORMAT, r.name,
+                        "bad or missing image size (Columns %d, Rows %d)", cols, rows);
     if (ba != 8 && ba != 16 && ba != 32)
         return dcm_fail(r.err, SW_EUNSUPPORTED, r.name,
                         "BitsAllocated %d is not supported (8, 16 or 32)", ba);
@@ -606,7 +608,8 @@ sw_status read_pixels(const Reader &r, DcmDataset *ds, E_TransferSyntax xfer, dc
         auto value = [shift, mask, sign, rep, bs](uint32_t word) -> double {
             uint32_t s = (word >> shift) & mask;
             if (rep == 1 && (s & sign))
-                return static_cast<double>(static_cast<int64_t>(s) - (static_cast<int64_t>(1) << bs));
+                return static_cast<double>(static_cast<int64_t>(s) -
+                                           (static_cast<int64_t>(1) << bs));
             return static_cast<double>(s);
         };
         /* The common layouts get a loop of their own, without the general accessor. */
@@ -784,8 +787,7 @@ sw_status load_failed(const Reader &r, OFCondition c, bool has_dicm)
 {
     if (!has_dicm)
         return dcm_fail(r.err, SW_EFORMAT, r.name,
-                        "not a DICOM file (no DICM prefix, and no readable dataset: %s)",
-                        c.text());
+                        "not a DICOM file (no DICM prefix, and no readable dataset: %s)", c.text());
     if (c == EC_StreamNotifyClient || c == EC_PrematureSequDelimitationItem)
         return dcm_fail(r.err, SW_EFORMAT, r.name, "truncated DICOM data (%s)", c.text());
     return dcm_fail(r.err, SW_EFORMAT, r.name, "malformed DICOM data (%s)", c.text());
@@ -835,8 +837,8 @@ sw_status load(const Reader &r, const char *path, bool has_dicm, dcm_file **out)
 {
     try {
         DcmFileFormat ff;
-        OFCondition c = ff.loadFile(path, EXS_Unknown, EGL_noChange, DCM_MaxReadLength,
-                                    ERM_autoDetect);
+        OFCondition c =
+            ff.loadFile(path, EXS_Unknown, EGL_noChange, DCM_MaxReadLength, ERM_autoDetect);
         if (c.bad())
             return load_failed(r, c, has_dicm);
         if (!looks_dicom(ff))

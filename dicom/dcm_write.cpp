@@ -11,9 +11,9 @@
 #include <cstring>
 #include <ctime>
 #include <fcntl.h>
-#include <sys/stat.h>
 #include <new>
 #include <string>
+#include <sys/stat.h>
 #include <unistd.h>
 #include <vector>
 
@@ -29,7 +29,8 @@
 #define STORED_MAX 4095 /* BitsStored 12 */
 #define DCM_DEFAULT_PIXEL_BANDWIDTH_HZ 130.0
 
-namespace {
+namespace
+{
 
 /* Maximum value length in characters, PS3.5 Table 6.2-1 (PN: per component group). 0: no
  * check here. */
@@ -76,7 +77,10 @@ struct W {
     sw_error *err;
     sw_status st;
 
-    bool ok() const { return st == SW_OK; }
+    bool ok() const
+    {
+        return st == SW_OK;
+    }
 
     sw_status fail(sw_status s, const char *fmt, ...) __attribute__((format(printf, 3, 4)))
     {
@@ -294,8 +298,7 @@ sw_status check_image(W &w, const dcm_image *im, int idx)
     double dot = r[0] * c[0] + r[1] * c[1] + r[2] * c[2];
     if (std::fabs(nr - 1) > 1e-4 || std::fabs(nc - 1) > 1e-4 || std::fabs(dot) > 1e-4)
         return w.fail(SW_EINVAL,
-                      "frame %d: ImageOrientationPatient is not two orthogonal unit vectors",
-                      idx);
+                      "frame %d: ImageOrientationPatient is not two orthogonal unit vectors", idx);
     for (int i = 0; i < 2; i++)
         if (!std::isfinite(im->pixel_spacing[i]) || im->pixel_spacing[i] <= 0)
             return w.fail(SW_EINVAL, "frame %d: PixelSpacing must be positive", idx);
@@ -303,8 +306,8 @@ sw_status check_image(W &w, const dcm_image *im, int idx)
 }
 
 /* Floats -> 12-bit stored values: round((v - intercept) / slope), clamped to 0..4095. */
-sw_status to_stored(W &w, const dcm_image *im, double slope, double icept, Uint16 *dst,
-                    size_t npix, int idx)
+sw_status to_stored(W &w, const dcm_image *im, double slope, double icept, Uint16 *dst, size_t npix,
+                    int idx)
 {
     for (size_t k = 0; k < npix; k++) {
         double v = im->pixels[k];
@@ -324,10 +327,10 @@ sw_status to_stored(W &w, const dcm_image *im, double slope, double icept, Uint1
  * the acquisition attributes both IODs share. */
 void put_common(W &w, DcmDataset *ds, const dcm_image *im, const Uids &u, const char *sop_class)
 {
-    const char *texts[] = {im->patient_name, im->patient_id, im->station_name, im->manufacturer,
-                           im->model, im->institution, im->series_description,
-                           im->protocol_name, im->device_serial, im->software_versions,
-                           im->receive_coil};
+    const char *texts[] = {im->patient_name,       im->patient_id,    im->station_name,
+                           im->manufacturer,       im->model,         im->institution,
+                           im->series_description, im->protocol_name, im->device_serial,
+                           im->software_versions,  im->receive_coil};
     bool utf8 = false;
     for (const char *t : texts)
         if (has_non_ascii(t))
@@ -550,8 +553,9 @@ sw_status write_mr(W &w, const char *path, const dcm_image *im)
     put_pixel_module(w, ds, im->rows, im->columns);
     if (w.ok() && npix > ULONG_MAX / 2)
         return w.fail(SW_EINVAL, "image too large");
-    if (w.ok() && ds->putAndInsertUint16Array(DCM_PixelData, stored.data(),
-                                              static_cast<unsigned long>(npix)).bad())
+    if (w.ok() &&
+        ds->putAndInsertUint16Array(DCM_PixelData, stored.data(), static_cast<unsigned long>(npix))
+            .bad())
         return w.fail(SW_ENOMEM, "cannot add the pixel data");
     if (!w.ok())
         return w.st;
@@ -685,7 +689,8 @@ std::vector<int> stack_positions(const dcm_image *f, int n)
         if (f[i].in_stack_position <= 0)
             given = false;
     const double *r = f[0].iop, *c = f[0].iop + 3;
-    double nrm[3] = {r[1] * c[2] - r[2] * c[1], r[2] * c[0] - r[0] * c[2], r[0] * c[1] - r[1] * c[0]};
+    double nrm[3] = {r[1] * c[2] - r[2] * c[1], r[2] * c[0] - r[0] * c[2],
+                     r[0] * c[1] - r[1] * c[0]};
     std::vector<double> d(static_cast<size_t>(n));
     for (int i = 0; i < n; i++)
         d[i] = f[i].ipp[0] * nrm[0] + f[i].ipp[1] * nrm[1] + f[i].ipp[2] * nrm[2];
@@ -719,8 +724,8 @@ sw_status write_enhanced(W &w, const char *path, const dcm_image *f, int n)
         if (check_image(w, &f[i], i + 1) != SW_OK)
             return w.st;
         if (f[i].rows != f0->rows || f[i].columns != f0->columns)
-            return w.fail(SW_EINVAL, "frame %d is %d x %d, frame 1 is %d x %d", i + 1,
-                          f[i].columns, f[i].rows, f0->columns, f0->rows);
+            return w.fail(SW_EINVAL, "frame %d is %d x %d, frame 1 is %d x %d", i + 1, f[i].columns,
+                          f[i].rows, f0->columns, f0->rows);
         if (f[i].echo_number < 1 || f[i].echo_number > 65535)
             return w.fail(SW_EINVAL, "frame %d: echo number %d out of range", i + 1,
                           f[i].echo_number);
@@ -738,15 +743,16 @@ sw_status write_enhanced(W &w, const char *path, const dcm_image *f, int n)
     for (int i = 0; i < n; i++) {
         double m, b;
         frame_rescale(&f[i], &m, &b);
-        if (to_stored(w, &f[i], m, b, stored.data() + npix * static_cast<size_t>(i), npix,
-                      i + 1) != SW_OK)
+        if (to_stored(w, &f[i], m, b, stored.data() + npix * static_cast<size_t>(i), npix, i + 1) !=
+            SW_OK)
             return w.st;
     }
     now(cdate, ctime);
     const char *content_date = f0->content_date[0] ? f0->content_date : cdate;
     const char *content_time = f0->content_time[0] ? f0->content_time : ctime;
-    std::string acq_dt = std::string(f0->acquisition_date[0] ? f0->acquisition_date : content_date) +
-                         (f0->acquisition_date[0] ? f0->acquisition_time : content_time);
+    std::string acq_dt =
+        std::string(f0->acquisition_date[0] ? f0->acquisition_date : content_date) +
+        (f0->acquisition_date[0] ? f0->acquisition_time : content_time);
     char dim_uid[DCM_UID_MAX];
     dcm_new_uid(dim_uid, nullptr);
     std::vector<int> stackpos = stack_positions(f, n);
@@ -954,8 +960,9 @@ sw_status write_enhanced(W &w, const char *path, const dcm_image *f, int n)
         if (!shared_tim)
             put_timing(w, pf, im);
     }
-    if (w.ok() && ds->putAndInsertUint16Array(DCM_PixelData, stored.data(),
-                                              static_cast<unsigned long>(total)).bad())
+    if (w.ok() &&
+        ds->putAndInsertUint16Array(DCM_PixelData, stored.data(), static_cast<unsigned long>(total))
+            .bad())
         return w.fail(SW_ENOMEM, "cannot add the pixel data");
     if (!w.ok())
         return w.st;

@@ -1,5 +1,6 @@
 /* dicom.h: the C interface over DCMTK: read MR images (classic and Enhanced) into float pixels with
- * their attributes, and write MR Image Storage files for the simulator. The only C++ is behind it. */
+ * their attributes, and write MR Image Storage files for the simulator. The only C++ is behind it.
+ */
 #ifndef DICOM_H
 #define DICOM_H
 
@@ -35,14 +36,14 @@ typedef struct dcm_image {
     char protocol_name[DCM_STR_MAX];
     char patient_name[DCM_STR_MAX];
     char patient_id[DCM_STR_MAX];
-    char mr_acquisition_type[17]; /* "2D" or "3D" */
-    char study_date[9], series_date[9], acquisition_date[9], content_date[9]; /* YYYYMMDD */
+    char mr_acquisition_type[17];                                                 /* "2D" or "3D" */
+    char study_date[9], series_date[9], acquisition_date[9], content_date[9];     /* YYYYMMDD */
     char study_time[17], series_time[17], acquisition_time[17], content_time[17]; /* HHMMSS.frac */
     /* acquisition */
     int series_number;
     int instance_number;
     int acquisition_number;
-    int echo_number;               /* 1 when absent */
+    int echo_number; /* 1 when absent */
     double echo_time_ms;
     double repetition_time_ms;
     double slice_thickness_mm;
@@ -57,15 +58,15 @@ typedef struct dcm_image {
     int has_geometry;        /* 1 when ipp, iop and pixel_spacing were all present */
     /* pixels */
     int rows, columns;
-    int frame;        /* 1-based frame number in a multi-frame file, 0 for a single-frame file */
-    int frame_count;  /* NumberOfFrames of the file (1 for single-frame) */
+    int frame;       /* 1-based frame number in a multi-frame file, 0 for a single-frame file */
+    int frame_count; /* NumberOfFrames of the file (1 for single-frame) */
     int bits_stored;
-    int pixel_representation; /* 0 unsigned, 1 signed */
+    int pixel_representation;                /* 0 unsigned, 1 signed */
     double rescale_slope, rescale_intercept; /* as applied (1 and 0 when absent) */
-    float *pixels;    /* rows x columns, row-major, stored value x slope + intercept; owned */
+    float *pixels; /* rows x columns, row-major, stored value x slope + intercept; owned */
     /* added after the first contract (additive): */
-    char photometric[17];      /* PhotometricInterpretation: MONOCHROME1 or MONOCHROME2 */
-    int bits_allocated;        /* 8, 16 or 32 */
+    char photometric[17]; /* PhotometricInterpretation: MONOCHROME1 or MONOCHROME2 */
+    int bits_allocated;   /* 8, 16 or 32 */
     int high_bit;
     char image_type[DCM_STR_MAX];        /* ImageType, values joined with '\\' */
     char scanning_sequence[17];          /* ScanningSequence (classic; writer default "SE") */
@@ -97,10 +98,10 @@ sw_status dcm_init(sw_error *err);
 /* Unregisters the decoders; dcm_init may be called again afterwards. */
 void dcm_shutdown(void);
 
-/* Reads a file (classic MR Image Storage or Enhanced MR Image Storage; other image storage classes are
- * read as far as their attributes allow). The file is read fully into memory before return, so it
- * may be moved afterwards. On success *out is a new dcm_file the caller frees with dcm_file_free;
- * on failure *out is NULL and err names the file and the reason. opts may be NULL.
+/* Reads a file (classic MR Image Storage or Enhanced MR Image Storage; other image storage classes
+ * are read as far as their attributes allow). The file is read fully into memory before return, so
+ * it may be moved afterwards. On success *out is a new dcm_file the caller frees with
+ * dcm_file_free; on failure *out is NULL and err names the file and the reason. opts may be NULL.
  *
  * Each frame's geometry, rescale, echo time, repetition time and flip angle come from its item of
  * the Per-frame Functional Groups Sequence, else the Shared Functional Groups item, else the top
@@ -116,8 +117,8 @@ void dcm_shutdown(void);
  * header_only: the attributes whatever the pixel encoding (a JPEG 2000 or RGB file reads, so that
  * the caller can sort it by modality and SOP class); fails only when the data set cannot be
  * parsed or is inconsistent in itself (UIDs, NumberOfFrames against the pixel data length and the
- * per-frame items). Strings are UTF-8 (converted from SpecificCharacterSet where DCMTK can; bytes that are
- * not UTF-8 become '?').
+ * per-frame items). Strings are UTF-8 (converted from SpecificCharacterSet where DCMTK can; bytes
+ * that are not UTF-8 become '?').
  *
  * After dcm_init, reads share no state of ours; DCMTK's registries are read-locked, but
  * concurrent reads are not tested. */

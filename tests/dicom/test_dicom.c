@@ -125,8 +125,9 @@ static void run_ok(const char *const argv[])
 {
     static char out[16384];
     int rc = run(argv, out, sizeof out);
-    cr_assert_eq(rc, 0, "%s exited %d (127: not found on PATH; the tests need Debian's dcmtk, "
-                        "dicom3tools, python3-pydicom, python3-gdcm):\n%s",
+    cr_assert_eq(rc, 0,
+                 "%s exited %d (127: not found on PATH; the tests need Debian's dcmtk, "
+                 "dicom3tools, python3-pydicom, python3-gdcm):\n%s",
                  argv[0], rc, out);
 }
 
@@ -251,8 +252,8 @@ static void assert_same_pixels(const dcm_image *a, const dcm_image *b, const cha
     if (memcmp(a->pixels, b->pixels, sizeof(float) * (size_t)a->rows * (size_t)a->columns) == 0)
         return; /* identical bits; the loop below names the first difference otherwise */
     for (int k = 0; k < a->rows * a->columns; k++)
-        cr_assert_eq(a->pixels[k], b->pixels[k], "%s: pixel %d: %g vs %g", what, k,
-                     a->pixels[k], b->pixels[k]);
+        cr_assert_eq(a->pixels[k], b->pixels[k], "%s: pixel %d: %g vs %g", what, k, a->pixels[k],
+                     b->pixels[k]);
 }
 
 /* The message contract: "dicom: <path>: <reason>", one line. */
@@ -417,7 +418,8 @@ Test(dicom, classic_roundtrip)
     dcm_image w;
     make_image(&w, 64, 48, 1);
     /* Values the 12-bit rounding must handle: fractions, halves, out of range. */
-    const float special[] = {-7.0f, -0.4f, 0.49f, 0.5f, 1.5f, 2.5f, 4094.6f, 4095.4f, 5000.0f, 1e9f};
+    const float special[] = {-7.0f, -0.4f,   0.49f,   0.5f,    1.5f,
+                             2.5f,  4094.6f, 4095.4f, 5000.0f, 1e9f};
     for (size_t i = 0; i < sizeof special / sizeof special[0]; i++)
         w.pixels[i * 11] = special[i];
     sw_error e;
@@ -500,8 +502,8 @@ Test(dicom, file_meta_header)
     cr_assert_gt(len, 144);
     cr_assert_eq(memcmp(b + 128, "DICM", 4), 0);
     cr_assert_eq(memcmp(b + 132, "\x02\x00\x00\x00UL\x04\x00", 8), 0);
-    uint32_t gl = (uint32_t)b[140] | (uint32_t)b[141] << 8 | (uint32_t)b[142] << 16 |
-                  (uint32_t)b[143] << 24;
+    uint32_t gl =
+        (uint32_t)b[140] | (uint32_t)b[141] << 8 | (uint32_t)b[142] << 16 | (uint32_t)b[143] << 24;
     size_t next = 144 + (size_t)gl;
     cr_assert_lt(next + 2, len);
     cr_assert_eq(b[next] | b[next + 1] << 8, 0x0008, "group length %u does not end group 2", gl);
@@ -833,8 +835,8 @@ static void assert_frames(const dcm_file *f, const dcm_image *fr, int with_pixel
         cr_assert_str_eq(r->receive_coil, "HEAD");
         if (with_pixels)
             for (int k = 0; k < r->rows * r->columns; k++)
-                cr_assert_eq(r->pixels[k], w->pixels[k], "frame %d pixel %d: %g vs %g", i + 1,
-                             k, r->pixels[k], w->pixels[k]);
+                cr_assert_eq(r->pixels[k], w->pixels[k], "frame %d pixel %d: %g vs %g", i + 1, k,
+                             r->pixels[k], w->pixels[k]);
         else
             cr_assert_null(r->pixels);
     }
@@ -982,9 +984,8 @@ static json_t *describe(const char *path, double pixel_tol, const char *const *t
             nums(im->ipp, 3), "iop", nums(im->iop, 6), "pixel_spacing", nums(im->pixel_spacing, 2),
             "slice_thickness_mm", num(im->slice_thickness_mm), "echo_time_ms",
             num(im->echo_time_ms), "rescale_slope", im->rescale_slope, "rescale_intercept",
-            im->rescale_intercept, "patient_name", im->patient_name, "institution",
-            im->institution, "station_name", im->station_name, "series_description",
-            im->series_description);
+            im->rescale_intercept, "patient_name", im->patient_name, "institution", im->institution,
+            "station_name", im->station_name, "series_description", im->series_description);
         cr_assert_not_null(o, "json_pack");
         /* An absent attribute is null rather than a list of NaN. */
         if (!isfinite(im->ipp[0]))
@@ -1080,8 +1081,8 @@ Test(dicom, pydicom_agrees, .timeout = 120)
     };
     static const char *const pn[] = {"patient_name", "institution", "station_name", NULL};
     for (size_t i = 0; i < sizeof ext / sizeof ext[0]; i++)
-        json_array_append_new(manifest, describe(corpus(ext[i].rel), ext[i].tol,
-                                                 ext[i].text ? pn : NULL));
+        json_array_append_new(manifest,
+                              describe(corpus(ext[i].rel), ext[i].tol, ext[i].text ? pn : NULL));
     /* 8-bit data re-encoded by dcmconv: implicit VR makes it OW (bytes packed in words), big
      * endian keeps OB. */
     const struct conv *eight[] = {&lossless[0], &lossless[1]};
@@ -1116,8 +1117,8 @@ Test(dicom, pydicom_agrees, .timeout = 120)
         cr_assert_float_eq(r->slice_thickness_mm, 3, 0);
         /* pixel k of frame i is (k (i + 3) - 40) x slope + intercept */
         for (int k = 0; k < r->rows * r->columns; k++)
-            cr_assert_eq(r->pixels[k], (float)((k * (i + 3) - 40) * r->rescale_slope +
-                                               r->rescale_intercept));
+            cr_assert_eq(r->pixels[k],
+                         (float)((k * (i + 3) - 40) * r->rescale_slope + r->rescale_intercept));
     }
     dcm_file_free(f);
 
@@ -1236,8 +1237,10 @@ Test(dicom, pydicom_corpus, .timeout = 120)
 
     /* The corpus's MR_small in every encoding is one image (pydicom's test-file notes). */
     dcm_file *ref = read_ok(corpus("test_files/MR_small.dcm"), 0);
-    const char *twins[] = {"test_files/MR_small_bigendian.dcm", "test_files/MR_small_implicit.dcm",
-                           "test_files/MR_small_expb.dcm", "test_files/MR_small_RLE.dcm",
+    const char *twins[] = {"test_files/MR_small_bigendian.dcm",
+                           "test_files/MR_small_implicit.dcm",
+                           "test_files/MR_small_expb.dcm",
+                           "test_files/MR_small_RLE.dcm",
                            "test_files/MR_small_jpeg_ls_lossless.dcm",
                            "test_files/MR_small_padded.dcm"};
     for (size_t i = 0; i < sizeof twins / sizeof twins[0]; i++) {
