@@ -42,6 +42,18 @@ int wd_iso_prefix_ok(const char *s)
         if (pattern[i] == 'd' ? (s[i] < '0' || s[i] > '9') : s[i] != pattern[i])
             return 0;
     }
+    /* Field ranges: month 01-12, day 01-31, hour 00-23, minute and second 00-59. */
+    static const struct {
+        size_t at;
+        int lo, hi;
+    } field[] = {{5, 1, 12}, {8, 1, 31}, {11, 0, 23}, {14, 0, 59}, {17, 0, 59}};
+    for (size_t i = 0; i < sizeof field / sizeof field[0]; i++) {
+        if (n < field[i].at + 2)
+            break;
+        int v = (s[field[i].at] - '0') * 10 + (s[field[i].at + 1] - '0');
+        if (v < field[i].lo || v > field[i].hi)
+            return 0;
+    }
     return 1;
 }
 
