@@ -326,6 +326,9 @@ static sw_status build_chart(db *d, pool *pl, int64_t scanner_id, const qkey *k,
     if (!isfinite(c->t_min) || !isfinite(c->t_max))
         c->t_min = c->t_max = NAN; /* an open end: the range comes from the points */
     c->n_hidden = k->n_unmeas;
+    c->series_type = pool_strdup(pl, k->series_type);
+    c->echo = k->echo;
+    c->slice = k->slice;
     c->status = pool_strdup(pl, an_drift_status_name(e.sum.status));
     const char *u = c->unit;
     if (e.sum.status == AN_DRIFT_NO_BASELINE) {
@@ -435,7 +438,7 @@ static int alert_cb(void *ctx, const db_alert_rec *r)
     rp_alarm *a = &ac->a[ac->n++];
     a->kind = db_alert_kind_name(r->info.kind);
     a->open = 0;
-    a->date = pool_strdup(ac->pl, r->created_at);
+    a->date = pool_printf(ac->pl, "raised %s", r->created_at);
     a->text = pool_strdup(ac->pl, r->info.message);
     return 0;
 }

@@ -22,10 +22,20 @@ void wd_drift_opts_default(wd_drift_opts *o)
 
 double wd_iso_days(const char *iso)
 {
-    int y, mo, d, h = 0, mi = 0, n = 0;
+    int y, mo = 1, d = 1, h = 0, mi = 0, n = 0;
     double s = 0;
-    if (!iso || sscanf(iso, "%4d-%2d-%2d%n", &y, &mo, &d, &n) != 3 || n != 10)
+    if (!iso)
         return NAN;
+    /* The prefixes the period filters take: YYYY and YYYY-MM start at the period's first day. */
+    size_t len = strlen(iso);
+    if (len == 4 && sscanf(iso, "%4d%n", &y, &n) == 1 && n == 4)
+        iso = NULL;
+    else if (len == 7 && sscanf(iso, "%4d-%2d%n", &y, &mo, &n) == 2 && n == 7)
+        iso = NULL;
+    else if (sscanf(iso, "%4d-%2d-%2d%n", &y, &mo, &d, &n) != 3 || n != 10)
+        return NAN;
+    if (!iso)
+        goto civil;
     if (iso[10] == 'T' || iso[10] == ' ') {
         int m2 = 0;
         if (sscanf(iso + 11, "%2d:%2d%n", &h, &mi, &m2) != 2)
@@ -35,6 +45,7 @@ double wd_iso_days(const char *iso)
     } else if (iso[10] != '\0') {
         return NAN;
     }
+civil:
     if (mo < 1 || mo > 12 || d < 1 || d > 31 || h < 0 || h > 23 || mi < 0 || mi > 59 || s < 0 ||
         s >= 61)
         return NAN;

@@ -22,8 +22,8 @@ void wd_drift_opts_default(wd_drift_opts *o);
 /* Checks the parameters and the period's dates; err names the bad one. */
 sw_status wd_drift_opts_check(const wd_drift_opts *o, sw_error *err);
 
-/* Days since 1970-01-01T00:00 of "YYYY-MM-DD[THH:MM[:SS[.f]]]" (read as UTC: differences are what
- * counts). NAN when malformed. */
+/* Days since 1970-01-01T00:00 of "YYYY-MM-DD[THH:MM[:SS[.f]]]", "YYYY-MM" or "YYYY" (the first day
+ * of the month or year), read as UTC: differences are what counts. NAN when malformed. */
 double wd_iso_days(const char *iso);
 /* The date "YYYY-MM-DD" of a day number (floor), into buf (>= 11 bytes); "" when not finite. */
 char *wd_days_iso(double days, char *buf, size_t n);

@@ -253,6 +253,22 @@ static void verdict_chip(rp_buf *b, const char *v)
     rp_buf_put(b, "</span>");
 }
 
+/* The drift state of a chart in words, on a chip: DRIFT, IN CONTROL or NO BASELINE. */
+static void status_chip(rp_buf *b, const char *status)
+{
+    const char *cls = "none";
+    if (status && !strcmp(status, "drift"))
+        cls = "drift";
+    else if (status && !strcmp(status, "in control"))
+        cls = "ok";
+    rp_buf_printf(b, "<span class=\"v v-%s\">", cls);
+    for (const char *p = status && *status ? status : "unknown"; *p; p++) {
+        char c = *p >= 'a' && *p <= 'z' ? (char)(*p - 32) : *p;
+        rp_buf_putn(b, &c, 1);
+    }
+    rp_buf_put(b, "</span>");
+}
+
 static void value_text(rp_buf *b, double v, double u, const char *unit)
 {
     if (!isfinite(v)) {
@@ -402,9 +418,7 @@ static sw_status section(rp_buf *b, const rp_scanner_section *s, int index, rp_h
         rp_buf_put(b, "<figure class=\"chart\"><figcaption>");
         rp_buf_esc(b, c->title);
         rp_buf_put(b, " &#8212; ");
-        verdict_chip(b, c->status && !strcmp(c->status, "drift") ? "drift" : "info");
-        rp_buf_put(b, " ");
-        rp_buf_esc(b, c->status ? c->status : "");
+        status_chip(b, c->status);
         rp_buf_put(b, "</figcaption>");
         rp_buf_put(b, svg);
         free(svg);

@@ -37,6 +37,8 @@ typedef struct rp_chart {
     const char *status;  /* "in control", "drift", "no baseline" */
     const char *summary; /* one line with the statistics (may be NULL) */
     int n_hidden;        /* unmeasurable results in the period (they have no value to plot) */
+    const char *series_type; /* the protocol the chart is of (data attributes for programs) */
+    int echo, slice;         /* 0 when not per echo / not of one slice */
 } rp_chart;
 
 typedef struct rp_result_line {

@@ -326,6 +326,9 @@ sw_status rp_svg_chart(const rp_chart *c, char **out, sw_error *err)
                   "Verdana, sans-serif\" data-chart=\"%s\" data-expected=\"%d\" data-metric=\"",
                   W, H, W, H, c->id, c->n);
     rp_buf_esc(&b, c->metric);
+    rp_buf_put(&b, "\" data-series-type=\"");
+    rp_buf_esc(&b, c->series_type ? c->series_type : "");
+    rp_buf_printf(&b, "\" data-echo=\"%d\" data-slice=\"%d", c->echo, c->slice);
     rp_buf_put(&b, "\" data-status=\"");
     rp_buf_esc(&b, c->status ? c->status : "");
     rp_buf_put(&b, "\" aria-label=\"");
