@@ -332,8 +332,34 @@ static int tol_handler(void *user, const char *section, const char *key, const c
     return set_value(f, dst, value, ctx->why, sizeof ctx->why);
 }
 
+/* inih reads at most INI_MAX_LINE - 1 bytes of a line and treats the rest as a new line: refuse
+ * longer lines here, naming them, instead of misreading them. */
+static sw_status check_line_lengths(const char *path, sw_error *err)
+{
+    FILE *f = fopen(path, "r");
+    if (!f)
+        return sw_error_set(err, SW_EIO, "%s: cannot open: %s", path, strerror(errno));
+    int line = 1, len = 0, c;
+    sw_status st = SW_OK;
+    while ((c = getc(f)) != EOF) {
+        if (c == '\n') {
+            line++;
+            len = 0;
+        } else if (++len > INI_MAX_LINE - 2) {
+            st = sw_error_set(err, SW_EINVAL, "%s:%d: line longer than %d characters", path, line,
+                              INI_MAX_LINE - 2);
+            break;
+        }
+    }
+    fclose(f);
+    return st;
+}
+
 static sw_status parse(const char *path, ini_handler h, parse_ctx *ctx, sw_error *err)
 {
+    sw_status st = check_line_lengths(path, err);
+    if (st != SW_OK)
+        return st;
     int line = ini_parse(path, h, ctx);
     if (line == -1)
         return sw_error_set(err, SW_EIO, "%s: cannot open: %s", path, strerror(errno));

@@ -14,6 +14,7 @@ typedef struct command {
 } command;
 
 static const command commands[] = {
+    {"demo", wd_cmd_demo, "build and measure an invented hospital's six months of phantom QA"},
     {"check", wd_cmd_check, "validate the configuration and print the effective settings"},
     {"analyze", wd_cmd_analyze, "measure slice thickness and position in files or folders"},
     {"simulate", wd_cmd_simulate, "write a simulated phantom series with its truth"},

@@ -8,6 +8,7 @@
 int wd_cmd_simulate(int argc, char **argv);
 int wd_cmd_analyze(int argc, char **argv);
 int wd_cmd_check(int argc, char **argv);
+int wd_cmd_demo(int argc, char **argv);
 int wd_cmd_export(int argc, char **argv);
 int wd_cmd_report(int argc, char **argv);
 int wd_cmd_watch(int argc, char **argv);

@@ -188,6 +188,11 @@ static int png_body(png_structp png, png_infop info, rp_canvas *cv, png_sink *s,
     if (setjmp(png_jmpbuf(png)))
         return -1;
     png_set_write_fn(png, s, sink_write, sink_flush);
+    /* Flat areas and straight lines dominate these images: the "up" filter and a fast zlib level
+     * give files within a few per cent of the default's size in a fraction of the time, which
+     * matters when a backlog of series is annotated. */
+    png_set_filter(png, PNG_FILTER_TYPE_BASE, PNG_FILTER_UP);
+    png_set_compression_level(png, 2);
     png_set_IHDR(png, info, (png_uint_32)cv->width, (png_uint_32)cv->height, 8, PNG_COLOR_TYPE_RGB,
                  PNG_INTERLACE_NONE, PNG_COMPRESSION_TYPE_DEFAULT, PNG_FILTER_TYPE_DEFAULT);
     png_set_sRGB_gAMA_and_cHRM(png, info, PNG_sRGB_INTENT_PERCEPTUAL);
