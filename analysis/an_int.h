@@ -60,6 +60,7 @@ typedef struct an_line {
     int n;
     int k;
     double off[AN_LINE_MAX_OFF];
+    const double *gain; /* per-sample factor applied to the profile after sampling, or NULL */
 } an_line;
 
 /* Sets k offsets spaced at most `spacing` mm apart over [-half, +half] (one offset when half is 0). */

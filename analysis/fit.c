@@ -187,8 +187,10 @@ int an_xing_find_in(const an_line *l, const double *p, int lim0, int lim1, doubl
             (c[1] > 0) != (sign > 0))
             return -1;
         t = (level - c[0]) / c[1];
-        if (!(fabs(t) <= 1.5 * hn * step) || ic + t / step < lim0 || ic + t / step > lim1)
-            return -1;
+        /* a root beyond the window (a noisy, shallow edge): keep the first guess, whose noise the
+         * line's value there carries */
+        if (!(fabs(t) <= hn * step) || ic + t / step < lim0 || ic + t / step > lim1)
+            t = 0;
     }
     int m = i1 - i0 + 1;
     double *g = malloc((size_t)m * sizeof *g);

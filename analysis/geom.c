@@ -203,7 +203,7 @@ double an_line_weight_ss(const an_line *l, int i0, int m, const double *c)
     if (!grid)
         return NAN;
     for (int i = i0; i < i0 + m; i++) {
-        double wi = c[i - i0] / l->k;
+        double wi = c[i - i0] / l->k * (l->gain ? l->gain[i] : 1.0);
         if (wi == 0)
             continue;
         double u0, v0;

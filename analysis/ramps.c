@@ -117,7 +117,7 @@ static void line_init(an_line *l, const an_image *im, const an_pose *p, double u
 }
 
 #ifndef H_RISE
-#define H_RISE 1.2
+#define H_RISE 0.8
 #endif
 #ifndef H_LEN
 #define H_LEN 0.3
@@ -357,18 +357,19 @@ out:
 
 /* The half level of a profile whose plateau is P (and whose background beside the strip is B) by
  * the chosen method, with its derivative with respect to P. frac is 0.5 for FWHM, 0.1 for FWTM. */
-static double level_for(an_half_level how, double P, double B, double sigma, double frac,
-                        double *dldp)
+static double level_for(an_half_level how, double P, double B, double sigma, double sigma_x,
+                        double frac, double *dldp)
 {
     switch (how) {
     case AN_HALF_FLOOR_MODEL:
-        if (sigma > 0) {
+        if (sigma > 0 && sigma_x > 0) {
             /* The magnitude of a signal a has mean M(a); the profile shows M(a(u)), so the crossing
-             * of a = frac A_P is where the profile equals M(frac M^-1(P)). */
-            double ap = an_rice_invert(P, sigma), l = an_rice_mean(frac * ap, sigma);
+             * of a = frac A_P is where the profile equals M(frac M^-1(P)). sigma is the noise at the
+             * plateau, sigma_x at the crossing (they differ after the shading correction). */
+            double ap = an_rice_invert(P, sigma), l = an_rice_mean(frac * ap, sigma_x);
             double e = 1e-4 * fmax(P, sigma);
             double ap2 = an_rice_invert(P + e, sigma);
-            *dldp = (an_rice_mean(frac * ap2, sigma) - l) / e;
+            *dldp = (an_rice_mean(frac * ap2, sigma_x) - l) / e;
             return l;
         }
         break;
@@ -393,11 +394,88 @@ static double sd_at(double m, double sigma)
     return an_rice_sd(an_rice_invert(m, sigma), sigma);
 }
 
+/* Gain g(u) = F(u_ref) / F(u) along the strip at v_s from the fluid bands beside the insert's long
+ * edges (2.5 to 5.5 mm outside each), each fitted by a quartic in u, interpolated linearly in v;
+ * u_ref is the insert's middle. All ones when the bands are not usable (leave the image, too dark). */
+static void shading_gain(const an_image *im, const an_pose *pose, const an_insert *ins, double vs,
+                         double step, int n, double *gain)
+{
+    for (int i = 0; i < n; i++)
+        gain[i] = 1.0;
+    double span = ins->u_hi - ins->u_lo, ustep = 1.0;
+    int nu = (int)(span / ustep) + 1;
+    if (nu < 10 || nu > 4096)
+        return;
+    double band[2][4096], c[2][5], vc[2] = {ins->v_top + 4.0, ins->v_bot - 4.0};
+    for (int b = 0; b < 2; b++) {
+        an_line l;
+        line_init(&l, im, pose, ins->u_lo, vc[b], 1, 0, ustep, nu);
+        an_line_offsets(&l, 1.5, 0.5);
+        if (an_line_sample(&l, band[b]))
+            return;
+        /* quartic least squares in s = (u - um) / half-span (normal equations, 5 x 5) */
+        double A[5][6] = {{0}};
+        for (int i = 0; i < nu; i++) {
+            double sx = 2.0 * i / (nu - 1) - 1, pw[9];
+            pw[0] = 1;
+            for (int k = 1; k < 9; k++)
+                pw[k] = pw[k - 1] * sx;
+            for (int r = 0; r < 5; r++) {
+                for (int q = 0; q < 5; q++)
+                    A[r][q] += pw[r + q];
+                A[r][5] += pw[r] * band[b][i];
+            }
+        }
+        for (int k = 0; k < 5; k++) {
+            int pv = k;
+            for (int r = k + 1; r < 5; r++)
+                if (fabs(A[r][k]) > fabs(A[pv][k]))
+                    pv = r;
+            if (!(fabs(A[pv][k]) > 1e-12))
+                return;
+            for (int q = 0; q < 6; q++) {
+                double t = A[k][q];
+                A[k][q] = A[pv][q];
+                A[pv][q] = t;
+            }
+            for (int r = 0; r < 5; r++) {
+                if (r == k)
+                    continue;
+                double f = A[r][k] / A[k][k];
+                for (int q = k; q < 6; q++)
+                    A[r][q] -= f * A[k][q];
+            }
+        }
+        for (int k = 0; k < 5; k++)
+            c[b][k] = A[k][5] / A[k][k];
+    }
+    double f = (vs - vc[1]) / (vc[0] - vc[1]);
+    double Fmid = (1 - f) * c[1][0] + f * c[0][0];
+    if (!(Fmid > 0))
+        return;
+    double tmp[AN_PROFILE_MAX];
+    for (int i = 0; i < n && i < AN_PROFILE_MAX; i++) {
+        double u = ins->u_lo + i * step, sx = 2.0 * (u - ins->u_lo) / span - 1, F[2];
+        for (int b = 0; b < 2; b++)
+            F[b] = c[b][0] + sx * (c[b][1] + sx * (c[b][2] + sx * (c[b][3] + sx * c[b][4])));
+        double Fv = (1 - f) * F[1] + f * F[0];
+        /* a band that is not plain fluid (another insert, the phantom's edge) is not a reference */
+        if (!(Fv > 0.5 * Fmid && Fv < 2 * Fmid))
+            return;
+        tmp[i] = Fmid / Fv;
+    }
+    /* the middle of the insert as reference: gain 1 there */
+    double um = 0.5 * (ins->u_lo + ins->u_hi);
+    (void)um;
+    for (int i = 0; i < n; i++)
+        gain[i] = tmp[i];
+}
+
 int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *ins, int s,
                      double sigma, const an_params *par, an_strip *out)
 {
     int rc = 0;
-    double *p = NULL, *ps = NULL, *g = NULL;
+    double *p = NULL, *ps = NULL, *g = NULL, *gain = NULL;
     memset(out, 0, sizeof *out);
     out->length_mm = out->length_unc_mm = out->fwtm_mm = out->centre_u_mm = NAN;
     out->plateau = out->plateau_sd = out->half_level = out->floor = NAN;
@@ -412,7 +490,8 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     p = malloc((size_t)n * sizeof *p);
     ps = malloc((size_t)n * sizeof *ps);
     g = malloc((size_t)n * sizeof *g);
-    if (!p || !ps || !g) {
+    gain = malloc((size_t)n * sizeof *gain);
+    if (!p || !ps || !g || !gain) {
         rc = -1;
         goto out;
     }
@@ -427,6 +506,14 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
         sw_strlcpy(out->reason, "strip not measurable: its line leaves the image", sizeof out->reason);
         goto out;
     }
+    /* Receive shading: the fluid just outside the insert's long edges shows the coil's sensitivity
+     * along u; a smooth (quartic) fit of it, interpolated to the strip's v, divides the profile, so
+     * that a sensitivity rising toward the rim does not lengthen the strip. The noise of each sample
+     * is scaled by the same gain (an_line.gain). */
+    shading_gain(im, pose, ins, ins->strip_v[s], step, n, gain);
+    for (int i = 0; i < n; i++)
+        p[i] *= gain[i];
+    l.gain = gain;
     out->profile.n = n;
     out->profile.start_mm = ins->u_lo;
     out->profile.step_mm = step;
@@ -473,7 +560,7 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     }
     out->plateau = P;
     out->plateau_sd = sqrt(sres / (a1 - a0 - 2 > 0 ? a1 - a0 - 2 : 1));
-    double sdP = sd_at(P, sigma);
+    double sdP = sd_at(P / gain[(int)lround(c0)], sigma); /* raw units; ssP carries the gain */
     out->plateau_unc = sdP * sqrt(ssP);
     if (!(P > 0)) {
         sw_strlcpy(out->reason, "profile malformed: plateau at or below zero", sizeof out->reason);
@@ -493,13 +580,18 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
             bs += p[i], bc++;
     double B = bc >= 10 ? bs / bc : NAN;
     out->floor = B;
-    double dldp;
-    double lvl = level_for(par->half_level, P, B, sigma, 0.5, &dldp);
-    if (!isfinite(lvl)) {
+    double dldp, dldp_hi;
+    /* first guesses of the crossings, for the noise there after the shading correction */
+    double g0 = an_walk_cross(ps, n, ip, -1, 0.5 * P, 1), g1 = an_walk_cross(ps, n, ip, +1, 0.5 * P, 1);
+    double gc = gain[(int)lround(c0)];
+    double glo_gain = isfinite(g0) ? gain[(int)g0] : gc, ghi_gain = isfinite(g1) ? gain[(int)g1] : gc;
+    double lvl = level_for(par->half_level, P, B, sigma * gc, sigma * glo_gain, 0.5, &dldp);
+    double lvl_hi = level_for(par->half_level, P, B, sigma * gc, sigma * ghi_gain, 0.5, &dldp_hi);
+    if (!isfinite(lvl) || !isfinite(lvl_hi)) {
         sw_strlcpy(out->reason, "profile malformed: no background beside the strip", sizeof out->reason);
         goto out;
     }
-    out->half_level = lvl;
+    out->half_level = 0.5 * (lvl + lvl_hi);
     /* Edge windows: the 25-75 % rise on each side sets the fit's half width. */
     double r25 = an_walk_cross(ps, n, ip, -1, 0.25 * pmax, 1), r75 = an_walk_cross(ps, n, ip, -1, 0.75 * pmax, 1);
     double s25 = an_walk_cross(ps, n, ip, +1, 0.25 * pmax, 1), s75 = an_walk_cross(ps, n, ip, +1, 0.75 * pmax, 1);
@@ -507,19 +599,19 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
                          (isfinite(s25) && isfinite(s75) ? s25 - s75 : 4 / step)) * step;
     double h = fmin(fmax(H_RISE * rise, 1.0), H_LEN * L0);
     an_xing xl, xh;
-    double glo = an_walk_cross(ps, n, ip, -1, lvl, 1), ghi = an_walk_cross(ps, n, ip, +1, lvl, 1);
+    double glo = an_walk_cross(ps, n, ip, -1, lvl, 1), ghi = an_walk_cross(ps, n, ip, +1, lvl_hi, 1);
     if (!isfinite(glo) || !isfinite(ghi)) {
         sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
         goto out;
     }
-    /* Near an end of the insert the fit window shrinks (to 1 mm) rather than reach into it. */
+    /* Near an end of the insert the fit window shrinks (to 0.3 mm) rather than reach into it. */
     double hlo = fmin(h, (glo - edge) * step), hhi = fmin(h, (n - 1 - edge - ghi) * step);
-    if (hlo < 1.0 || hhi < 1.0) {
+    if (hlo < 0.3 || hhi < 0.3) {
         sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
         goto out;
     }
     if (an_xing_find_in(&l, p, edge, n - 1 - edge, glo, lvl, hlo, +1, &xl) ||
-        an_xing_find_in(&l, p, edge, n - 1 - edge, ghi, lvl, hhi, -1, &xh)) {
+        an_xing_find_in(&l, p, edge, n - 1 - edge, ghi, lvl_hi, hhi, -1, &xh)) {
         sw_strlcpy(out->reason, "profile malformed: no clean half-level crossing", sizeof out->reason);
         goto out;
     }
@@ -538,20 +630,21 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     an_pose_to_px(pose, out->cross_lo_mm, ins->strip_v[s], &out->cross_lo.x, &out->cross_lo.y);
     an_pose_to_px(pose, out->cross_hi_mm, ins->strip_v[s], &out->cross_hi.x, &out->cross_hi.y);
     /* Uncertainty: each crossing's own noise over its slope, plus the level's (shared) noise. */
-    double sdl = sd_at(lvl, sigma);
-    double vlo = sdl * sdl * xl.ss / (xl.slope * xl.slope), vhi = sdl * sdl * xh.ss / (xh.slope * xh.slope);
+    /* ss already carries the gain; the Rician SD is that of the uncorrected sample */
+    double sdl = sd_at(lvl / glo_gain, sigma), sdh = sd_at(lvl_hi / ghi_gain, sigma);
+    double vlo = sdl * sdl * xl.ss / (xl.slope * xl.slope), vhi = sdh * sdh * xh.ss / (xh.slope * xh.slope);
     double vlev = dldp * dldp * sdP * sdP * ssP;
     if (par->half_level == AN_HALF_BACKGROUND)
         vlev += 0.25 * sdl * sdl / (bc > 0 ? bc * step : 1); /* about one independent sample per mm */
-    double k = 1 / fabs(xl.slope) + 1 / fabs(xh.slope);
+    double k = 1 / fabs(xl.slope) + dldp_hi / dldp / fabs(xh.slope);
     out->length_unc_mm = sqrt(vlo + vhi + vlev * k * k);
-    out->centre_unc_mm = 0.5 * sqrt(vlo + vhi + vlev * pow(1 / xl.slope + 1 / xh.slope, 2));
+    out->centre_unc_mm = 0.5 * sqrt(vlo + vhi + vlev * pow(1 / xl.slope + dldp_hi / dldp / xh.slope, 2));
     /* FWTM on the same profile (NAN when the tenth-level points are not both inside). The tenth
      * level lies near the noise floor, so it is always taken through the Rician model when the noise
      * is known (a true-zero tenth level may sit below the floor and never be crossed). */
     double dl10;
     double l10 = level_for(par->half_level == AN_HALF_BACKGROUND ? AN_HALF_BACKGROUND : AN_HALF_FLOOR_MODEL,
-                           P, B, sigma, 0.1, &dl10);
+                           P, B, sigma * gc, sigma * gc, 0.1, &dl10);
     double t0 = an_walk_cross(ps, n, ip, -1, l10, 1), t1 = an_walk_cross(ps, n, ip, +1, l10, 1);
     an_xing tl, th;
     double h0 = isfinite(t0) ? fmin(h, (t0 - edge) * step) : 0, h1 = isfinite(t1) ? fmin(h, (n - 1 - edge - t1) * step) : 0;
@@ -563,6 +656,7 @@ out:
     free(p);
     free(ps);
     free(g);
+    free(gain);
     return rc;
 }
 
