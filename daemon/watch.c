@@ -350,7 +350,7 @@ typedef struct wmap {
 } wmap;
 
 typedef struct stats {
-    long files_done, archived, quarantined, ignored, removed_copies, move_failures;
+    long files_done, stored, quarantined, ignored, moved, removed_copies, move_failures;
     long series_measured, series_failed, verdict[DB_NVERDICTS];
     long alerts_recorded;
 } stats;
@@ -761,7 +761,7 @@ static const char *base_name(const char *path)
 static void count_final(watcher *w, db_file_state st)
 {
     if (st == DB_FILE_STORED)
-        w->st.archived++;
+        w->st.stored++;
     else if (st == DB_FILE_QUARANTINED)
         w->st.quarantined++;
     else if (st == DB_FILE_IGNORED)
@@ -850,6 +850,7 @@ static sw_status finish_move(watcher *w, const fmove *m, sw_error *err)
             return sw_error_set(err, rc, "%s", e3.msg);
         }
         wd_debug("%s -> %s", m->path, target);
+        w->st.moved++;
         return SW_OK;
     }
     return sw_error_set(err, SW_EIO, "%s: no free name in the target folder", m->path);
@@ -863,11 +864,18 @@ static int move_or_report(watcher *w, const fmove *m)
     sw_status rc = finish_move(w, m, &err);
     if (rc == SW_OK)
         return 0;
-    if (rc != SW_EBUSY) {
-        wd_error("%s: %s; left in place, tried again later", m->path, err.msg);
-        w->st.move_failures++;
+    if (rc == SW_EBUSY) {
+        (void)enqueue(&w->q, m->path, 1.0, 1);
+        return -1;
     }
-    (void)enqueue(&w->q, m->path, rc == SW_EBUSY ? 1.0 : 30.0, 1);
+    w->st.move_failures++;
+    if (w->once) {
+        /* --once does not wait for a folder to be fixed: the next run moves it. */
+        wd_error("%s: %s; left in place for the next run", m->path, err.msg);
+        return -1;
+    }
+    wd_error("%s: %s; left in place, tried again in 30 s", m->path, err.msg);
+    (void)enqueue(&w->q, m->path, 30.0, 1);
     return -1;
 }
 
@@ -1914,7 +1922,7 @@ static int loop(watcher *w)
             progress_clear(w);
             int r = take_file(w, it.path);
             after_take(w, &it, r);
-            if (r != RETRY)
+            if (r == TAKEN)
                 last_progress = wd_now_mono();
             free(it.path);
             int quiet = 0;
@@ -2010,10 +2018,12 @@ static void summary(watcher *w, FILE *f)
     wd_alerts_counts(w->alerts, &started, &ok, &failed);
     const stats *s = &w->st;
     fprintf(f,
-            "slicewarden watch: %ld files (%ld archived, %ld quarantined, %ld ignored), %ld series "
-            "measured (%ld pass, %ld warn, %ld fail, %ld unmeasurable), %ld not measured, %d still "
-            "collecting, %ld alerts (%d sent, %d failed), %zu files left; %.1f s\n",
-            s->files_done, s->archived, s->quarantined, s->ignored, s->series_measured,
+            "slicewarden watch: %ld files (%ld stored, %ld quarantined, %ld ignored; %ld moved, "
+            "%ld not moved), %ld series measured (%ld pass, %ld warn, %ld fail, %ld "
+            "unmeasurable), %ld not measured, %d still collecting, %ld alerts (%d sent, %d "
+            "failed), %zu files left; %.1f s\n",
+            s->files_done, s->stored, s->quarantined, s->ignored, s->moved, s->move_failures,
+            s->series_measured,
             s->verdict[DB_PASS], s->verdict[DB_WARN], s->verdict[DB_FAIL],
             s->verdict[DB_UNMEASURABLE], s->series_failed, w->nseries, s->alerts_recorded, ok,
             failed, queue_len(&w->q), wd_now_mono() - w->started);
