@@ -33,24 +33,28 @@ enum { PK_SINC2, PK_SINC4, PK_SINC8, PK_RECT, PK_GAUSS, PK_RECTGAUSS, PK_N };
 static const char *const PK_NAME[PK_N] = {"sinc TBW 2", "sinc TBW 4", "sinc TBW 8",
                                           "rect",       "Gaussian",   "rect*Gauss"};
 
-/* Half-level methods compared (the last one is the default with the analysis's slot correction). */
-enum { HM_ZERO, HM_FLOOR, HM_BACKGROUND, HM_ZERO_SLOT, HM_N };
-static const char *const HM_NAME[HM_N] = {"true zero (default)", "Rician floor model",
-                                          "background mean", "true zero + slot corr."};
+/* Half-level methods compared (the first three in an_half_level's order; the last one is the
+ * default method with the analysis's slot correction). */
+enum { HM_ZERO, HM_FLOOR, HM_BACKGROUND, HM_SLOT, HM_N };
+static const char *const HM_NAME[HM_N] = {"true zero", "Rician floor model", "background mean",
+                                          "default + slot corr."};
+static const an_half_level HM_LEVEL[HM_SLOT] = {AN_HALF_TRUE_ZERO, AN_HALF_FLOOR_MODEL,
+                                                AN_HALF_BACKGROUND};
 
 /* SNR bands (per echo: the second echo of a T2 series has less than the requested SNR). */
 enum { SB_LOW, SB_15, SB_30, SB_50, SB_N };
 static const char *const SB_NAME[SB_N] = {"<15", "15-30", "30-50", ">=50"};
 
-/* Where the strips lie, from the truth. A strip is inside the insert when its tenth-level points
- * (the profile's FWTM mapped along the strip) stay clear of the 2.5 mm at each end of the insert that
- * the analysis leaves out for the end's edge blur; it leaves the insert when a half-level crossing is
- * nearer than 3.5 mm to an end (2.5 mm and the 1 mm least fit window beyond the crossing, so it cannot
- * be measured by construction). Between the two (the tail runs into the end, the crossing is clear)
- * is a grey zone, reported apart. */
+/* Where the strips lie, from the truth: the distance of each strip's half-level crossings (and of its
+ * tenth-level points, the profile's FWTM mapped along the strip) to the nearer end of the insert. The
+ * analysis leaves out 2.5 mm at each end (the end's edge blur) and needs at least 1 mm of fit window
+ * beyond a crossing, so a crossing 3.5 mm from an end is the least it can measure. A strip leaves the
+ * insert when a crossing is nearer than 3 mm; it is inside when its crossings are at least 5 mm and
+ * its tenth-level points at least 2.5 mm from the ends; the grey zone between is reported apart. */
 enum { IN_OUTSIDE, IN_EDGE, IN_INSIDE };
 #define EDGE_ZONE_MM 2.5
-#define MARGIN_OUTSIDE_MM 3.5
+#define MARGIN_OUTSIDE_MM 3.0
+#define MARGIN_INSIDE_MM 5.0
 
 typedef struct bcase {
     int index;
@@ -76,8 +80,8 @@ typedef struct brow {
     double margin10_mm; /* the same for the tenth-level points */
     /* truth */
     double t_fwhm, t_fwtm, t_len[2], t_centre[2], t_disp1, t_diff[2], t_off, t_scale;
-    double t_acr_true_len, slot_widening;
-    /* measured, default method */
+    double t_acr_true_len, slot_widening, t_fwtm_slot;
+    /* measured with an_params_default() */
     int th_ok;
     char th_reason[AN_REASON_MAX];
     double corr, unc, acr, top_th, bot_th, tilt, tilt_unc, fwtm;
@@ -181,9 +185,10 @@ static void view_of(const dcm_image *d, an_image *v)
     v->nominal_thickness_mm = d->slice_thickness_mm;
 }
 
-/* FWHM of the strip a slot of thickness slot_mm shows: the magnitude of the complex profile
- * integrated over the slot, |cum(z + s/2) - cum(z - s/2)|, against z. NAN on failure. */
-static double slot_fwhm(const sim_profile *pr, double slot_mm)
+/* Full width at `frac` of the maximum of the strip a slot of thickness slot_mm shows: the magnitude
+ * of the complex profile integrated over the slot, |cum(z + s/2) - cum(z - s/2)|, against z. NAN on
+ * failure. */
+static double slot_width(const sim_profile *pr, double slot_mm, double frac)
 {
     double dz = pr->dz_mm, z0 = pr->z0_mm - slot_mm, width = NAN;
     int n = pr->n + (int)ceil(2 * slot_mm / dz) + 2;
@@ -198,7 +203,7 @@ static double slot_fwhm(const sim_profile *pr, double slot_mm)
             gmax = g[i];
     }
     double w;
-    if (gmax > 0 && sim_width_at_level(g, n, 0.5 * gmax, &w, NULL) == 0)
+    if (gmax > 0 && sim_width_at_level(g, n, frac * gmax, &w, NULL) == 0)
         width = w * dz;
 out:
     free(g);
@@ -227,9 +232,9 @@ static void fill_truth(const sim_series *s, int e, const an_model *m, brow *r)
     }
     r->margin_mm = margin;
     r->margin10_mm = margin10;
-    r->inside = margin10 >= EDGE_ZONE_MM        ? IN_INSIDE
-                : margin >= MARGIN_OUTSIDE_MM ? IN_EDGE
-                                              : IN_OUTSIDE;
+    r->inside = margin < MARGIN_OUTSIDE_MM                                   ? IN_OUTSIDE
+                : margin >= MARGIN_INSIDE_MM && margin10 >= EDGE_ZONE_MM ? IN_INSIDE
+                                                                         : IN_EDGE;
     double tt = fabs(m->ramp[0].slope);
     r->t_acr_true_len = an_acr_thickness(r->t_len[0], r->t_len[1], tt);
     r->t_disp1 = t->displacement_mm[m->ramp_slice - 1];
@@ -246,7 +251,8 @@ static void fill_truth(const sim_series *s, int e, const an_model *m, brow *r)
     r->t_scale *= 100.0;
     r->snr_echo = t->noise_sigma > 0 ? t->fluid_signal[e] / t->noise_sigma : INFINITY;
     r->band = band_of(r->snr_echo);
-    r->slot_widening = slot_fwhm(s->profile[e], m->slot_mm) - s->profile[e]->fwhm_mm;
+    r->slot_widening = slot_width(s->profile[e], m->slot_mm, 0.5) - s->profile[e]->fwhm_mm;
+    r->t_fwtm_slot = slot_width(s->profile[e], m->slot_mm, 0.1);
 }
 
 static void fill_measured(const an_series_result *res, brow *r)
@@ -325,19 +331,22 @@ static void run_case(const bcase *c, uint64_t seed, brow rows[2])
         for (int i = 0; i < s->n_images; i++)
             if (s->echo[i] == e + 1)
                 view_of(&s->images[i], &views[n++]);
+        /* The default parameters give the main results; each half level and the default with the
+         * slot correction give a thickness for table 4. */
+        an_params def;
+        an_params_default(&def);
         for (int h = 0; h < HM_N; h++) {
-            an_params par;
-            an_params_default(&par);
-            par.half_level = h == HM_FLOOR        ? AN_HALF_FLOOR_MODEL
-                             : h == HM_BACKGROUND ? AN_HALF_BACKGROUND
-                                                  : AN_HALF_TRUE_ZERO;
-            par.slot_correction = h == HM_ZERO_SLOT;
+            an_params par = def;
+            if (h < HM_SLOT)
+                par.half_level = HM_LEVEL[h];
+            else
+                par.slot_correction = 1;
             sw_error_clear(&err);
             if (an_analyze_series(views, n, &model, &tol, &par, res, &err) != SW_OK) {
                 sw_strlcpy(r->error, err.msg, sizeof r->error);
                 goto out;
             }
-            if (h == HM_ZERO)
+            if (h < HM_SLOT && par.half_level == def.half_level && !def.slot_correction)
                 fill_measured(res, r);
             r->m_ok[h] = res->thickness.measured;
             r->m_corr[h] = res->thickness.corrected_mm;
@@ -486,6 +495,14 @@ static int q_fwtm(const brow *r, int k, double *e, double *u)
     return r->th_ok && isfinite(*e);
 }
 
+static int q_fwtm_slot(const brow *r, int k, double *e, double *u)
+{
+    (void)k;
+    *e = r->fwtm - r->t_fwtm_slot;
+    *u = NAN;
+    return r->th_ok && isfinite(*e);
+}
+
 static int q_diff(const brow *r, int k, double *e, double *u)
 {
     *e = r->diff[k] - r->t_diff[k];
@@ -545,7 +562,7 @@ static int q_pitch(const brow *r, int k, double *e, double *u)
     return r->pitch_ok && isfinite(*e);
 }
 
-enum { Q_CORR, Q_ACR, Q_ACR_LEN, Q_TOP, Q_BOTTOM, Q_FWTM, Q_DIFF, Q_DIFF1, Q_DIFF11, Q_RDISP,
+enum { Q_CORR, Q_ACR, Q_ACR_LEN, Q_TOP, Q_BOTTOM, Q_FWTM, Q_FWTM_SLOT, Q_DIFF, Q_DIFF1, Q_DIFF11, Q_RDISP,
        Q_OFF, Q_SCALE, Q_TILT, Q_PITCH, Q_N };
 
 static const quantity QUANT[Q_N] = {
@@ -555,6 +572,7 @@ static const quantity QUANT[Q_N] = {
     [Q_TOP] = {"thickness, top ramp (mm)", "0.1 x true length", 1, 1, q_top},
     [Q_BOTTOM] = {"thickness, bottom ramp (mm)", "0.1 x true length", 1, 1, q_bottom},
     [Q_FWTM] = {"FWTM along the normal (mm)", "profile FWTM", 1, 1, q_fwtm},
+    [Q_FWTM_SLOT] = {"  FWTM", "FWTM through the slot", 1, 1, q_fwtm_slot},
     [Q_DIFF] = {"bar length difference (mm)", "geometry, both", 2, 0, q_diff},
     [Q_DIFF1] = {"  bar difference, slice 1", "geometry", 1, 0, q_diff1},
     [Q_DIFF11] = {"  bar difference, slice 11", "geometry", 1, 0, q_diff11},
@@ -663,13 +681,14 @@ static int write_csv(const char *path, const brow *rows, int n)
                "strip_margin_mm,strip_margin_tenth_mm,strips,truth_fwhm_mm,truth_fwtm_mm,truth_top_length_mm,"
                "truth_bottom_length_mm,truth_top_centre_mm,truth_bottom_centre_mm,"
                "truth_displacement_1_mm,truth_bar_difference_1_mm,truth_bar_difference_11_mm,"
-               "truth_offset_mm,truth_scale_percent,slot_widening_mm,thickness_measured,"
+               "truth_offset_mm,truth_scale_percent,slot_widening_mm,truth_fwtm_slot_mm,"
+               "thickness_measured,"
                "corrected_mm,uncertainty_mm,acr_mm,top_thickness_mm,bottom_thickness_mm,tilt_deg,"
                "tilt_uncertainty_deg,fwtm_mm,ramp_displacement_mm,ramp_displacement_uncertainty_mm,"
                "bar_difference_1_mm,bar_difference_1_uncertainty_mm,bar_difference_11_mm,"
                "bar_difference_11_uncertainty_mm,offset_mm,offset_uncertainty_mm,scale_percent,"
-               "scale_uncertainty_percent,pitch_deg,pitch_uncertainty_deg,corrected_floor_mm,"
-               "corrected_background_mm,corrected_slot_corrected_mm,verdict,reason,"
+               "scale_uncertainty_percent,pitch_deg,pitch_uncertainty_deg,corrected_true_zero_mm,"
+               "corrected_floor_mm,corrected_background_mm,corrected_default_slot_mm,verdict,reason,"
                "thickness_reason,position_1_reason,position_11_reason,error\n");
     static const char *const inside[] = {"outside", "edge", "inside"};
     for (int i = 0; i < n; i++) {
@@ -682,18 +701,19 @@ static int write_csv(const char *path, const brow *rows, int n)
         csv_str(f, PK_NAME[c->prof]);
         fprintf(f,
                 ",%.4f,%.4f,%.4f,%.6f,%.4f,%.4f,%.4f,%.4f,%.4f,%.3f,%.3f,%.2f,%d,%.3f,%.3f,%s,"
-                "%.5f,%.5f,%.4f,%.4f,%.4f,%.4f,%.5f,%.5f,%.5f,%.5f,%.5f,%.5f,%d,",
+                "%.5f,%.5f,%.4f,%.4f,%.4f,%.4f,%.5f,%.5f,%.5f,%.5f,%.5f,%.5f,%.5f,%d,",
                 c->thickness_mm, c->blur_mm, c->offset_mm, c->scale, c->tilt_v_deg,
                 c->tilt_u_deg, c->rot_deg, c->du_mm, c->dv_mm, c->snr, r->snr_echo, c->shading,
                 c->shuffle, r->margin_mm, r->margin10_mm, inside[r->inside], r->t_fwhm, r->t_fwtm, r->t_len[0],
                 r->t_len[1], r->t_centre[0], r->t_centre[1], r->t_disp1, r->t_diff[0],
-                r->t_diff[1], r->t_off, r->t_scale, r->slot_widening, r->th_ok);
+                r->t_diff[1], r->t_off, r->t_scale, r->slot_widening, r->t_fwtm_slot, r->th_ok);
         const double v[] = {r->corr,       r->unc,      r->acr,         r->top_th,
                             r->bot_th,     r->tilt,     r->tilt_unc,    r->fwtm,
                             r->rdisp,      r->rdisp_unc, r->diff[0],    r->diff_unc[0],
                             r->diff[1],    r->diff_unc[1], r->off,      r->off_unc,
                             r->scl,        r->scl_unc,  r->pitch,       r->pitch_unc,
-                            r->m_corr[HM_FLOOR], r->m_corr[HM_BACKGROUND], r->m_corr[HM_ZERO_SLOT]};
+                            r->m_corr[HM_ZERO], r->m_corr[HM_FLOOR], r->m_corr[HM_BACKGROUND],
+                            r->m_corr[HM_SLOT]};
         for (size_t k = 0; k < sizeof v / sizeof v[0]; k++) {
             if (isfinite(v[k]))
                 fprintf(f, "%.5f", v[k]);
@@ -851,10 +871,11 @@ int main(int argc, char **argv)
                "       coil shading 0 or 0.3; T1 (2/3) and T2 double echo (1/3), every echo "
                "analysed; half the series shuffled\n",
             PK_NAME[0], PK_NAME[1], PK_NAME[2], PK_NAME[3], PK_NAME[4], PK_NAME[5]);
-    fprintf(o, "strips (from the truth): %d inside the insert (tenth-level points >= %.1f mm from its "
-               "ends), %d leaving it (a half-level crossing < %.1f mm from an end), %d between\n",
-            n_class[IN_INSIDE], EDGE_ZONE_MM, n_class[IN_OUTSIDE], MARGIN_OUTSIDE_MM,
-            n_class[IN_EDGE]);
+    fprintf(o, "strips (from the truth): %d inside the insert (half-level crossings >= %.1f mm and "
+               "tenth-level points >= %.1f mm from its ends), %d leaving it (a crossing < %.1f mm "
+               "from an end), %d between\n",
+            n_class[IN_INSIDE], MARGIN_INSIDE_MM, EDGE_ZONE_MM, n_class[IN_OUTSIDE],
+            MARGIN_OUTSIDE_MM, n_class[IN_EDGE]);
     if (n_fail) {
         fprintf(o, "render or analysis errors: %d\n", n_fail);
         for (int i = 0, shown = 0; i < nr && shown < 10; i++)
@@ -871,9 +892,17 @@ int main(int argc, char **argv)
                "       reported uncertainty within 30 %% of the observed scatter (SD of the z-score "
                "(measured - truth) / uncertainty in 0.7..1.3).\n");
 
+    an_params def;
+    an_params_default(&def);
+    int hm_def = HM_ZERO;
+    for (int h = 0; h < HM_SLOT; h++)
+        if (HM_LEVEL[h] == def.half_level)
+            hm_def = h;
+
     /* ---- table 1: bias and SD by SNR band ---- */
     fprintf(o, "\n1. Error (measured - truth) by SNR band: n, bias, SD. Strip-based rows: strips "
-               "inside the insert only. Default method (half level from the true zero).\n");
+               "inside the insert only. Default parameters (half level: %s%s).\n",
+            HM_NAME[hm_def], def.slot_correction ? ", slot correction on" : "");
     fprintf(o, "%-34s %-21s", "quantity", "truth");
     for (int b = 0; b < SB_N; b++)
         fprintf(o, " | %-19s", b == SB_LOW ? "SNR <15 (echo 2)" : SB_NAME[b]);
@@ -971,13 +1000,15 @@ int main(int argc, char **argv)
     /* ---- table 4: half-level methods ---- */
     fprintf(o, "\n4. Thickness (tilt-corrected) bias by half-level method and SNR band (n, bias, "
                "SD), strips inside the insert.\n");
-    fprintf(o, "%-24s", "method");
+    fprintf(o, "%-30s", "method");
     for (int b = 0; b < SB_N; b++)
         fprintf(o, " | %-19s", SB_NAME[b]);
     fprintf(o, " | %-19s\n", "all");
     stat ms[HM_N][SB_N];
     for (int h = 0; h < HM_N; h++) {
-        fprintf(o, "%-24s", HM_NAME[h]);
+        char name[64];
+        snprintf(name, sizeof name, "%s%s", HM_NAME[h], h == hm_def ? " (default)" : "");
+        fprintf(o, "%-30s", name);
         for (int b = 0; b < SB_N; b++) {
             filter f = ANY;
             f.band = b;
@@ -987,10 +1018,10 @@ int main(int argc, char **argv)
         cell(o, m_stat(rows, nr, h, &ANY, 0));
         fputc('\n', o);
     }
-    fprintf(o, "%-24s", "least |bias| (of 3)");
+    fprintf(o, "%-30s", "least |bias| (of the 3 levels)");
     for (int b = 0; b < SB_N; b++) {
         int best = -1;
-        for (int h = 0; h < HM_ZERO_SLOT; h++)
+        for (int h = 0; h < HM_SLOT; h++)
             if (ms[h][b].n > 0 && (best < 0 || fabs(ms[h][b].mean) < fabs(ms[best][b].mean)))
                 best = h;
         fprintf(o, " | %-19s", best < 0 ? "-" : HM_NAME[best]);
@@ -999,9 +1030,10 @@ int main(int argc, char **argv)
 
     /* ---- table 5: the slot's share ---- */
     fprintf(o, "\n5. The slot's own widening (truth stays the profile FWHM): expected widening vs the "
-               "measured bias at SNR >= 50, per profile kind.\n");
+               "measured bias at SNR >= 50, per profile kind (default method; with the analysis's slot "
+               "correction).\n");
     fprintf(o, "%-12s | %4s | %9s | %9s | %10s | %10s | %14s\n", "profile", "n", "expected",
-            "bias zero", "bias-exp.", "slot corr.", "slot corr.-exp");
+            "bias", "bias-exp.", "slot corr.", "slot corr.-exp");
     for (int k = 0; k < PK_N; k++) {
         filter f = ANY;
         f.prof = k;
@@ -1012,8 +1044,8 @@ int main(int argc, char **argv)
                 isfinite(rows[i].slot_widening))
                 acc_add(&a, rows[i].slot_widening);
         stat ex = acc_stat(&a);
-        stat bz = m_stat(rows, nr, HM_ZERO, &f, 0), bzm = m_stat(rows, nr, HM_ZERO, &f, 1);
-        stat bs = m_stat(rows, nr, HM_ZERO_SLOT, &f, 0), bsm = m_stat(rows, nr, HM_ZERO_SLOT, &f, 1);
+        stat bz = m_stat(rows, nr, hm_def, &f, 0), bzm = m_stat(rows, nr, hm_def, &f, 1);
+        stat bs = m_stat(rows, nr, HM_SLOT, &f, 0), bsm = m_stat(rows, nr, HM_SLOT, &f, 1);
         fprintf(o, "%-12s | %4d", PK_NAME[k], bz.n);
         const double v[] = {ex.mean, bz.mean, bzm.mean, bs.mean, bsm.mean};
         const int w[] = {9, 9, 10, 10, 14};
@@ -1127,6 +1159,22 @@ int main(int argc, char **argv)
     for (int i = 0; i < nr; i++) {
         const brow *r = &rows[i];
         double e, u;
+        if (!OK_ALL(r) || r->snr_echo < 15 || r->inside != IN_OUTSIDE || !q_corr(r, 0, &e, &u))
+            continue;
+        if (!shown++)
+            fprintf(o, "\nStrips leaving the insert, measured all the same:\n");
+        if (shown > 10)
+            continue;
+        case_line(o, r);
+        fprintf(o, "      corrected %.3f +- %.3f mm vs FWHM %.3f (error %+.3f); strips %.2f, %.2f mm "
+                   "vs %.2f, %.2f\n",
+                r->corr, r->unc, r->t_fwhm, e, r->top_th / 0.1, r->bot_th / 0.1, r->t_len[0],
+                r->t_len[1]);
+    }
+    shown = 0;
+    for (int i = 0; i < nr; i++) {
+        const brow *r = &rows[i];
+        double e, u;
         if (!OK_ALL(r) || r->inside != IN_INSIDE || !q_corr(r, 0, &e, &u))
             continue;
         if (!(fabs(e) > 4 * u && fabs(e) > 0.1))
@@ -1138,8 +1186,8 @@ int main(int argc, char **argv)
         case_line(o, r);
         fprintf(o, "      corrected %.3f +- %.3f mm vs FWHM %.3f (error %+.3f); strips %.2f, %.2f mm "
                    "vs %.2f, %.2f\n",
-                r->corr, r->unc, r->t_fwhm, e, r->corr > 0 ? r->top_th / 0.1 : NAN,
-                r->bot_th / 0.1, r->t_len[0], r->t_len[1]);
+                r->corr, r->unc, r->t_fwhm, e, r->top_th / 0.1, r->bot_th / 0.1, r->t_len[0],
+                r->t_len[1]);
     }
     if (shown > 15)
         fprintf(o, "    ... %d more\n", shown - 15);
