@@ -1,5 +1,5 @@
-/* drift.c: baseline, EWMA and CUSUM control charts, least-squares trend with Student-t intervals and
- * the projected tolerance crossing (formulas and sources in drift.h and docs/trends.md). */
+/* drift.c: baseline, EWMA and CUSUM control charts, least-squares trend with Student-t intervals
+ * and the projected tolerance crossing (formulas and sources in drift.h and docs/trends.md). */
 #include "drift.h"
 
 #include <math.h>
@@ -43,8 +43,7 @@ sw_status an_drift_params_check(const an_drift_params *p, sw_error *err)
     if (isfinite(p->baseline_from) && !(p->baseline_to > p->baseline_from))
         return sw_error_set(err, SW_EINVAL, "drift: the baseline period ends before it starts");
     if (!(p->confidence > 0 && p->confidence < 1))
-        return sw_error_set(err, SW_EINVAL, "drift: confidence %g is not in (0, 1)",
-                            p->confidence);
+        return sw_error_set(err, SW_EINVAL, "drift: confidence %g is not in (0, 1)", p->confidence);
     if (p->close_after < 1 || p->close_after > 1000)
         return sw_error_set(err, SW_EINVAL, "drift: close_after %d is not in 1 to 1000",
                             p->close_after);
@@ -237,8 +236,7 @@ sw_status an_trend_fit(const double *t, const double *y, int n, double confidenc
         return sw_error_set(err, SW_EINVAL, "drift: bad trend arguments");
     memset(out, 0, sizeof *out);
     if (n < 3)
-        return sw_error_set(err, SW_EMEASURE, "drift: a trend needs at least 3 results, not %d",
-                            n);
+        return sw_error_set(err, SW_EMEASURE, "drift: a trend needs at least 3 results, not %d", n);
     double st = 0, sy = 0;
     for (int i = 0; i < n; i++) {
         if (!isfinite(t[i]) || !isfinite(y[i]))
@@ -438,8 +436,8 @@ sw_status an_drift_evaluate(const an_drift_input *in, const an_drift_params *p,
     out->status = out->last_flags & AN_DRIFT_F_OUT ? AN_DRIFT_OUT : AN_DRIFT_IN_CONTROL;
     sw_error terr;
     sw_error_clear(&terr);
-    if (m >= 3 && an_trend_fit(in->t + first, in->x + first, m, p->confidence, &out->trend,
-                               &terr) == SW_OK)
+    if (m >= 3 &&
+        an_trend_fit(in->t + first, in->x + first, m, p->confidence, &out->trend, &terr) == SW_OK)
         out->have_trend = 1;
 out:
     free(bx);

@@ -1,6 +1,6 @@
 /* drift.h: drift statistics for QA trends, per scanner, protocol and metric: a baseline, an EWMA
- * control chart (Roberts 1959), a two-sided tabular CUSUM (Page 1954) and a least-squares trend with
- * its Student-t confidence interval and the projected date of a tolerance crossing. Pure
+ * control chart (Roberts 1959), a two-sided tabular CUSUM (Page 1954) and a least-squares trend
+ * with its Student-t confidence interval and the projected date of a tolerance crossing. Pure
  * computation: arrays in, caller-owned results out; no I/O, no logging, no globals. docs/trends.md
  * gives every formula with its source. */
 #ifndef AN_DRIFT_H
@@ -16,14 +16,14 @@
  * months; restarting after a signal (as after corrective action) lets the charts say "back in
  * control", and close_after consecutive in-control points end an episode (hysteresis). */
 typedef struct an_drift_params {
-    double lambda;     /* EWMA weight of the newest result, 0 < lambda <= 1 */
-    double L;          /* EWMA limit half-width in standard deviations of the statistic, > 0 */
-    double k;          /* CUSUM reference value (allowance), sigma units, >= 0 */
-    double h;          /* CUSUM decision interval, sigma units, > 0 */
-    int baseline_n;    /* the baseline is the first N accepted results (>= 2) ... */
+    double lambda;  /* EWMA weight of the newest result, 0 < lambda <= 1 */
+    double L;       /* EWMA limit half-width in standard deviations of the statistic, > 0 */
+    double k;       /* CUSUM reference value (allowance), sigma units, >= 0 */
+    double h;       /* CUSUM decision interval, sigma units, > 0 */
+    int baseline_n; /* the baseline is the first N accepted results (>= 2) ... */
     double baseline_from, baseline_to; /* ... or the accepted results with t in [from, to), when
                                           both are finite (days, the caller's time axis) */
-    double confidence; /* of the trend's intervals, 0 < confidence < 1 (0.95) */
+    double confidence;                 /* of the trend's intervals, 0 < confidence < 1 (0.95) */
     int cusum_restart; /* 1: a sum that signalled restarts from 0 at the next point (default) */
     int close_after;   /* an episode ends after this many consecutive in-control points (3) */
 } an_drift_params;
@@ -84,7 +84,8 @@ typedef struct an_trend {
 /* Needs n >= 3 finite pairs and t not all equal (SW_EMEASURE otherwise). */
 sw_status an_trend_fit(const double *t, const double *y, int n, double confidence, an_trend *out,
                        sw_error *err);
-/* Half-width of the confidence band of the mean response at t: tq s sqrt(1/n + (t - tbar)^2 / Sxx). */
+/* Half-width of the confidence band of the mean response at t: tq s sqrt(1/n + (t - tbar)^2 / Sxx).
+ */
 double an_trend_band(const an_trend *tr, double t);
 
 /* Where the fitted line meets a tolerance limit. side: +1 the upper limit hi (rising line), -1 the
@@ -121,7 +122,8 @@ typedef struct an_drift_input {
 #define AN_DRIFT_F_EWMA_LO 8u   /* z below the lower limit */
 #define AN_DRIFT_F_CUSUM_HI 16u /* C+ > H */
 #define AN_DRIFT_F_CUSUM_LO 32u /* C- > H */
-#define AN_DRIFT_F_OUT (AN_DRIFT_F_EWMA_HI | AN_DRIFT_F_EWMA_LO | AN_DRIFT_F_CUSUM_HI | AN_DRIFT_F_CUSUM_LO)
+#define AN_DRIFT_F_OUT                                                                             \
+    (AN_DRIFT_F_EWMA_HI | AN_DRIFT_F_EWMA_LO | AN_DRIFT_F_CUSUM_HI | AN_DRIFT_F_CUSUM_LO)
 typedef struct an_drift_track {
     double *z, *lcl, *ucl, *cp, *cm;
     unsigned *flags;
@@ -137,7 +139,7 @@ const char *an_drift_status_name(an_drift_status s); /* "no baseline", "in contr
 typedef struct an_drift_summary {
     an_drift_status status;
     an_baseline base;
-    int first;          /* index of the first monitored point, -1 without a baseline */
+    int first; /* index of the first monitored point, -1 without a baseline */
     int n_monitored;
     unsigned last_flags; /* flags of the latest point */
     int in_control_run;  /* consecutive in-control points at the end of the history */

@@ -107,11 +107,16 @@ int wd_cmd_export(int argc, char **argv)
 {
     enum { O_DB = 256, O_SCANNER, O_FROM, O_TO, O_METRIC, O_VERDICT, O_ALL };
     static const struct option opts[] = {
-        {"config", required_argument, NULL, 'c'}, {"db", required_argument, NULL, O_DB},
-        {"scanner", required_argument, NULL, O_SCANNER}, {"from", required_argument, NULL, O_FROM},
-        {"to", required_argument, NULL, O_TO},   {"metric", required_argument, NULL, O_METRIC},
-        {"verdict", required_argument, NULL, O_VERDICT}, {"all-runs", no_argument, NULL, O_ALL},
-        {"output", required_argument, NULL, 'o'}, {"help", no_argument, NULL, 'h'},
+        {"config", required_argument, NULL, 'c'},
+        {"db", required_argument, NULL, O_DB},
+        {"scanner", required_argument, NULL, O_SCANNER},
+        {"from", required_argument, NULL, O_FROM},
+        {"to", required_argument, NULL, O_TO},
+        {"metric", required_argument, NULL, O_METRIC},
+        {"verdict", required_argument, NULL, O_VERDICT},
+        {"all-runs", no_argument, NULL, O_ALL},
+        {"output", required_argument, NULL, 'o'},
+        {"help", no_argument, NULL, 'h'},
         {NULL, 0, NULL, 0},
     };
     const char *config = NULL, *dbpath = NULL, *output = NULL;

@@ -63,7 +63,10 @@ static char *pool_printf(pool *pl, const char *fmt, ...)
     return s;
 }
 
-static char *pool_strdup(pool *pl, const char *s) { return pool_printf(pl, "%s", s ? s : ""); }
+static char *pool_strdup(pool *pl, const char *s)
+{
+    return pool_printf(pl, "%s", s ? s : "");
+}
 
 static void pool_free(pool *pl)
 {
@@ -228,7 +231,8 @@ static int key_order(const void *a, const void *b)
     if (c)
         return c;
     /* Slice thickness before bar length difference, then by name. */
-    int tx = strcmp(x->metric, "slice_thickness") != 0, ty = strcmp(y->metric, "slice_thickness") != 0;
+    int tx = strcmp(x->metric, "slice_thickness") != 0,
+        ty = strcmp(y->metric, "slice_thickness") != 0;
     if (tx != ty)
         return tx - ty;
     if ((c = strcmp(x->metric, y->metric)))
@@ -272,8 +276,11 @@ static sw_status build_chart(db *d, pool *pl, int64_t scanner_id, const qkey *k,
     wd_history h;
     wd_drift_eval e;
     memset(&e, 0, sizeof e);
-    db_drift_key dk = {.scanner_id = scanner_id, .series_type = k->series_type, .echo = k->echo,
-                       .slice = k->slice, .metric = k->metric};
+    db_drift_key dk = {.scanner_id = scanner_id,
+                       .series_type = k->series_type,
+                       .echo = k->echo,
+                       .slice = k->slice,
+                       .metric = k->metric};
     memset(c, 0, sizeof *c);
     if ((rc = wd_history_load(d, &dk, &h, err)) != SW_OK)
         return rc;
@@ -336,8 +343,7 @@ static sw_status build_chart(db *d, pool *pl, int64_t scanner_id, const qkey *k,
         c->summary = pool_printf(pl,
                                  "No drift statistics yet: the baseline needs %d accepted "
                                  "results%s (%d measured so far).",
-                                 o->p.baseline_n, o->baseline_from[0] ? " in its period" : "",
-                                 h.n);
+                                 o->p.baseline_n, o->baseline_from[0] ? " in its period" : "", h.n);
         goto out;
     }
     c->base_mean = e.sum.base.mean;
@@ -352,11 +358,10 @@ static sw_status build_chart(db *d, pool *pl, int64_t scanner_id, const qkey *k,
         c->trend_intercept = t->intercept;
         c->trend_t0 = h.pt[e.sum.first].t;
         c->trend_t1 = h.pt[last].t;
-        int len = snprintf(trend, sizeof trend,
-                           " Trend %+.3f %s/year (%.0f %% interval %+.3f to %+.3f), %s.",
-                           t->slope * 365.25, u, t->confidence * 100, t->slope_lo * 365.25,
-                           t->slope_hi * 365.25,
-                           t->significant ? "significant" : "not significant");
+        int len = snprintf(
+            trend, sizeof trend, " Trend %+.3f %s/year (%.0f %% interval %+.3f to %+.3f), %s.",
+            t->slope * 365.25, u, t->confidence * 100, t->slope_lo * 365.25, t->slope_hi * 365.25,
+            t->significant ? "significant" : "not significant");
         if (e.have_crossing && len > 0 && (size_t)len < sizeof trend) {
             char d0[16], d1[16], d2[16];
             wd_days_iso(e.crossing.t, d0, sizeof d0);
@@ -413,12 +418,10 @@ static int episode_cb(void *ctx, const db_drift_episode *e)
         snprintf(slice, sizeof slice, ", slice %d", e->key.slice);
     a->kind = "drift";
     a->open = 1;
-    a->date = pool_strdup(ac->pl, e->opened_acquired_at[0] ? e->opened_acquired_at
-                                                           : e->opened_at);
-    a->text = pool_printf(ac->pl, "%s (%s%s%s) out of control since this series (%s)",
-                          metric_title(e->key.metric),
-                          e->key.series_type[0] ? e->key.series_type : "-", echo, slice,
-                          e->statistic);
+    a->date = pool_strdup(ac->pl, e->opened_acquired_at[0] ? e->opened_acquired_at : e->opened_at);
+    a->text = pool_printf(
+        ac->pl, "%s (%s%s%s) out of control since this series (%s)", metric_title(e->key.metric),
+        e->key.series_type[0] ? e->key.series_type : "-", echo, slice, e->statistic);
     return 0;
 }
 
@@ -510,10 +513,9 @@ static void run_images(db *d, pool *pl, const char *images, const scanner *s,
     }
 }
 
-static sw_status build_section(db *d, pool *pl, const scanner *s, int index,
-                               const wd_drift_opts *o, const char *from, const char *to,
-                               const char *images, int max_images, rp_scanner_section *sec,
-                               sw_error *err)
+static sw_status build_section(db *d, pool *pl, const scanner *s, int index, const wd_drift_opts *o,
+                               const char *from, const char *to, const char *images, int max_images,
+                               rp_scanner_section *sec, sw_error *err)
 {
     sw_status rc;
     period_scan *ps = pool_calloc(pl, 1, sizeof *ps);
@@ -597,27 +599,28 @@ static sw_status build_section(db *d, pool *pl, const scanner *s, int index,
 
 static void usage(FILE *f)
 {
-    fprintf(f,
-            "usage: slicewarden report [-c FILE] [--db PATH] [--images DIR] [--scanner STATION]\n"
-            "                          [--from DATE] [--to DATE] [--title TEXT] [--max-images N]\n"
-            "                          [drift options] -o FILE\n"
-            "Writes one self-contained HTML file: per scanner a summary, the latest results,\n"
-            "alarms, a trend chart per toleranced quantity (tolerance band, baseline, EWMA limits,\n"
-            "trend) and the annotated images of the latest and of failing series. The database is\n"
-            "opened read-only.\n"
-            "  -c, --config FILE    configuration naming the database and images (default %s)\n"
-            "  --db PATH            the database (overrides the configuration)\n"
-            "  --images DIR         the annotated images folder (overrides the configuration)\n"
-            "  --scanner STATION    only this StationName\n"
-            "  --from DATE, --to DATE  acquisition period [from, to), ISO 8601 (2025, 2025-03-01)\n"
-            "  --max-images N       images per scanner (default 8)\n"
-            "  -o, --output FILE    the HTML file, written atomically\n"
-            "drift options (defaults in brackets; docs/trends.md):\n"
-            "  --lambda X [0.2]  --ewma-L X [3]  --cusum-k X [0.5]  --cusum-h X [5]\n"
-            "  --baseline-results N [8]  --baseline-from DATE --baseline-to DATE\n"
-            "  --confidence X [0.95]\n"
-            "Results support, and never replace, a qualified medical physicist's review.\n",
-            WD_DEFAULT_CONFIG);
+    fprintf(
+        f,
+        "usage: slicewarden report [-c FILE] [--db PATH] [--images DIR] [--scanner STATION]\n"
+        "                          [--from DATE] [--to DATE] [--title TEXT] [--max-images N]\n"
+        "                          [drift options] -o FILE\n"
+        "Writes one self-contained HTML file: per scanner a summary, the latest results,\n"
+        "alarms, a trend chart per toleranced quantity (tolerance band, baseline, EWMA limits,\n"
+        "trend) and the annotated images of the latest and of failing series. The database is\n"
+        "opened read-only.\n"
+        "  -c, --config FILE    configuration naming the database and images (default %s)\n"
+        "  --db PATH            the database (overrides the configuration)\n"
+        "  --images DIR         the annotated images folder (overrides the configuration)\n"
+        "  --scanner STATION    only this StationName\n"
+        "  --from DATE, --to DATE  acquisition period [from, to), ISO 8601 (2025, 2025-03-01)\n"
+        "  --max-images N       images per scanner (default 8)\n"
+        "  -o, --output FILE    the HTML file, written atomically\n"
+        "drift options (defaults in brackets; docs/trends.md):\n"
+        "  --lambda X [0.2]  --ewma-L X [3]  --cusum-k X [0.5]  --cusum-h X [5]\n"
+        "  --baseline-results N [8]  --baseline-from DATE --baseline-to DATE\n"
+        "  --confidence X [0.95]\n"
+        "Results support, and never replace, a qualified medical physicist's review.\n",
+        WD_DEFAULT_CONFIG);
 }
 
 static int parse_double(const char *s, double *out)
@@ -633,8 +636,21 @@ static int parse_double(const char *s, double *out)
 int wd_cmd_report(int argc, char **argv)
 {
     enum {
-        O_DB = 256, O_IMAGES, O_SCANNER, O_FROM, O_TO, O_TITLE, O_MAXIMG, O_LAMBDA, O_L, O_K, O_H,
-        O_BN, O_BFROM, O_BTO, O_CONF
+        O_DB = 256,
+        O_IMAGES,
+        O_SCANNER,
+        O_FROM,
+        O_TO,
+        O_TITLE,
+        O_MAXIMG,
+        O_LAMBDA,
+        O_L,
+        O_K,
+        O_H,
+        O_BN,
+        O_BFROM,
+        O_BTO,
+        O_CONF
     };
     static const struct option opts[] = {
         {"config", required_argument, NULL, 'c'},
@@ -765,8 +781,8 @@ int wd_cmd_report(int argc, char **argv)
     }
     const char *site = NULL;
     for (int i = 0; i < ss.n; i++) {
-        if (build_section(d, &pl, &ss.s[i], i, &o, from, to, images, max_images, &sec[i],
-                          &err) != SW_OK)
+        if (build_section(d, &pl, &ss.s[i], i, &o, from, to, images, max_images, &sec[i], &err) !=
+            SW_OK)
             goto out;
         if (!site && ss.s[i].institution[0])
             site = ss.s[i].institution;
@@ -783,9 +799,10 @@ int wd_cmd_report(int argc, char **argv)
                            : pool_printf(&pl, "the first %d accepted results", o.p.baseline_n),
         o.p.confidence * 100);
     rp_report r = {
-        .title = title ? title : (only ? pool_printf(&pl, "Slice thickness and position QA: %s",
-                                                     ss.n ? sec[0].name : only)
-                                       : "Slice thickness and position QA"),
+        .title = title ? title
+                       : (only ? pool_printf(&pl, "Slice thickness and position QA: %s",
+                                             ss.n ? sec[0].name : only)
+                               : "Slice thickness and position QA"),
         .site = site,
         .period_from = from,
         .period_to = to,

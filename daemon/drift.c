@@ -274,8 +274,8 @@ static int episode_cb(void *ctx, const db_drift_episode *e)
 }
 
 /* The one line for people: what signalled, against which baseline, and where the trend goes. */
-static void describe(const db_drift_key *k, const wd_history *h, const wd_drift_eval *e,
-                     char *buf, size_t n)
+static void describe(const db_drift_key *k, const wd_history *h, const wd_drift_eval *e, char *buf,
+                     size_t n)
 {
     const an_drift_summary *s = &e->sum;
     int last = h->n - 1;
@@ -321,8 +321,8 @@ static void describe(const db_drift_key *k, const wd_history *h, const wd_drift_
 #undef PUT
 }
 
-sw_status wd_drift_check(db *d, const db_drift_key *k, const wd_drift_opts *o,
-                         const char *png_path, wd_drift_outcome *out, sw_error *err)
+sw_status wd_drift_check(db *d, const db_drift_key *k, const wd_drift_opts *o, const char *png_path,
+                         wd_drift_outcome *out, sw_error *err)
 {
     sw_status rc = SW_OK;
     wd_history h;
@@ -359,10 +359,15 @@ sw_status wd_drift_check(db *d, const db_drift_key *k, const wd_drift_opts *o,
         double limit = f & AN_DRIFT_F_EWMA_HI   ? e.track.ucl[h.n - 1]
                        : f & AN_DRIFT_F_EWMA_LO ? e.track.lcl[h.n - 1]
                                                 : NAN;
-        db_alert_info a = {.kind = DB_ALERT_DRIFT, .scanner_id = k->scanner_id,
-                           .series_id = last->series_id, .run_id = last->run_id,
-                           .metric = k->metric, .value = last->value, .limit = limit,
-                           .verdict = last->verdict, .message = out->message,
+        db_alert_info a = {.kind = DB_ALERT_DRIFT,
+                           .scanner_id = k->scanner_id,
+                           .series_id = last->series_id,
+                           .run_id = last->run_id,
+                           .metric = k->metric,
+                           .value = last->value,
+                           .limit = limit,
+                           .verdict = last->verdict,
+                           .message = out->message,
                            .png_path = png_path};
         if ((rc = db_alert_add(d, &a, &out->alert_id, err)) != SW_OK)
             goto out;
@@ -446,8 +451,10 @@ sw_status wd_drift_check_run(db *d, int64_t scanner_id, int64_t run_id, const wd
     if (rc != SW_OK)
         goto out;
     for (int i = 0; i < nk; i++) {
-        db_drift_key k = {.scanner_id = scanner_id, .series_type = keys[i].series_type,
-                          .echo = keys[i].echo, .slice = keys[i].slice,
+        db_drift_key k = {.scanner_id = scanner_id,
+                          .series_type = keys[i].series_type,
+                          .echo = keys[i].echo,
+                          .slice = keys[i].slice,
                           .metric = keys[i].metric};
         wd_drift_outcome oc;
         if ((rc = wd_drift_check(d, &k, o, png_path, &oc, err)) != SW_OK)

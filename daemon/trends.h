@@ -14,7 +14,7 @@
 
 /* ---- settings ---- */
 typedef struct wd_drift_opts {
-    an_drift_params p;    /* lambda, L, k, h, baseline_n, confidence (baseline_from/to unused) */
+    an_drift_params p;      /* lambda, L, k, h, baseline_n, confidence (baseline_from/to unused) */
     char baseline_from[32]; /* ISO 8601 date or date-time; with baseline_to: the baseline period */
     char baseline_to[32];   /* [from, to); both empty: the first p.baseline_n accepted results */
 } wd_drift_opts;
@@ -69,16 +69,17 @@ char *wd_drift_flags_text(unsigned flags, char *buf, size_t n);
 /* ---- the alarm ----
  * Evaluates the key's history; when its latest point is out of control and no episode is open,
  * opens one with a drift alert (one per episode); when its latest o->p.close_after points are in
- * control, closes the open episode (no alert). Without a complete baseline nothing changes. Runs in the caller's
- * transaction when one is open, else in its own. png_path (may be NULL) goes with the alert. */
+ * control, closes the open episode (no alert). Without a complete baseline nothing changes. Runs in
+ * the caller's transaction when one is open, else in its own. png_path (may be NULL) goes with the
+ * alert. */
 typedef struct wd_drift_outcome {
     an_drift_status status;
     int started, ended; /* an episode opened (with its alert) / closed by this check */
     int64_t episode_id, alert_id;
     char message[640]; /* the alert's text, or a note on the state */
 } wd_drift_outcome;
-sw_status wd_drift_check(db *d, const db_drift_key *k, const wd_drift_opts *o,
-                         const char *png_path, wd_drift_outcome *out, sw_error *err);
+sw_status wd_drift_check(db *d, const db_drift_key *k, const wd_drift_opts *o, const char *png_path,
+                         wd_drift_outcome *out, sw_error *err);
 
 /* What the watch service calls after storing a run: wd_drift_check for every metric of that run
  * that has pass limits (slice thickness and bar length difference per echo and slice). Counts go
@@ -95,7 +96,8 @@ sw_status wd_open_store_ro(const char *config_path, const char *db_path, wd_conf
 /* 1 when s is an ISO 8601 prefix the period filter takes: YYYY, YYYY-MM, YYYY-MM-DD, then THH,
  * :MM, :SS. */
 int wd_iso_prefix_ok(const char *s);
-/* "pass,fail" into a verdict mask (1u << db_verdict); 0 with a message in bad on an unknown name. */
+/* "pass,fail" into a verdict mask (1u << db_verdict); 0 with a message in bad on an unknown name.
+ */
 unsigned wd_verdict_mask(const char *list, char *bad, size_t nbad);
 
 #endif

@@ -5,7 +5,10 @@
 
 #include "dbint.h"
 
-static const char *nz(const char *s) { return s ? s : ""; }
+static const char *nz(const char *s)
+{
+    return s ? s : "";
+}
 
 static sw_status check_key(db *d, const db_drift_key *k, sw_error *err)
 {
@@ -29,8 +32,8 @@ static sw_status prepare(db *d, const char *sql, sqlite3_stmt **out, sw_error *e
 }
 
 #define EPISODE_COLUMNS                                                                            \
-    "id, scanner_id, series_type, echo, slice, metric, statistic, opened_at, "                    \
-    "coalesce(opened_series_id, 0), coalesce(opened_acquired_at, ''), coalesce(alert_id, 0), "    \
+    "id, scanner_id, series_type, echo, slice, metric, statistic, opened_at, "                     \
+    "coalesce(opened_series_id, 0), coalesce(opened_acquired_at, ''), coalesce(alert_id, 0), "     \
     "coalesce(closed_at, ''), coalesce(closed_series_id, 0), coalesce(closed_acquired_at, '')"
 
 static void episode_row(sqlite3_stmt *st, db_drift_episode *e)
@@ -124,8 +127,8 @@ sw_status db_drift_episode_open(db *d, const db_drift_key *k, const char *statis
     if ((rc = db_drift_open_get(d, k, NULL, NULL, &found, err)) != SW_OK)
         goto out;
     if (found) {
-        rc = sw_error_set(err, SW_EINVAL, "db: %s: a drift episode of %s is already open",
-                          d->path, k->metric);
+        rc = sw_error_set(err, SW_EINVAL, "db: %s: a drift episode of %s is already open", d->path,
+                          k->metric);
         goto out;
     }
     if ((rc = prepare(d,
@@ -179,8 +182,8 @@ sw_status db_drift_episode_close(db *d, int64_t id, int64_t series_id, const cha
         goto out;
     }
     if (sqlite3_column_int(st, 0)) {
-        rc = sw_error_set(err, SW_EINVAL, "db: %s: drift episode %lld is closed already",
-                          d->path, (long long)id);
+        rc = sw_error_set(err, SW_EINVAL, "db: %s: drift episode %lld is closed already", d->path,
+                          (long long)id);
         goto out;
     }
     sqlite3_finalize(st);

@@ -313,27 +313,27 @@ static void overview(rp_buf *b, const rp_report *r)
 
 static void legend(rp_buf *b)
 {
-    rp_buf_put(b,
-               "<ul class=\"legend\">"
-               "<li><svg width=\"12\" height=\"12\"><circle cx=\"6\" cy=\"6\" r=\"4.5\" "
-               "fill=\"#1F6DB0\"/></svg> pass</li>"
-               "<li><svg width=\"12\" height=\"12\"><path d=\"M6 0.5L11.5 10.5L0.5 10.5Z\" "
-               "fill=\"#E59A1A\"/></svg> warn</li>"
-               "<li><svg width=\"12\" height=\"12\"><rect x=\"1.5\" y=\"1.5\" width=\"9\" "
-               "height=\"9\" fill=\"#C24A0E\"/></svg> fail</li>"
-               "<li><svg width=\"20\" height=\"12\"><rect x=\"0\" y=\"1\" width=\"20\" height=\"10\" "
-               "fill=\"#E3EEF8\"/></svg> tolerance band</li>"
-               "<li><svg width=\"22\" height=\"12\"><line x1=\"0\" y1=\"6\" x2=\"22\" y2=\"6\" "
-               "stroke=\"#8E3F7E\" stroke-width=\"1.8\"/></svg> EWMA, with its limits dashed</li>"
-               "<li><svg width=\"22\" height=\"12\"><line x1=\"0\" y1=\"6\" x2=\"22\" y2=\"6\" "
-               "stroke=\"#0B7A5D\" stroke-dasharray=\"8 3 2 3\" stroke-width=\"1.2\"/></svg> "
-               "baseline mean</li>"
-               "<li><svg width=\"22\" height=\"12\"><line x1=\"0\" y1=\"6\" x2=\"22\" y2=\"6\" "
-               "stroke=\"#3A3A3A\" stroke-dasharray=\"2 2\" stroke-width=\"1.3\"/></svg> "
-               "least-squares trend</li>"
-               "<li><svg width=\"16\" height=\"16\"><circle cx=\"8\" cy=\"8\" r=\"6.5\" "
-               "fill=\"none\" stroke=\"#8E3F7E\" stroke-width=\"1.6\"/></svg> out of control</li>"
-               "</ul>");
+    rp_buf_put(
+        b, "<ul class=\"legend\">"
+           "<li><svg width=\"12\" height=\"12\"><circle cx=\"6\" cy=\"6\" r=\"4.5\" "
+           "fill=\"#1F6DB0\"/></svg> pass</li>"
+           "<li><svg width=\"12\" height=\"12\"><path d=\"M6 0.5L11.5 10.5L0.5 10.5Z\" "
+           "fill=\"#E59A1A\"/></svg> warn</li>"
+           "<li><svg width=\"12\" height=\"12\"><rect x=\"1.5\" y=\"1.5\" width=\"9\" "
+           "height=\"9\" fill=\"#C24A0E\"/></svg> fail</li>"
+           "<li><svg width=\"20\" height=\"12\"><rect x=\"0\" y=\"1\" width=\"20\" height=\"10\" "
+           "fill=\"#E3EEF8\"/></svg> tolerance band</li>"
+           "<li><svg width=\"22\" height=\"12\"><line x1=\"0\" y1=\"6\" x2=\"22\" y2=\"6\" "
+           "stroke=\"#8E3F7E\" stroke-width=\"1.8\"/></svg> EWMA, with its limits dashed</li>"
+           "<li><svg width=\"22\" height=\"12\"><line x1=\"0\" y1=\"6\" x2=\"22\" y2=\"6\" "
+           "stroke=\"#0B7A5D\" stroke-dasharray=\"8 3 2 3\" stroke-width=\"1.2\"/></svg> "
+           "baseline mean</li>"
+           "<li><svg width=\"22\" height=\"12\"><line x1=\"0\" y1=\"6\" x2=\"22\" y2=\"6\" "
+           "stroke=\"#3A3A3A\" stroke-dasharray=\"2 2\" stroke-width=\"1.3\"/></svg> "
+           "least-squares trend</li>"
+           "<li><svg width=\"16\" height=\"16\"><circle cx=\"8\" cy=\"8\" r=\"6.5\" "
+           "fill=\"none\" stroke=\"#8E3F7E\" stroke-width=\"1.6\"/></svg> out of control</li>"
+           "</ul>");
 }
 
 static sw_status section(rp_buf *b, const rp_scanner_section *s, int index, rp_html_info *info,
@@ -425,8 +425,9 @@ static sw_status section(rp_buf *b, const rp_scanner_section *s, int index, rp_h
         rp_buf_put(b, "<p class=\"stats\">");
         rp_buf_esc(b, c->summary);
         if (c->n_hidden)
-            rp_buf_printf(b, " %d unmeasurable result%s in the period %s no value and %s not "
-                             "plotted.",
+            rp_buf_printf(b,
+                          " %d unmeasurable result%s in the period %s no value and %s not "
+                          "plotted.",
                           c->n_hidden, c->n_hidden == 1 ? "" : "s",
                           c->n_hidden == 1 ? "has" : "have", c->n_hidden == 1 ? "is" : "are");
         rp_buf_put(b, "</p></figure>");
@@ -467,8 +468,7 @@ static sw_status section(rp_buf *b, const rp_scanner_section *s, int index, rp_h
     return SW_OK;
 }
 
-sw_status rp_html_write(const char *path, const rp_report *r, rp_html_info *info,
-                        sw_error *err)
+sw_status rp_html_write(const char *path, const rp_report *r, rp_html_info *info, sw_error *err)
 {
     sw_status rc = SW_OK;
     rp_buf b = {0};

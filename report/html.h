@@ -27,16 +27,16 @@ typedef struct rp_chart {
     const char *title; /* "Slice thickness, t1, echo 1" */
     const char *metric, *unit;
     int n;
-    const rp_tpoint *pt; /* in time order */
-    double t_min, t_max; /* x range (the report period), NAN: from the points */
+    const rp_tpoint *pt;            /* in time order */
+    double t_min, t_max;            /* x range (the report period), NAN: from the points */
     double tol_lo, tol_hi, nominal; /* pass limits and nominal value (NAN: none) */
     double base_mean, base_sigma;   /* NAN when there is no baseline */
     int base_n;
     int have_trend; /* the trend line value = intercept + slope t over [trend_t0, trend_t1] */
     double trend_slope, trend_intercept, trend_t0, trend_t1;
-    const char *status;  /* "in control", "drift", "no baseline" */
-    const char *summary; /* one line with the statistics (may be NULL) */
-    int n_hidden;        /* unmeasurable results in the period (they have no value to plot) */
+    const char *status;      /* "in control", "drift", "no baseline" */
+    const char *summary;     /* one line with the statistics (may be NULL) */
+    int n_hidden;            /* unmeasurable results in the period (they have no value to plot) */
     const char *series_type; /* the protocol the chart is of (data attributes for programs) */
     int echo, slice;         /* 0 when not per echo / not of one slice */
 } rp_chart;
@@ -82,9 +82,9 @@ typedef struct rp_scanner_section {
 
 typedef struct rp_report {
     const char *title;
-    const char *site;                     /* may be NULL */
-    const char *period_from, *period_to;  /* as given, NULL: open */
-    const char *generated_at;             /* UTC */
+    const char *site;                    /* may be NULL */
+    const char *period_from, *period_to; /* as given, NULL: open */
+    const char *generated_at;            /* UTC */
     const char *program_version;
     const char *settings; /* the drift settings in one line */
     int n_sections;

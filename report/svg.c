@@ -25,9 +25,9 @@
 #define C_INFO "#6B6B6B"
 #define C_BAND "#E3EEF8"
 #define C_LIMIT "#7A9CC0"
-#define C_EWMA "#8E3F7E"  /* reddish purple, darker than the bar overlay for contrast on white */
+#define C_EWMA "#8E3F7E" /* reddish purple, darker than the bar overlay for contrast on white */
 #define C_TREND "#3A3A3A"
-#define C_BASE "#0B7A5D"  /* bluish green */
+#define C_BASE "#0B7A5D" /* bluish green */
 #define C_GRID "#EBEBEB"
 #define C_INK "#1B1B1B"
 #define C_INK2 "#555555"
@@ -36,8 +36,14 @@ typedef struct frame {
     double t0, t1, y0, y1;
 } frame;
 
-static double fx(const frame *f, double t) { return PX0 + (t - f->t0) / (f->t1 - f->t0) * (PX1 - PX0); }
-static double fy(const frame *f, double v) { return PY1 - (v - f->y0) / (f->y1 - f->y0) * (PY1 - PY0); }
+static double fx(const frame *f, double t)
+{
+    return PX0 + (t - f->t0) / (f->t1 - f->t0) * (PX1 - PX0);
+}
+static double fy(const frame *f, double v)
+{
+    return PY1 - (v - f->y0) / (f->y1 - f->y0) * (PY1 - PY0);
+}
 
 static void widen(double *lo, double *hi, double v)
 {
@@ -74,11 +80,12 @@ static void hline(rp_buf *b, const frame *f, double v, const char *cls, const ch
     if (!isfinite(v))
         return;
     double y = fy(f, v);
-    rp_buf_printf(b,
-                  "<line class=\"%s\" x1=\"%.1f\" y1=\"%.1f\" x2=\"%.1f\" y2=\"%.1f\" stroke=\"%s\" "
-                  "stroke-width=\"1.2\"%s%s%s/>",
-                  cls, PX0, y, PX1, y, colour, dash ? " stroke-dasharray=\"" : "", dash ? dash : "",
-                  dash ? "\"" : "");
+    rp_buf_printf(
+        b,
+        "<line class=\"%s\" x1=\"%.1f\" y1=\"%.1f\" x2=\"%.1f\" y2=\"%.1f\" stroke=\"%s\" "
+        "stroke-width=\"1.2\"%s%s%s/>",
+        cls, PX0, y, PX1, y, colour, dash ? " stroke-dasharray=\"" : "", dash ? dash : "",
+        dash ? "\"" : "");
     if (label) {
         rp_buf_printf(b,
                       "<text x=\"%.1f\" y=\"%.1f\" font-size=\"10.5\" fill=\"%s\" "
@@ -100,8 +107,9 @@ static void polyline(rp_buf *b, const frame *f, const rp_chart *c, int which, co
             v = which == 0 ? c->pt[i].z : which == 1 ? c->pt[i].lcl : c->pt[i].ucl;
         if (isfinite(v)) {
             if (!open) {
-                rp_buf_printf(b, "<polyline class=\"%s\" fill=\"none\" stroke=\"%s\" "
-                                 "stroke-width=\"%.1f\"%s%s%s points=\"",
+                rp_buf_printf(b,
+                              "<polyline class=\"%s\" fill=\"none\" stroke=\"%s\" "
+                              "stroke-width=\"%.1f\"%s%s%s points=\"",
                               cls, colour, width, dash ? " stroke-dasharray=\"" : "",
                               dash ? dash : "", dash ? "\"" : "");
                 open = 1;
@@ -276,8 +284,10 @@ sw_status rp_svg_chart(const rp_chart *c, char **out, sw_error *err)
     if (!c || !out || (c->n > 0 && !c->pt) || c->n < 0)
         return sw_error_set(err, SW_EINVAL, "report: svg chart: bad arguments");
     if (!id_ok(c->id))
-        return sw_error_set(err, SW_EINVAL, "report: chart id '%s' has characters other than "
-                            "letters, digits, '-' and '_'", c->id ? c->id : "");
+        return sw_error_set(err, SW_EINVAL,
+                            "report: chart id '%s' has characters other than "
+                            "letters, digits, '-' and '_'",
+                            c->id ? c->id : "");
     frame f = {NAN, NAN, NAN, NAN};
     f.t0 = c->t_min;
     f.t1 = c->t_max;

@@ -57,7 +57,7 @@ static inline double jarr_at(json_t *o, const char *key, size_t i)
 
 /* |a - b| <= tol * max(1, |b|) */
 #define assert_close(a, b, tol, ...)                                                               \
-    cr_assert(fabs((a) - (b)) <= (tol) * fmax(1.0, fabs(b)), __VA_ARGS__)
+    cr_assert(fabs((a) - (b)) <= (tol)*fmax(1.0, fabs(b)), __VA_ARGS__)
 
 /* Deterministic normal deviates (a 64-bit LCG and Box-Muller), so runs repeat exactly. */
 typedef struct rng {
@@ -83,12 +83,15 @@ static inline void make_tmpdir(char *buf, size_t n, const char *tag)
 
 /* ---- a store filled with the rows the watch service writes ---- */
 
-static inline int64_t add_scanner(db *d, const char *station, const char *serial,
-                                  const char *model, const char *alias)
+static inline int64_t add_scanner(db *d, const char *station, const char *serial, const char *model,
+                                  const char *alias)
 {
-    db_scanner_info s = {.station_name = station, .device_serial = serial,
-                         .manufacturer = "Slicewarden Simulator", .model = model,
-                         .institution = "Alderbrook Regional Hospital", .site_alias = alias};
+    db_scanner_info s = {.station_name = station,
+                         .device_serial = serial,
+                         .manufacturer = "Slicewarden Simulator",
+                         .model = model,
+                         .institution = "Alderbrook Regional Hospital",
+                         .site_alias = alias};
     int64_t id = 0;
     sw_error err;
     sw_error_clear(&err);
@@ -106,10 +109,16 @@ static inline int64_t add_series_run(db *d, int64_t scanner, const char *uid, co
     sw_error_clear(&err);
     char study[80];
     snprintf(study, sizeof study, "%s.1", uid);
-    db_series_info si = {.series_instance_uid = uid, .study_instance_uid = study,
-                         .scanner_id = scanner, .series_number = number, .series_date = date,
-                         .series_time = time, .description = description, .protocol = description,
-                         .series_type = type, .images_expected = 11,
+    db_series_info si = {.series_instance_uid = uid,
+                         .study_instance_uid = study,
+                         .scanner_id = scanner,
+                         .series_number = number,
+                         .series_date = date,
+                         .series_time = time,
+                         .description = description,
+                         .protocol = description,
+                         .series_type = type,
+                         .images_expected = 11,
                          .echoes_expected = strcmp(type, "t2") ? 1 : 2};
     int64_t sid = 0, run = 0;
     cr_assert_eq(db_series_upsert(d, &si, &sid, NULL, &err), SW_OK, "%s", err.msg);
@@ -117,8 +126,10 @@ static inline int64_t add_series_run(db *d, int64_t scanner, const char *uid, co
                  SW_OK, "%s", err.msg);
     cr_assert_eq(db_series_set_state(d, sid, DB_SERIES_COMPLETE, DB_SERIES_MEASURED, NULL, &err),
                  SW_OK, "%s", err.msg);
-    db_run_info ri = {.program_version = "0.1.0", .config_hash = "sha256:test",
-                      .phantom_model = "large", .tolerance_set = "default"};
+    db_run_info ri = {.program_version = "0.1.0",
+                      .config_hash = "sha256:test",
+                      .phantom_model = "large",
+                      .tolerance_set = "default"};
     cr_assert_eq(db_run_begin(d, sid, &ri, &run, &err), SW_OK, "%s", err.msg);
     if (series_id)
         *series_id = sid;

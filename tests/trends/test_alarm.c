@@ -49,9 +49,8 @@ static json_t *reference_episodes(const double *t, const double *x, int n, const
     }
     json_t *c = json_pack("{s:o,s:o,s:o,s:f,s:f,s:f,s:f,s:i,s:f,s:b,s:i,s:b}", "t", jt, "x", jx,
                           "u", ju, "lambda", p->lambda, "L", p->L, "k", p->k, "h", p->h,
-                          "baseline_n", p->baseline_n, "confidence", p->confidence,
-                          "cusum_restart", p->cusum_restart, "close_after", p->close_after,
-                          "episodes", 1);
+                          "baseline_n", p->baseline_n, "confidence", p->confidence, "cusum_restart",
+                          p->cusum_restart, "close_after", p->close_after, "episodes", 1);
     json_t *ref = run_reference("drift_ref.py", c);
     json_decref(c);
     json_t *e = json_incref(json_object_get(ref, "episodes"));
@@ -123,8 +122,8 @@ Test(alarm, one_alert_per_episode_as_numpy_says)
         snprintf(uid, sizeof uid, "2.25.4242%d", 1000 + i);
         int64_t sid = 0;
         int64_t run = add_series_run(d, sc, uid, da, "081500", "t1", "ACR T1", 3, &sid);
-        db_verdict v = add_row(d, run, "slice_thickness", 1, 1, h.thick[i], 0.03, 5.0, 4.3, 5.7,
-                               4.5, 5.5);
+        db_verdict v =
+            add_row(d, run, "slice_thickness", 1, 1, h.thick[i], 0.03, 5.0, 4.3, 5.7, 4.5, 5.5);
         add_row(d, run, "bar_length_difference", 1, 1, h.bar1[i], 0.2, 0, -5, 5, -4, 4);
         add_row(d, run, "bar_length_difference", 11, 1, h.bar11[i], 0.2, 0, -5, 5, -4, 4);
         /* A row without limits is not a drift key. */
@@ -182,17 +181,17 @@ Test(alarm, one_alert_per_episode_as_numpy_says)
         cr_assert_str_eq(ep.opened[i], h.acquired[oi], "episode %d opened", k);
         cr_assert_str_eq(ep.closed[i], h.acquired[ci], "episode %d closed", k);
         cr_assert(oi >= 12 && oi < 22 + (k ? 34 : 0), "opened in week %d", oi);
-        cr_assert(ep.e[i].alert_id > 0 && !strcmp(ep.type[i], "t1") &&
-                  ep.e[i].key.echo == 1 && ep.e[i].key.slice == 1);
+        cr_assert(ep.e[i].alert_id > 0 && !strcmp(ep.type[i], "t1") && ep.e[i].key.echo == 1 &&
+                  ep.e[i].key.slice == 1);
         k++;
     }
     cr_assert_eq(k, 2);
     /* The store refuses a second open episode of one key. */
-    db_drift_key key = {.scanner_id = sc, .series_type = "t1", .echo = 1, .slice = 1,
-                        .metric = "slice_thickness"};
+    db_drift_key key = {
+        .scanner_id = sc, .series_type = "t1", .echo = 1, .slice = 1, .metric = "slice_thickness"};
     int64_t id1 = 0, id2 = 0;
-    cr_assert_eq(db_drift_episode_open(d, &key, "ewma-high", 0, NULL, 0, &id1, &err), SW_OK,
-                 "%s", err.msg);
+    cr_assert_eq(db_drift_episode_open(d, &key, "ewma-high", 0, NULL, 0, &id1, &err), SW_OK, "%s",
+                 err.msg);
     sw_error_clear(&err);
     cr_assert_eq(db_drift_episode_open(d, &key, "ewma-high", 0, NULL, 0, &id2, &err), SW_EINVAL);
     cr_assert_eq(db_drift_episode_close(d, id1, 0, NULL, &err), SW_OK);
@@ -234,8 +233,8 @@ Test(alarm, read_only_store_is_not_written)
     sw_error_clear(&err);
     cr_assert_neq(wd_drift_check_run(d, sc, last_run, &o, NULL, &st, NULL, &err), SW_OK);
     cr_assert_eq(st, 0);
-    db_drift_key key = {.scanner_id = sc, .series_type = "t1", .echo = 1, .slice = 1,
-                        .metric = "slice_thickness"};
+    db_drift_key key = {
+        .scanner_id = sc, .series_type = "t1", .echo = 1, .slice = 1, .metric = "slice_thickness"};
     wd_history h;
     cr_assert_eq(wd_history_load(d, &key, &h, &err), SW_OK, "%s", err.msg);
     cr_assert_eq(h.n, 12);

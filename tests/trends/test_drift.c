@@ -6,7 +6,8 @@
 /* ---- Student t ---- */
 
 /* Two-sided 95 % and other quantiles as printed in standard t tables (for example the
- * NIST/SEMATECH e-Handbook of Statistical Methods, section 1.3.6.7.2), to the 3 decimals printed. */
+ * NIST/SEMATECH e-Handbook of Statistical Methods, section 1.3.6.7.2), to the 3 decimals printed.
+ */
 Test(student_t, printed_table_values)
 {
     static const struct {
@@ -19,8 +20,7 @@ Test(student_t, printed_table_values)
         double t = an_student_t_quantile(table[i].p, table[i].df);
         cr_assert(fabs(t - table[i].t) < 6e-4, "t(%g, %g) = %.5f, table %.3f", table[i].p,
                   table[i].df, t, table[i].t);
-        cr_assert(fabs(an_student_t_quantile(1 - table[i].p, table[i].df) + t) < 1e-12,
-                  "symmetry");
+        cr_assert(fabs(an_student_t_quantile(1 - table[i].p, table[i].df) + t) < 1e-12, "symmetry");
     }
     /* df = 1 is the Cauchy distribution: F(t) = 1/2 + atan(t)/pi (a closed form). */
     for (double t = -30; t <= 30; t += 0.7)
@@ -35,9 +35,9 @@ Test(student_t, printed_table_values)
 
 Test(student_t, against_scipy)
 {
-    json_t *in = json_pack("{s:[f],s:[f],s:i,s:f,s:f,s:f,s:f,s:f}", "t", 0.0, "x", 0.0,
-                           "baseline_n", 8, "lambda", 0.2, "L", 3.0, "k", 0.5, "h", 5.0,
-                           "confidence", 0.95);
+    json_t *in =
+        json_pack("{s:[f],s:[f],s:i,s:f,s:f,s:f,s:f,s:f}", "t", 0.0, "x", 0.0, "baseline_n", 8,
+                  "lambda", 0.2, "L", 3.0, "k", 0.5, "h", 5.0, "confidence", 0.95);
     json_t *tab = json_array(), *ctab = json_array();
     static const double ps[] = {0.5005, 0.6, 0.8, 0.9, 0.95, 0.975, 0.99, 0.995, 0.9995, 0.001};
     static const double dfs[] = {1, 2, 3, 4, 7, 13, 28, 60, 250, 1e4};
@@ -63,8 +63,8 @@ Test(student_t, against_scipy)
                   "t quantile (%g, %g): %.15g vs inverse of scipy's CDF %.15g", p, df, got, inv);
         double q = (double)(i / 10) * 0.9 - 3.1;
         double wc = json_number_value(json_array_get(json_object_get(ref, "t_cdf"), i));
-        cr_assert(fabs(an_student_t_cdf(q, df) - wc) < (df > 1000 ? 1e-11 : 1e-13),
-                  "t.cdf(%g, %g)", q, df);
+        cr_assert(fabs(an_student_t_cdf(q, df) - wc) < (df > 1000 ? 1e-11 : 1e-13), "t.cdf(%g, %g)",
+                  q, df);
     }
     json_decref(in);
     json_decref(ref);
@@ -189,10 +189,10 @@ static json_t *case_json(const example *e, const an_drift_params *p, double lo, 
         json_array_append_new(u, isfinite(e->u[i]) ? json_real(e->u[i]) : json_null());
         json_array_append_new(a, json_boolean(e->acc[i]));
     }
-    json_t *c = json_pack("{s:o,s:o,s:o,s:o,s:f,s:f,s:f,s:f,s:i,s:f,s:f,s:f}", "t", t, "x", x,
-                          "u", u, "accepted", a, "lambda", p->lambda, "L", p->L, "k", p->k, "h",
-                          p->h, "baseline_n", p->baseline_n, "confidence", p->confidence, "lo", lo,
-                          "hi", hi);
+    json_t *c =
+        json_pack("{s:o,s:o,s:o,s:o,s:f,s:f,s:f,s:f,s:i,s:f,s:f,s:f}", "t", t, "x", x, "u", u,
+                  "accepted", a, "lambda", p->lambda, "L", p->L, "k", p->k, "h", p->h, "baseline_n",
+                  p->baseline_n, "confidence", p->confidence, "lo", lo, "hi", hi);
     json_object_set_new(c, "cusum_restart", json_boolean(p->cusum_restart));
     json_object_set_new(c, "close_after", json_integer(p->close_after));
     if (isfinite(p->baseline_from)) {
@@ -246,7 +246,8 @@ static void compare(const example *e, const an_drift_params *p, double lo, doubl
     assert_close(s.trend.slope_se, jnum_at(trj, "slope_se"), 1e-9, "slope stderr");
     assert_close(s.trend.intercept_se, jnum_at(trj, "intercept_se"), 1e-9, "intercept stderr");
     assert_close(s.trend.r, jnum_at(trj, "r"), 1e-9, "r");
-    assert_close(s.trend.tq, jnum_at(trj, "tq"), 1e-10, "t quantile %.15g vs %.15g", s.trend.tq, jnum_at(trj, "tq"));
+    assert_close(s.trend.tq, jnum_at(trj, "tq"), 1e-10, "t quantile %.15g vs %.15g", s.trend.tq,
+                 jnum_at(trj, "tq"));
     assert_close(s.trend.slope_lo, jnum_at(trj, "slope_lo"), 1e-9, "slope CI low");
     assert_close(s.trend.slope_hi, jnum_at(trj, "slope_hi"), 1e-9, "slope CI high");
     an_crossing cr;
@@ -311,7 +312,7 @@ Test(drift, period_uncertainty_and_rejects_against_numpy)
     p.k = 0.25;
     p.h = 4;
     p.confidence = 0.9;
-    p.cusum_restart = 0; /* Page's CUSUM as it is, without the restart */
+    p.cusum_restart = 0;       /* Page's CUSUM as it is, without the restart */
     p.baseline_from = 19030.0; /* points 3 .. 14 */
     p.baseline_to = 19150.0;
     compare(&e, &p, -5.0, 5.0, AN_SIGMA_UNCERTAINTY);

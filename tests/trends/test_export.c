@@ -37,8 +37,10 @@ static void build(void)
         }
         finish_run(d, run, sid, DB_PASS);
         if (i == 4) { /* a re-analysis: a second run; the default export gives only this one */
-            db_run_info ri = {.program_version = "0.1.1", .config_hash = "sha256:other",
-                              .phantom_model = "large", .tolerance_set = "site"};
+            db_run_info ri = {.program_version = "0.1.1",
+                              .config_hash = "sha256:other",
+                              .phantom_model = "large",
+                              .tolerance_set = "site"};
             int64_t r2 = 0;
             cr_assert_eq(db_run_begin(d, sid, &ri, &r2, &err), SW_OK, "%s", err.msg);
             add_row(d, r2, "slice_thickness", 1, 1, 5.05, 0.02, 5.0, 4.3, 5.7, 4.5, 5.5);
@@ -58,8 +60,8 @@ static long export_and_check(const char *args)
              csv);
     int st = system(cmd);
     cr_assert(WIFEXITED(st) && WEXITSTATUS(st) == 0, "%s: status %d", cmd, st);
-    snprintf(cmd, sizeof cmd, PY " %s/tests/trends/check_export.py %s %s %s", SW_SOURCE_DIR,
-             dbpath, csv, args);
+    snprintf(cmd, sizeof cmd, PY " %s/tests/trends/check_export.py %s %s %s", SW_SOURCE_DIR, dbpath,
+             csv, args);
     FILE *p = popen(cmd, "r");
     cr_assert(p);
     if (!fgets(out, sizeof out, p))
@@ -98,8 +100,7 @@ Test(export, reads_while_a_writer_holds_the_lock_and_refuses_bad_input)
     static const char *const bad[] = {"--from 2025-13", "--from 2025-1-1", "--verdict maybe",
                                       "--from 2025-03 --to 2025-02", "stray"};
     for (size_t i = 0; i < sizeof bad / sizeof bad[0]; i++) {
-        snprintf(cmd, sizeof cmd, SLICEWARDEN " export --db %s %s >/dev/null 2>&1", dbpath,
-                 bad[i]);
+        snprintf(cmd, sizeof cmd, SLICEWARDEN " export --db %s %s >/dev/null 2>&1", dbpath, bad[i]);
         int st = system(cmd);
         cr_assert(WIFEXITED(st) && WEXITSTATUS(st) == 2, "'%s' gave status %d", bad[i], st);
     }

@@ -48,8 +48,7 @@ static int add_drifting_scanner(db *d)
         int64_t run = add_series_run(d, sc, uid, da, "071000", "t1", "ACR T1", 2, &sid);
         double th = 5.0 + 0.04 * rng_normal(&r) + (i >= 12 ? 0.03 * (i - 12) : 0);
         db_verdict v = add_row(d, run, "slice_thickness", 1, 1, th, 0.03, 5.0, 4.3, 5.7, 4.5, 5.5);
-        add_row(d, run, "bar_length_difference", 1, 1, 0.3 * rng_normal(&r), 0.2, 0, -5, 5, -4,
-                4);
+        add_row(d, run, "bar_length_difference", 1, 1, 0.3 * rng_normal(&r), 0.2, 0, -5, 5, -4, 4);
         add_row(d, run, "bar_length_difference", 11, 1, i == 20 ? NAN : 0.3 * rng_normal(&r), 0.2,
                 0, -5, 5, -4, 4);
         finish_run(d, run, sid, v);
@@ -111,8 +110,8 @@ Test(report, chromium_sees_every_point_of_the_store, .timeout = 240)
     snprintf(dom, sizeof dom, "%s/dom.html", dir);
     snprintf(prof, sizeof prof, "%s/chromium-profile", dir);
     snprintf(cmd, sizeof cmd,
-             SLICEWARDEN " report -c %s --from 2024-08 --to 2026 -o %s 2>%s/report.log", conf,
-             html, dir);
+             SLICEWARDEN " report -c %s --from 2024-08 --to 2026 -o %s 2>%s/report.log", conf, html,
+             dir);
     cr_assert_eq(run(cmd), 0, "%s", cmd);
     const char *flags = "--headless --no-sandbox --disable-gpu --disable-background-networking "
                         "--no-first-run --disable-component-update --disable-sync "
