@@ -98,6 +98,7 @@ static void job_params(const demo_job *j, sim_params *p)
     sim_params_default(p);
     p->kind = j->kind;
     p->profile.thickness_mm = true_thickness(j->scanner, j->week, &rng);
+    p->prescribed_mm = 5.0; /* what the protocol asks for; the scanner delivers the above */
     p->pose.rot_deg = 1.0 * gauss(&rng);
     p->pose.du_mm = 3.0 * gauss(&rng);
     p->pose.dv_mm = 3.0 * gauss(&rng);

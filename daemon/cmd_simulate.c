@@ -34,6 +34,7 @@ static void usage(FILE *f)
         "  --seed N                noise and order seed [1]\n"
         "Slice profile\n"
         "  --thickness MM          wanted FWHM [the model's nominal, 5]\n"
+        "  --prescribed MM         SliceThickness written in the files [the wanted FWHM]\n"
         "  --profile K             bloch (Hamming-windowed sinc), rect, gauss, rect-gauss [bloch]\n"
         "  --tbw X                 time-bandwidth product [4]\n"
         "  --pulse-ms X            pulse duration [3.2]\n"
@@ -165,6 +166,7 @@ int wd_cmd_simulate(int argc, char **argv)
         O_REVERSE,
         O_SEED,
         O_THICK,
+        O_PRESCRIBED,
         O_PROFILE,
         O_TBW,
         O_PULSE,
@@ -209,6 +211,7 @@ int wd_cmd_simulate(int argc, char **argv)
         {"reverse-instances", no_argument, NULL, O_REVERSE},
         {"seed", required_argument, NULL, O_SEED},
         {"thickness", required_argument, NULL, O_THICK},
+        {"prescribed", required_argument, NULL, O_PRESCRIBED},
         {"profile", required_argument, NULL, O_PROFILE},
         {"tbw", required_argument, NULL, O_TBW},
         {"pulse-ms", required_argument, NULL, O_PULSE},
@@ -289,6 +292,7 @@ int wd_cmd_simulate(int argc, char **argv)
             break;
         }
         case O_THICK: bad = parse_double("--thickness", o, &p.profile.thickness_mm); break;
+        case O_PRESCRIBED: bad = parse_double("--prescribed", o, &p.prescribed_mm); break;
         case O_PROFILE:
             bad = parse_name("--profile", o, profile_names, 4, &ival);
             p.profile.kind = ival;

@@ -99,6 +99,8 @@ sw_status sim_params_check(const sim_params *p, sw_error *err)
     NEED(p->n_slices >= 0 && n >= 1 && n <= SIM_MAX_SLICES, "slice count %d out of range (1..%d)",
          n, SIM_MAX_SLICES);
     NEED(p->gap_mm >= 0 && isfinite(p->gap_mm), "slice gap %g mm is invalid", p->gap_mm);
+    NEED(p->prescribed_mm >= 0 && p->prescribed_mm <= 50, "prescribed thickness %g mm is invalid",
+         p->prescribed_mm);
     NEED(p->kind == SIM_SERIES_T1 || p->kind == SIM_SERIES_T2, "unknown series kind %d",
          (int)p->kind);
     NEED(p->matrix >= 16 && p->matrix <= 1024 && p->matrix % 2 == 0,
@@ -428,7 +430,7 @@ static void fill_common(const sim_series *s, const sim_timing *tm, const char *s
                                                    : 3;
     im->acquisition_number = 1;
     im->repetition_time_ms = tm->tr_ms;
-    im->slice_thickness_mm = p->profile.thickness_mm;
+    im->slice_thickness_mm = p->prescribed_mm > 0 ? p->prescribed_mm : p->profile.thickness_mm;
     im->spacing_between_slices_mm = p->gap_mm;
     im->magnetic_field_t = id->field_t;
     /* the frequency the scanner used: gamma-bar B0 plus the simulated centre-frequency error */

@@ -163,6 +163,7 @@ typedef struct sim_params {
     int oversample;               /* in-plane oversampling of the object grid (4), 1..8 */
     double snr;          /* as phantom-large.md defines it, for the first echo; 0: no noise */
     double coil_shading; /* relative rise of the receive sensitivity at the phantom's rim (0) */
+    double prescribed_mm; /* SliceThickness written (what was prescribed); 0: profile's thickness */
     /* slice position error e(z) = offset + scale z, z along the normal (patient frame) */
     double position_offset_mm;
     double position_scale; /* dimensionless (0.01 = 1 %) */
