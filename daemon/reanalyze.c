@@ -96,14 +96,19 @@ typedef struct file_ref {
 typedef struct file_refs {
     file_ref *v;
     int n, cap;
+    int series_failed; /* the series was never stored */
 } file_refs;
 
 static int file_cb(void *ctx, const db_file_rec *r)
 {
     file_refs *l = ctx;
     /* The files measured (stored) and those refused with their series (quarantined after they
-     * were parsed); duplicates and late arrivals (ignored) never belonged to the measurement. */
-    if (r->state != DB_FILE_STORED && r->state != DB_FILE_QUARANTINED)
+     * were parsed). Of a series that failed (for example "not a phantom series" before a match
+     * rule was added), its ignored files too, but never a duplicate of another file. */
+    int take = r->state == DB_FILE_STORED || r->state == DB_FILE_QUARANTINED ||
+               (l->series_failed && r->state == DB_FILE_IGNORED &&
+                strncmp(r->reason, "duplicate", 9) != 0);
+    if (!take)
         return 0;
     const char *where = r->location[0] && access(r->location, F_OK) == 0 ? r->location : r->path;
     if (l->n == l->cap) {
@@ -139,6 +144,7 @@ static int redo(db *d, const wd_settings *s, int64_t series_id, int png, int ale
     if (db_series_get(d, series_id, series_cb, &os, &err) != SW_OK)
         goto fail;
     sc.id = os.scanner_id;
+    fr.series_failed = os.state == DB_SERIES_FAILED;
     if (db_scanners_each(d, scanner_cb, &sc, &err) != SW_OK ||
         db_series_files(d, series_id, file_cb, &fr, &err) != SW_OK)
         goto fail;

@@ -2162,9 +2162,20 @@ int wd_cmd_watch(int argc, char **argv)
     if (!w->once && sd_watchdog_enabled(0, &usec) > 0)
         w->watchdog_every = (double)usec / 2e6;
 #endif
-    if (rebuild(w, &err) != SW_OK) {
-        wd_error("resuming: %s", err.msg);
-        goto out;
+    /* Another writer may hold the store for a while (a re-analysis, a merge): wait for it. */
+    for (double until = wd_now_mono() + 120;;) {
+        sw_error_clear(&err);
+        sw_status rs = rebuild(w, &err);
+        if (rs == SW_OK)
+            break;
+        if (rs != SW_EBUSY || wd_now_mono() > until) {
+            wd_error("resuming: %s", err.msg);
+            goto out;
+        }
+        for (int i = 0; i < w->nseries; i++)
+            series_free(w->series[i]);
+        w->nseries = 0;
+        sleep(1);
     }
     if (w->progress)
         w->files_total = count_files(w->s->cfg.folder, 0);
