@@ -676,8 +676,10 @@ int wd_cmd_report(int argc, char **argv)
     const char *config = NULL, *dbpath = NULL, *images = NULL, *only = NULL, *from = NULL,
                *to = NULL, *title = NULL, *output = NULL;
     int max_images = 8;
-    wd_drift_opts o;
-    wd_drift_opts_default(&o);
+    /* Drift settings: the configuration's [drift], with what the command line sets over it. */
+    wd_drift_opts o, cli;
+    memset(&cli, 0, sizeof cli);
+    cli.p.lambda = cli.p.L = cli.p.k = cli.p.h = cli.p.confidence = NAN;
     int c;
     double v;
     optind = 1;
@@ -715,23 +717,23 @@ int wd_cmd_report(int argc, char **argv)
                 return 2;
             }
             if (c == O_LAMBDA)
-                o.p.lambda = v;
+                cli.p.lambda = v;
             else if (c == O_L)
-                o.p.L = v;
+                cli.p.L = v;
             else if (c == O_K)
-                o.p.k = v;
+                cli.p.k = v;
             else if (c == O_H)
-                o.p.h = v;
+                cli.p.h = v;
             else if (c == O_CONF)
-                o.p.confidence = v;
+                cli.p.confidence = v;
             else if (v != floor(v) || v < 2 || v > 10000) {
                 fprintf(stderr, "slicewarden report: --baseline-results takes 2 to 10000\n");
                 return 2;
             } else
-                o.p.baseline_n = (int)v;
+                cli.p.baseline_n = (int)v;
             break;
-        case O_BFROM: sw_strlcpy(o.baseline_from, optarg, sizeof o.baseline_from); break;
-        case O_BTO: sw_strlcpy(o.baseline_to, optarg, sizeof o.baseline_to); break;
+        case O_BFROM: sw_strlcpy(cli.baseline_from, optarg, sizeof cli.baseline_from); break;
+        case O_BTO: sw_strlcpy(cli.baseline_to, optarg, sizeof cli.baseline_to); break;
         case 'o': output = optarg; break;
         case 'h': usage(stdout); return 0;
         default: usage(stderr); return 2;
@@ -751,10 +753,6 @@ int wd_cmd_report(int argc, char **argv)
     }
     sw_error err;
     sw_error_clear(&err);
-    if (wd_drift_opts_check(&o, &err) != SW_OK) {
-        fprintf(stderr, "slicewarden report: %s\n", err.msg);
-        return 2;
-    }
     static wd_config cfg;
     static scanners ss;
     pool pl = {0};
@@ -762,6 +760,25 @@ int wd_cmd_report(int argc, char **argv)
     int status = 2;
     rp_scanner_section *sec = NULL;
     if (wd_open_store_ro(config, dbpath, &cfg, &d, &err) != SW_OK)
+        goto out;
+    o = cfg.drift;
+    if (isfinite(cli.p.lambda))
+        o.p.lambda = cli.p.lambda;
+    if (isfinite(cli.p.L))
+        o.p.L = cli.p.L;
+    if (isfinite(cli.p.k))
+        o.p.k = cli.p.k;
+    if (isfinite(cli.p.h))
+        o.p.h = cli.p.h;
+    if (isfinite(cli.p.confidence))
+        o.p.confidence = cli.p.confidence;
+    if (cli.p.baseline_n)
+        o.p.baseline_n = cli.p.baseline_n;
+    if (cli.baseline_from[0] || cli.baseline_to[0]) {
+        sw_strlcpy(o.baseline_from, cli.baseline_from, sizeof o.baseline_from);
+        sw_strlcpy(o.baseline_to, cli.baseline_to, sizeof o.baseline_to);
+    }
+    if (wd_drift_opts_check(&o, &err) != SW_OK)
         goto out;
     if (!images)
         images = cfg.images;

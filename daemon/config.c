@@ -9,6 +9,7 @@
 #include <string.h>
 #include <strings.h>
 
+#include "trends.h"
 #include "wd.h"
 
 typedef enum ftype { F_STR, F_INT, F_DBL, F_BOOL, F_ENUM } ftype;
@@ -52,6 +53,15 @@ static const field config_fields[] = {
     D("alert", "retry_seconds", wd_config, alert_retry_seconds, "300", 1, 86400, "retry a failed alert command after this long"),
     D("alert", "timeout_seconds", wd_config, alert_timeout_seconds, "30", 1, 3600, "kill an alert command that runs longer than this"),
     I("alert", "max_attempts", wd_config, alert_max_attempts, "10", 1, 1000, "give an alert up after this many failed attempts"),
+    D("drift", "lambda", wd_config, drift.p.lambda, NULL, 0.01, 1, "EWMA weight of the newest result"),
+    D("drift", "ewma_L", wd_config, drift.p.L, NULL, 0.5, 10, "EWMA limits in standard deviations"),
+    D("drift", "cusum_k", wd_config, drift.p.k, NULL, 0, 10, "CUSUM allowance (standard deviations)"),
+    D("drift", "cusum_h", wd_config, drift.p.h, NULL, 0.1, 50, "CUSUM decision interval (standard deviations)"),
+    I("drift", "baseline_results", wd_config, drift.p.baseline_n, NULL, 2, 10000, "the baseline is the first N accepted results ..."),
+    S("drift", "baseline_from", wd_config, drift.baseline_from, NULL, "... or those acquired from this date (ISO 8601)"),
+    S("drift", "baseline_to", wd_config, drift.baseline_to, NULL, "... until before this date"),
+    I("drift", "close_after", wd_config, drift.p.close_after, NULL, 1, 1000, "a drift episode ends after this many results in control"),
+    D("drift", "confidence", wd_config, drift.p.confidence, NULL, 0.5, 0.999, "confidence of the trend's intervals"),
     E("log", "level", wd_config, log_level, "info", log_levels, "debug, info, warning or error"),
 };
 
@@ -376,6 +386,7 @@ static sw_status parse(const char *path, ini_handler h, parse_ctx *ctx, sw_error
 void wd_config_default(wd_config *c)
 {
     memset(c, 0, sizeof *c);
+    an_drift_params_default(&c->drift.p); /* the [drift] fields' defaults live in analysis/ */
     apply_defaults(config_fields, NFIELDS(config_fields), c);
 }
 
@@ -391,6 +402,12 @@ sw_status wd_config_load(wd_config *c, const char *path, sw_error *err)
         st = sw_error_set(err, SW_EINVAL, "%s: [watch] folder must not be empty", path);
     if (st == SW_OK && !tmp->database[0])
         st = sw_error_set(err, SW_EINVAL, "%s: [watch] database must not be empty", path);
+    if (st == SW_OK) {
+        sw_error e2;
+        sw_error_clear(&e2);
+        if (wd_drift_opts_check(&tmp->drift, &e2) != SW_OK)
+            st = sw_error_set(err, SW_EINVAL, "%s: [drift]: %s", path, e2.msg);
+    }
     if (st == SW_OK) {
         sw_strlcpy(tmp->path, path, sizeof tmp->path);
         *c = *tmp;

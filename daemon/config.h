@@ -8,6 +8,7 @@
 #include <stdio.h>
 
 #include "analysis.h"
+#include "drift.h"
 #include "sw.h"
 
 #define WD_DEFAULT_CONFIG "/etc/slicewarden/slicewarden.conf"
@@ -25,6 +26,13 @@ typedef struct wd_tol_rule {
     char series_type[16]; /* "t1", "t2", "3d" or "*" */
     an_tolerance tol;
 } wd_tol_rule;
+
+/* Drift statistics' settings ([drift]; the report's command line may override them). */
+typedef struct wd_drift_opts {
+    an_drift_params p;      /* lambda, L, k, h, baseline_n, confidence, close_after */
+    char baseline_from[32]; /* ISO 8601 date or date-time; with baseline_to: the baseline period */
+    char baseline_to[32];   /* [from, to); both empty: the first p.baseline_n accepted results */
+} wd_drift_opts;
 
 typedef struct wd_config {
     /* [watch] */
@@ -51,6 +59,8 @@ typedef struct wd_config {
     double alert_timeout_seconds; /* a command running longer is killed */
     int alert_max_attempts;       /* failed attempts before an alert is given up */
     char images[PATH_MAX];        /* annotated PNGs; empty: "images" beside the watch folder */
+    /* [drift] */
+    wd_drift_opts drift;
     /* [log] */
     int log_level;        /* wd_log_level */
     /* [aliases] station = alias */

@@ -13,11 +13,7 @@
 #include "sw.h"
 
 /* ---- settings ---- */
-typedef struct wd_drift_opts {
-    an_drift_params p;      /* lambda, L, k, h, baseline_n, confidence (baseline_from/to unused) */
-    char baseline_from[32]; /* ISO 8601 date or date-time; with baseline_to: the baseline period */
-    char baseline_to[32];   /* [from, to); both empty: the first p.baseline_n accepted results */
-} wd_drift_opts;
+/* wd_drift_opts is in config.h: the [drift] section of the configuration. */
 void wd_drift_opts_default(wd_drift_opts *o);
 /* Checks the parameters and the period's dates; err names the bad one. */
 sw_status wd_drift_opts_check(const wd_drift_opts *o, sw_error *err);
