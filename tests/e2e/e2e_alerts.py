@@ -15,8 +15,8 @@ import subprocess
 import sys
 import time
 
-from swe2e import (SW, Daemon, check, cleanup, finish, query, restate_thickness, simulate,
-                   stored_series, tmpdir, wait_for, write_config)
+from swe2e import (SW, Daemon, check, cleanup, finish, query, simulate, stored_series, tmpdir,
+                   wait_for, write_config)
 
 base = tmpdir("sw-e2e-alerts-")
 inbox = os.path.join(base, "incoming")
@@ -49,9 +49,9 @@ r = subprocess.run([SW, "check", "-c", conf], capture_output=True, text=True)
 check(r.returncode == 0 and "timeout_seconds = 20" in r.stdout and "images = " in r.stdout,
       "check accepts the configuration and prints the alert time limit and the images folder")
 
-thick, _ = simulate(os.path.join(base, "src", "thick"), "--thickness", "6.5", seed=41,
-                    station="ALDMR2")
-restate_thickness(thick, 5.0)
+# 6.5 mm slices where 5 mm were prescribed (SliceThickness says 5).
+thick, _ = simulate(os.path.join(base, "src", "thick"), "--thickness", "6.5", "--prescribed", "5",
+                    seed=41, station="ALDMR2")
 normal, _ = simulate(os.path.join(base, "src", "normal"), seed=42, station="ALDMR1")
 
 d = Daemon(inbox, db, "-c", conf)

@@ -13,9 +13,8 @@ import signal
 import sys
 import time
 
-from swe2e import (Daemon, check, cleanup, files_under, finish, integrity_ok, query,
-                   restate_thickness, run_once, simulate, sha256, tmpdir, tree_hashes,
-                   write_config)
+from swe2e import (Daemon, check, cleanup, files_under, finish, integrity_ok, query, run_once,
+                   simulate, sha256, tmpdir, tree_hashes, write_config)
 
 mode = sys.argv[1] if len(sys.argv) > 1 else "same-fs"
 random.seed(int(os.environ.get("SW_SEED", "20240501")))
@@ -41,9 +40,9 @@ conf = write_config(os.path.join(base, "slicewarden.conf"),
                     alert={"command": "echo \"$SLICEWARDEN_METRIC $SLICEWARDEN_SERIES\" >> '%s'"
                                       % alerts})
 
-# The backlog: six series (one with a thick slice that breaches), a truncated file, a text file
+# The backlog: six series (one with 6.5 mm slices where 5 mm were prescribed: a breach), a truncated file, a text file
 # and a second copy of one file.
-specs = [("t1", 21, "ALDMR1", []), ("t1", 22, "ALDMR2", ["--thickness", "6.5"]),
+specs = [("t1", 21, "ALDMR1", []), ("t1", 22, "ALDMR2", ["--thickness", "6.5", "--prescribed", "5"]),
          ("t2", 23, "ALDMR3", ["--shuffle"]), ("t1", 24, "ALDMR1", ["--enhanced"]),
          ("t1", 25, "ALDMR2", []), ("t2", 26, "ALDMR1", [])]
 originals = []
@@ -51,8 +50,6 @@ uids = set()
 for i, (kind, seed, station, extra) in enumerate(specs):
     files, truth = simulate(os.path.join(src, "s%d" % i), *extra, series=kind, seed=seed,
                             station=station)
-    if "--thickness" in extra:
-        restate_thickness(files, 5.0)  # 6.5 mm slices where 5 mm were prescribed
     for f in files:
         dst = os.path.join(inbox, "s%d" % i, os.path.basename(f))
         os.makedirs(os.path.dirname(dst), exist_ok=True)

@@ -55,17 +55,6 @@ def simulate(outdir, *args, series="t1", seed=1, station="ALDMR1"):
     return files, truth
 
 
-def restate_thickness(files, mm):
-    """Rewrites SliceThickness (0018,0050) in each file with pydicom: a scanner whose slices come
-    out thicker than prescribed states the prescription, not what it did (the simulator writes
-    the true profile's FWHM there)."""
-    import pydicom
-    for p in files:
-        ds = pydicom.dcmread(p)
-        ds.SliceThickness = mm
-        ds.save_as(p)
-
-
 def sha256(path):
     h = hashlib.sha256()
     with open(path, "rb") as f:
