@@ -73,9 +73,16 @@ def analyze_json(*args):
     return rc, doc, err
 
 
-def not_a_signal(rc, what):
-    # subprocess reports death by signal as a negative status (a crash, an abort, a sanitizer trap)
-    return check(rc >= 0, what + ": exited normally", "killed by signal %d" % -rc)
+SANITIZER = re.compile(r"runtime error:|AddressSanitizer|LeakSanitizer|UndefinedBehaviorSanitizer")
+
+
+def not_a_signal(rc, what, err=""):
+    """Death by a signal (negative status: a crash, an abort) or a sanitizer report (the build with
+    -DSW_SANITIZE=ON) is a defect whatever the exit status says."""
+    ok = check(rc >= 0, what + ": exited normally", "killed by signal %d" % -rc)
+    m = SANITIZER.search(err)
+    line = err[max(0, err.rfind("\n", 0, m.start()) + 1):].split("\n")[0] if m else ""
+    return check(m is None, what + ": no sanitizer report", line[:300]) and ok
 
 
 # ---- series ------------------------------------------------------------------------------------
@@ -169,7 +176,7 @@ def by_slice(s):
 
 def test_plain(d, truth):
     rc, doc, err = analyze_json(d)
-    not_a_signal(rc, "analyze --json plain")
+    not_a_signal(rc, "analyze --json plain", err)
     check(rc == 0, "analyze --json plain: exit 0 (all pass)", "exit %d, stderr %s" % (rc, err))
     contract(doc, "plain")
     s = doc["series"][0]
@@ -259,6 +266,7 @@ def test_plain(d, truth):
     check(s.get("verdict") == "pass", "plain: series verdict pass")
 
     rc, out, err = analyze(d)
+    not_a_signal(rc, "analyze (text) plain", err)
     check(rc == 0, "analyze (text) plain: exit 0", "exit %d" % rc)
     mt = re.search(r"slice thickness, slice 1:\s+([0-9.]+)\s", out)
     check(mt is not None and abs(float(mt.group(1)) - t["corrected_mm"]) <= 0.0051,
@@ -326,7 +334,7 @@ def test_variants(root, ref_doc):
                   ds.SOPClassUID == "1.2.840.10008.5.1.4.1.1.4.1",
                   "enhanced: one Enhanced MR file of 11 frames (pydicom)")
         rc, doc, err = analyze_json(d)
-        not_a_signal(rc, "analyze " + name)
+        not_a_signal(rc, "analyze " + name, err)
         check(rc == 0 and doc is not None and len(doc["series"]) == 1, name + ": exit 0, one element",
               "exit %d %s" % (rc, err.strip()[:200]))
         if doc and doc["series"]:
@@ -358,7 +366,7 @@ def test_conversions(root, plain, ref_doc):
         check(ds.file_meta.TransferSyntaxUID == ts, name + ": copies carry transfer syntax " + ts,
               str(ds.file_meta.TransferSyntaxUID))
         rc, doc, err = analyze_json(d)
-        not_a_signal(rc, "analyze " + name)
+        not_a_signal(rc, "analyze " + name, err)
         check(rc == 0 and doc is not None and len(doc["series"]) == 1, name + ": exit 0, one element",
               "exit %d %s" % (rc, err.strip()[:200]))
         if doc and doc["series"]:
@@ -370,7 +378,7 @@ def test_conversions(root, plain, ref_doc):
 def test_t2(root):
     d, truth = simulate(root, "t2", ["--series", "t2", "--snr", "100", "--seed", "11"])
     rc, doc, err = analyze_json(d)
-    not_a_signal(rc, "analyze t2")
+    not_a_signal(rc, "analyze t2", err)
     check(rc == 0, "t2: exit 0", "exit %d %s" % (rc, err.strip()[:200]))
     contract(doc, "t2")
     ser = doc["series"]
@@ -445,7 +453,7 @@ def png_problem(path):
 def test_png(root, plain, ref_doc):
     out = os.path.join(root, "png")
     rc, doc, err = analyze_json("--png", out, plain)
-    not_a_signal(rc, "analyze --png")
+    not_a_signal(rc, "analyze --png", err)
     check(rc == 0, "--png: exit 0", "exit %d %s" % (rc, err.strip()[:200]))
     pngs = sorted(f for f in os.listdir(out)) if os.path.isdir(out) else []
     check(any(f.endswith("_e1_s01.png") for f in pngs) and any(f.endswith("_e1_s11.png") for f in pngs),
@@ -474,7 +482,7 @@ def test_thick(root):
     check(abs(float(ds.SliceThickness) - 5.0) < 1e-6, "thick: the files prescribe 5.0 mm (pydicom)",
           str(ds.SliceThickness))
     rc, doc, err = analyze_json(d)
-    not_a_signal(rc, "analyze thick")
+    not_a_signal(rc, "analyze thick", err)
     check(rc == 1, "thick: exit 1 (a fail)", "exit %d" % rc)
     if doc and doc.get("series"):
         s = doc["series"][0]
@@ -583,7 +591,7 @@ def bad_inputs(root, plain):
 def test_bad(root, plain):
     for label, path, names in bad_inputs(root, plain):
         rc, doc, err = analyze_json(path)
-        not_a_signal(rc, label)
+        not_a_signal(rc, label, err)
         check(rc in (1, 2), label + ": exit 1 (unmeasurable) or 2 (input error)", "exit %d" % rc)
         if rc == 1:
             ser = doc.get("series", []) if doc else []
@@ -608,7 +616,7 @@ def test_bad(root, plain):
     blob = open(victim, "rb").read()
     open(victim, "wb").write(blob[:len(blob) // 3])
     rc, doc, err = analyze_json(d)
-    not_a_signal(rc, "truncated file in a series")
+    not_a_signal(rc, "truncated file in a series", err)
     check(rc == 2 and os.path.basename(victim) in err, "truncated file in a series: exit 2, named",
           "exit %d %r" % (rc, err.strip()[:200]))
     ser = doc.get("series", []) if doc else []
@@ -625,7 +633,7 @@ def test_usage(plain):
                         ("bad --half-level", ["--half-level", "median", plain]),
                         ("--png without a folder", ["--png"])):
         rc, out, err = analyze(*argv)
-        not_a_signal(rc, "usage: " + label)
+        not_a_signal(rc, "usage: " + label, err)
         check(rc == 2, "usage: %s: exit 2" % label, "exit %d" % rc)
         check("usage" in err or "unknown" in err or "unrecognized" in err or "requires" in err,
               "usage: %s: says why on stderr" % label, repr(err[:200]))
