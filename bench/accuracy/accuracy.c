@@ -1097,14 +1097,14 @@ int main(int argc, char **argv)
     int g4 = bd_hi.n > 1 && fabs(bd_hi.mean) <= 0.1, g5 = bd_hi.n > 1 && bd_hi.sd <= 0.2;
     int g6 = e_th > 0 && m_th == e_th && m_bd == e_bd && m_pm == e_pm;
     int g7 = cls_n[IN_OUTSIDE] == cls_reason[IN_OUTSIDE];
-    fprintf(o, "  %s thickness |bias| at SNR >= 50: %.3f mm (goal <= 0.05, n %d)\n", mark(g1),
+    fprintf(o, "  %s thickness |bias| at SNR >= 50: %.4f mm (goal <= 0.05, n %d)\n", mark(g1),
             fabs(th_hi.mean), th_hi.n);
-    fprintf(o, "  %s thickness SD at SNR >= 50: %.3f mm (goal <= 0.05)\n", mark(g2), th_hi.sd);
-    fprintf(o, "  %s thickness SD at SNR 15-20: %.3f mm (goal <= 0.15, n %d)\n", mark(g3), th_15.sd,
+    fprintf(o, "  %s thickness SD at SNR >= 50: %.4f mm (goal <= 0.05)\n", mark(g2), th_hi.sd);
+    fprintf(o, "  %s thickness SD at SNR 15-20: %.4f mm (goal <= 0.15, n %d)\n", mark(g3), th_15.sd,
             th_15.n);
-    fprintf(o, "  %s bar difference |bias| at SNR >= 50: %.3f mm (goal <= 0.1, n %d)\n", mark(g4),
+    fprintf(o, "  %s bar difference |bias| at SNR >= 50: %.4f mm (goal <= 0.1, n %d)\n", mark(g4),
             fabs(bd_hi.mean), bd_hi.n);
-    fprintf(o, "  %s bar difference SD at SNR >= 50: %.3f mm (goal <= 0.2)\n", mark(g5), bd_hi.sd);
+    fprintf(o, "  %s bar difference SD at SNR >= 50: %.4f mm (goal <= 0.2)\n", mark(g5), bd_hi.sd);
     fprintf(o, "  %s measured at SNR >= 15, strips inside: thickness %d/%d, bars %d/%d, position "
                "model %d/%d\n",
             mark(g6), m_th, e_th, m_bd, e_bd, m_pm, e_pm);
