@@ -540,6 +540,28 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
         sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
         goto out;
     }
+    /* Second pass: smoothing over an eighth of the strip, so that at low SNR a noise dip does not
+     * stop the walks inside the plateau (the crossings themselves come from the raw profile). The
+     * ends' zones are left out of the smoothing so that their brightness does not leak inward. */
+    if (0.12 * (hi0 - lo0) * step > 4.0) {
+        for (int i = 0; i < n; i++)
+            g[i] = i < edge || i > n - 1 - edge ? NAN : p[i];
+        an_smooth(g, n, (int)(0.12 * (hi0 - lo0)) | 1, ps);
+        for (int i = 0; i < n; i++)
+            if (i < edge || i > n - 1 - edge)
+                ps[i] = p[i];
+        ip = edge;
+        for (int i = edge; i < n - edge; i++)
+            if (ps[i] > ps[ip])
+                ip = i;
+        pmax = ps[ip];
+        lo0 = an_walk_cross(ps, n, ip, -1, 0.5 * pmax, 1);
+        hi0 = an_walk_cross(ps, n, ip, +1, 0.5 * pmax, 1);
+        if (!isfinite(lo0) || !isfinite(hi0) || lo0 < edge || hi0 > n - 1 - edge) {
+            sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
+            goto out;
+        }
+    }
     double c0 = 0.5 * (lo0 + hi0), L0 = (hi0 - lo0) * step;
     if (!(L0 > 3.0) || !(pmax > 0)) {
         sw_strlcpy(out->reason, "profile malformed: no strip plateau", sizeof out->reason);
@@ -580,7 +602,7 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
             bs += p[i], bc++;
     double B = bc >= 10 ? bs / bc : NAN;
     out->floor = B;
-    double dldp, dldp_hi;
+    double dldp, dldp_hi, h = 1.0;
     /* first guesses of the crossings, for the noise there after the shading correction */
     double g0 = an_walk_cross(ps, n, ip, -1, 0.5 * P, 1), g1 = an_walk_cross(ps, n, ip, +1, 0.5 * P, 1);
     double gc = gain[(int)lround(c0)];
@@ -592,17 +614,30 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
         goto out;
     }
     out->half_level = 0.5 * (lvl + lvl_hi);
-    /* Edge windows: the 25-75 % rise on each side sets the fit's half width. */
-    double r25 = an_walk_cross(ps, n, ip, -1, 0.25 * pmax, 1), r75 = an_walk_cross(ps, n, ip, -1, 0.75 * pmax, 1);
-    double s25 = an_walk_cross(ps, n, ip, +1, 0.25 * pmax, 1), s75 = an_walk_cross(ps, n, ip, +1, 0.75 * pmax, 1);
-    double rise = 0.5 * ((isfinite(r25) && isfinite(r75) ? r75 - r25 : 4 / step) +
-                         (isfinite(s25) && isfinite(s75) ? s25 - s75 : 4 / step)) * step;
-    double h = fmin(fmax(H_RISE * rise, 1.0), H_LEN * L0);
     an_xing xl, xh;
     double glo = an_walk_cross(ps, n, ip, -1, lvl, 1), ghi = an_walk_cross(ps, n, ip, +1, lvl_hi, 1);
     if (!isfinite(glo) || !isfinite(ghi)) {
         sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
         goto out;
+    }
+    /* Edge windows: a first fit over +-4 mm gives each edge's slope at its half level, and the
+     * 25-75 % rise of a straight edge, P / (2 |slope|), averaged over the strip's two edges (one
+     * shape for a symmetric slice profile), sets the final half width. Every edge is at least the
+     * slot's thickness over tan(theta) wide (10 mm for 1 mm at 10:1), so 4 mm never overreaches; a
+     * rise read off the smoothed profile instead would be stretched by noise on the plateau and on
+     * the Rician floor. */
+    {
+        an_xing f0, f1;
+        double h0 = fmin(4.0, H_LEN * L0);
+        double e0 = fmin(h0, (glo - edge) * step), e1 = fmin(h0, (n - 1 - edge - ghi) * step);
+        double ks = 0;
+        int kn = 0;
+        if (e0 >= 1.0 && !an_xing_find_in(NULL, p, edge, n - 1 - edge, glo, lvl, e0 / step, +1, &f0) && f0.slope > 0)
+            ks += f0.slope / step, kn++;
+        if (e1 >= 1.0 && !an_xing_find_in(NULL, p, edge, n - 1 - edge, ghi, lvl_hi, e1 / step, -1, &f1) && f1.slope < 0)
+            ks -= f1.slope / step, kn++;
+        double rise = kn && ks > 0 ? 0.5 * P / (ks / kn) : 8.0;
+        h = fmin(fmax(H_RISE * rise, 3.0), H_LEN * L0);
     }
     /* Near an end of the insert the fit window shrinks (to 0.3 mm) rather than reach into it. */
     double hlo = fmin(h, (glo - edge) * step), hhi = fmin(h, (n - 1 - edge - ghi) * step);
@@ -622,6 +657,30 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     if (!(xh.idx > xl.idx)) {
         sw_strlcpy(out->reason, "profile malformed: crossings out of order", sizeof out->reason);
         goto out;
+    }
+    /* The crossings must be the profile's only ones: away from them (beyond twice the fit window)
+     * the smoothed profile stays above the level inside and below it outside. A noisy or irregular
+     * profile that fails this is not measured rather than measured wrongly. */
+    {
+        int mg2 = (int)ceil(fmax(2 * fmax(hlo, hhi), 0.05 * L0) / step), wide = (int)(0.25 * L0 / step);
+        int bad_in = 0, n_in = 0, bad_out = 0, n_out = 0;
+        for (int i = (int)xl.idx + mg2; i <= (int)xh.idx - mg2; i++, n_in++)
+            bad_in += ps[i] < (i < c0 ? lvl : lvl_hi);
+        for (int i = (int)xl.idx - wide; i <= (int)xl.idx - mg2; i++)
+            if (i >= edge) {
+                n_out++;
+                bad_out += ps[i] > lvl;
+            }
+        for (int i = (int)xh.idx + mg2; i <= (int)xh.idx + wide; i++)
+            if (i <= n - 1 - edge) {
+                n_out++;
+                bad_out += ps[i] > lvl_hi;
+            }
+        if ((n_in > 0 && bad_in > 0.1 * n_in) || (n_out > 0 && bad_out > 0.1 * n_out)) {
+            sw_strlcpy(out->reason, "profile malformed: the strip crosses its half level more than twice",
+                       sizeof out->reason);
+            goto out;
+        }
     }
     out->cross_lo_mm = ins->u_lo + xl.idx * step;
     out->cross_hi_mm = ins->u_lo + xh.idx * step;
