@@ -77,6 +77,21 @@ static void settings_hash(settings *s)
     free(text);
 }
 
+/* Makes a relative path (not empty) absolute against the working folder, in place. */
+static sw_status absolute(char *p, size_t n, sw_error *err)
+{
+    char cwd[PATH_MAX], buf[PATH_MAX * 2];
+    if (!p[0] || p[0] == '/')
+        return SW_OK;
+    if (!getcwd(cwd, sizeof cwd))
+        return sw_error_set(err, SW_EIO, "working folder: %s", strerror(errno));
+    snprintf(buf, sizeof buf, "%s/%s", cwd, p);
+    if (strlen(buf) >= n)
+        return sw_error_set(err, SW_EINVAL, "%s: path too long", p);
+    sw_strlcpy(p, buf, n);
+    return SW_OK;
+}
+
 sw_status wd_settings_load(const char *path, const char *folder, const char *database,
                            double quiet, wd_settings *s, sw_error *err)
 {
@@ -92,6 +107,16 @@ sw_status wd_settings_load(const char *path, const char *folder, const char *dat
         return sw_error_set(err, SW_EINVAL, "--db: path too long");
     if (quiet >= 0)
         s->cfg.quiet_seconds = quiet;
+    /* Paths are stored in the database: make them absolute, so that they mean the same after a
+     * restart from another working folder. */
+    char real[PATH_MAX];
+    if (realpath(s->cfg.folder, real))
+        sw_strlcpy(s->cfg.folder, real, sizeof s->cfg.folder);
+    char *const rel[] = {s->cfg.database, s->cfg.archive, s->cfg.quarantine, s->cfg.ignored,
+                         s->cfg.images};
+    for (size_t i = 0; i < sizeof rel / sizeof rel[0]; i++)
+        if ((rc = absolute(rel[i], sizeof s->cfg.folder, err)) != SW_OK)
+            return rc;
     wd_config_resolve(&s->cfg);
     an_model_large(&s->model);
     if (s->cfg.model_file[0] && (rc = wd_model_load(&s->model, s->cfg.model_file, err)) != SW_OK)
@@ -777,7 +802,11 @@ static sw_status finish_move(watcher *w, const fmove *m, sw_error *err)
     if (!w->s->cfg.move_files)
         return SW_OK;
     target[0] = '\0';
-    if (m->location && *m->location) {
+    struct stat at_path, at_loc;
+    int same_inode = m->location && *m->location && stat(m->path, &at_path) == 0 &&
+                     stat(m->location, &at_loc) == 0 && at_path.st_dev == at_loc.st_dev &&
+                     at_path.st_ino == at_loc.st_ino;
+    if (m->location && *m->location && !same_inode) {
         sw_error e2;
         sw_error_clear(&e2);
         if (wd_file_hash(m->location, have, &e2) == SW_OK) {
@@ -1067,6 +1096,66 @@ static int state_cb(void *ctx, const db_series_rec *r)
 
 static int db_retryable(sw_status st) { return st == SW_EBUSY || st == SW_EDB || st == SW_EIO; }
 
+typedef struct file_look {
+    db_file_state state;
+    int64_t series_id;
+    char path[PATH_MAX];
+    char hash[WD_HASH_MAX];
+    char location[PATH_MAX];
+    char reason[512];
+    int found;
+} file_look;
+
+static int file_cb(void *ctx, const db_file_rec *r)
+{
+    file_look *f = ctx;
+    f->state = r->state;
+    f->series_id = r->series_id;
+    sw_strlcpy(f->path, r->path, sizeof f->path);
+    sw_strlcpy(f->hash, r->content_hash, sizeof f->hash);
+    sw_strlcpy(f->location, r->location, sizeof f->location);
+    sw_strlcpy(f->reason, r->reason, sizeof f->reason);
+    f->found = 1;
+    return 0;
+}
+
+/* The reason of a row recorded for a file that another row already owns (renamed within the
+ * watch folder): such a row's file is never moved on its own. */
+#define SAME_FILE "the same file as file "
+
+/* The file at path is file `holder`'s, renamed or moved within the watch folder (a receiver that
+ * renames its study folder at the end, or a person tidying up): the holder follows it, and the new
+ * row only records the sighting. */
+static sw_status follow_rename(watcher *w, int64_t id, const char *path, const char *hash,
+                               int64_t holder, const file_look *hl, const char *was, sw_error *err)
+{
+    char why[PATH_MAX + 96];
+    snprintf(why, sizeof why, SAME_FILE "%lld, moved here from %s", (long long)holder, was);
+    sw_status rc = db_file_transition(w->d, id, DB_FILE_SEEN, DB_FILE_IGNORED, why, err);
+    if (rc == SW_OK)
+        rc = db_file_set_location(w->d, holder, path, err);
+    if (rc != SW_OK)
+        return rc;
+    wd_info("%s: file %lld moved within the watch folder (was %s); followed", path,
+            (long long)holder, was);
+    wseries *s = series_find(w, hl->series_id);
+    for (int i = 0; s && i < s->nfiles; i++)
+        if (s->files[i].id == holder) {
+            char *copy = strdup(path);
+            if (copy) {
+                free(s->files[i].path);
+                s->files[i].path = copy;
+            }
+        }
+    if (hl->state == DB_FILE_STORED) {
+        /* Measured and stored, but its move had not happened: it happens from here. */
+        fmove m = {.id = holder, .path = path, .hash = hash, .state = DB_FILE_STORED,
+                   .reason = "", .location = "", .series_id = hl->series_id};
+        (void)move_or_report(w, &m);
+    }
+    return SW_OK;
+}
+
 /* seen -> parsed (or a final state): reads the file's header and pixels, files it in its series. */
 static int parse(watcher *w, int64_t id, const char *path, const wd_blob *b)
 {
@@ -1108,6 +1197,20 @@ static int parse(watcher *w, int64_t id, const char *path, const wd_blob *b)
     if ((st = db_file_by_sop(w->d, d->sop_instance_uid, &holder, &err)) != SW_OK)
         goto out;
     if (holder && holder != id) {
+        file_look hl;
+        memset(&hl, 0, sizeof hl);
+        if ((st = db_file_get(w->d, holder, file_cb, &hl, &err)) != SW_OK)
+            goto out;
+        const char *was = hl.location[0] ? hl.location : hl.path;
+        struct stat gone;
+        int live = hl.state == DB_FILE_PARSED || hl.state == DB_FILE_MEASURED ||
+                   hl.state == DB_FILE_STORED;
+        /* The same bytes, and the holder's file is no longer where it was in the folder. */
+        if (live && !strcmp(hl.hash, hash) && lstat(was, &gone) != 0 && errno == ENOENT &&
+            wd_path_inside(was, w->s->cfg.folder)) {
+            st = follow_rename(w, id, path, hash, holder, &hl, was, &err);
+            goto out;
+        }
         snprintf(why, sizeof why, "duplicate of file %lld (same SOPInstanceUID %s)",
                  (long long)holder, d->sop_instance_uid);
         st = to_final(w, id, path, hash, DB_FILE_SEEN, DB_FILE_IGNORED, why, 0, &err);
@@ -1189,25 +1292,6 @@ out:
     }
     dcm_file_free(f);
     return result;
-}
-
-typedef struct file_look {
-    db_file_state state;
-    int64_t series_id;
-    char location[PATH_MAX];
-    char reason[512];
-    int found;
-} file_look;
-
-static int file_cb(void *ctx, const db_file_rec *r)
-{
-    file_look *f = ctx;
-    f->state = r->state;
-    f->series_id = r->series_id;
-    sw_strlcpy(f->location, r->location, sizeof f->location);
-    sw_strlcpy(f->reason, r->reason, sizeof f->reason);
-    f->found = 1;
-    return 0;
 }
 
 /* A known file in state parsed: back into its series in memory (after a restart, or an event for
@@ -1330,6 +1414,11 @@ static int take_file(watcher *w, const char *path)
             result = RETRY;
             goto out;
         }
+    }
+    if (db_file_state_final(fl.state) && !strncmp(fl.reason, SAME_FILE, strlen(SAME_FILE))) {
+        wd_debug("%s: %s", path, fl.reason); /* its owner moves it */
+        result = SKIPPED;
+        goto out;
     }
     if (db_file_state_final(fl.state)) {
         fmove m = {.id = id, .path = path, .hash = hash, .state = fl.state, .reason = fl.reason,
@@ -1642,7 +1731,12 @@ static int pend_file_cb(void *ctx, const db_file_rec *r)
         p->cap = c;
     }
     pend_file *f = &p->v[p->n];
-    if (!(f->path = strdup(r->path)))
+    /* Where it is now: a file followed through a rename in the folder has its location set. */
+    const char *where = r->path;
+    struct stat st;
+    if (r->location[0] && stat(r->location, &st) == 0)
+        where = r->location;
+    if (!(f->path = strdup(where)))
         return 1;
     f->id = r->id;
     f->state = r->state;
