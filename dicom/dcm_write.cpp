@@ -27,7 +27,6 @@
 #define MR_IMAGE_STORAGE "1.2.840.10008.5.1.4.1.1.4"
 #define ENHANCED_MR_IMAGE_STORAGE "1.2.840.10008.5.1.4.1.1.4.1"
 #define STORED_MAX 4095 /* BitsStored 12 */
-#define DCM_DEFAULT_PIXEL_BANDWIDTH_HZ 130.0
 
 namespace
 {
@@ -896,12 +895,12 @@ sw_status write_enhanced(W &w, const char *path, const dcm_image *f, int n)
         if (!std::isfinite(mhz))
             w.fail(SW_EINVAL, "ImagingFrequency is required in an Enhanced MR image");
         w.put_ds2(it, DCM_TransmitterFrequency, mhz);
-        /* Type 1 here. A caller that does not say gets 130 Hz per pixel, the simulator's
-         * default readout bandwidth (documented in dicom.h). */
+        /* Type 1 here, and a number of the acquisition: required, never made up. */
         double bw = f0->pixel_bandwidth_hz;
         if (!(bw > 0) || !std::isfinite(bw))
-            bw = DCM_DEFAULT_PIXEL_BANDWIDTH_HZ;
-        w.put_ds(it, DCM_PixelBandwidth, &bw, 1);
+            w.fail(SW_EINVAL, "PixelBandwidth is required in an Enhanced MR image");
+        else
+            w.put_ds(it, DCM_PixelBandwidth, &bw, 1);
     }
     it = w.item(sh, DCM_MRReceiveCoilSequence);
     if (it) {

@@ -153,9 +153,8 @@ sw_status dcm_write_mr(const char *path, const dcm_image *img, sw_error *err);
  * to 0..4095. Dimensions: StackID (stack_id, default "1"), InStackPositionNumber (in_stack_position
  * when every frame has one, else the rank of the position along the slice normal) and
  * EffectiveEchoTime with echo_number as its index. Also required here (type 1 in this IOD):
- * echo_time_ms, repetition_time_ms, slice_thickness_mm, magnetic_field_t, imaging_frequency_mhz
- * and echo_number 1..65535. PixelBandwidth is type 1 too: pixel_bandwidth_hz when > 0, else 130
- * Hz per pixel (the simulator's readout bandwidth; set the field to write the true one). */
+ * echo_time_ms, repetition_time_ms, slice_thickness_mm, magnetic_field_t, imaging_frequency_mhz,
+ * pixel_bandwidth_hz (> 0) and echo_number 1..65535. */
 sw_status dcm_write_enhanced_mr(const char *path, const dcm_image *frames, int n, sw_error *err);
 
 /* A new UID in the 2.25 scheme (DICOM PS3.5 B.2: "2.25." and the decimal value of a random

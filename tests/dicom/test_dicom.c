@@ -893,6 +893,21 @@ Test(dicom, enhanced_refuses_mixed_sizes)
     cr_assert_eq(dcm_write_enhanced_mr(p, fr, 2, &e), SW_EINVAL);
     assert_message(&e, p);
     cr_assert_eq(access(p, F_OK), -1);
+    /* Type 1 numbers of the acquisition are not made up (PixelBandwidth: PS3.3 MR Imaging
+     * Modifier macro, C.8.13.5.6 from memory; RepetitionTime: MR Timing macro). */
+    free(fr[1].pixels);
+    make_image(&fr[1], 8, 8, 2);
+    strcpy(fr[1].sop_instance_uid, fr[0].sop_instance_uid);
+    fr[0].pixel_bandwidth_hz = fr[1].pixel_bandwidth_hz = 0;
+    sw_error_clear(&e);
+    cr_assert_eq(dcm_write_enhanced_mr(p, fr, 2, &e), SW_EINVAL);
+    cr_assert_not_null(strstr(e.msg, "PixelBandwidth"), "%s", e.msg);
+    fr[0].pixel_bandwidth_hz = fr[1].pixel_bandwidth_hz = 130;
+    fr[0].repetition_time_ms = NAN;
+    sw_error_clear(&e);
+    cr_assert_eq(dcm_write_enhanced_mr(p, fr, 2, &e), SW_EINVAL);
+    cr_assert_not_null(strstr(e.msg, "RepetitionTime"), "%s", e.msg);
+    cr_assert_eq(access(p, F_OK), -1);
     free(fr[0].pixels);
     free(fr[1].pixels);
 }
