@@ -91,6 +91,7 @@ typedef struct an_xing {
     int ok;
     double idx;    /* fractional sample index of the crossing */
     double slope;  /* dq/dt at the crossing, profile units per mm */
+    double curv;   /* d2q/dt2 at the crossing, per mm^2 */
     double ss;     /* noise gain: var(q(x*)) = sigma^2 ss */
     int i0, i1;    /* fit window */
 } an_xing;

@@ -6,6 +6,7 @@
 
 #include <stddef.h>
 
+#include "drift.h"
 #include "sw.h"
 
 #define AN_MAX_IMAGES 64    /* images of one series and echo */
@@ -127,6 +128,9 @@ typedef struct an_strip {
     double centre_unc_mm;            /* of centre_u_mm */
     double plateau_unc;              /* standard uncertainty of the plateau level (plateau_sd is the
                                         SD of the profile samples about the fitted top) */
+    double slot_kappa_per_mm;        /* (q''/q' at the high crossing - at the low one) / 24, from
+                                        the local fits: a box of width k along the strip changes the
+                                        FWHM by kappa k^2 (docs/methods.md, slot correction) */
 } an_strip;
 
 typedef struct an_thickness {

@@ -202,6 +202,7 @@ int an_xing_find_in(const an_line *l, const double *p, int lim0, int lim1, doubl
     }
     x->idx = ic + t / step;
     x->slope = c[1] + t * (2 * c[2] + 3 * t * c[3]);
+    x->curv = 2 * c[2] + 6 * c[3] * t;
     x->ss = l ? an_line_weight_ss(l, i0, m, g) : NAN;
     x->i0 = i0;
     x->i1 = i1;

@@ -479,7 +479,7 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     memset(out, 0, sizeof *out);
     out->length_mm = out->length_unc_mm = out->fwtm_mm = out->centre_u_mm = NAN;
     out->plateau = out->plateau_sd = out->half_level = out->floor = NAN;
-    out->cross_lo_mm = out->cross_hi_mm = out->plateau_unc = NAN;
+    out->cross_lo_mm = out->cross_hi_mm = out->plateau_unc = out->slot_kappa_per_mm = NAN;
     double step = par->sample_step_mm > 0 ? par->sample_step_mm : 0.1;
     double span = ins->u_hi - ins->u_lo;
     if (span / step + 1 > AN_PROFILE_MAX)
@@ -685,6 +685,14 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     out->cross_lo_mm = ins->u_lo + xl.idx * step;
     out->cross_hi_mm = ins->u_lo + xh.idx * step;
     out->length_mm = (xh.idx - xl.idx) * step;
+    /* Box widening: g = f (*) box(k) = f + k^2 f'' / 24 + ..., both at the crossing and at the
+     * plateau (P_f = P_g - k^2 g''(c) / 24, so the level moves by dl/dP times that). Solving
+     * f(x_f) = l(P_f) to first order: x_f = x_g + (k^2 / 24) [g''(x_g) - l'(P) g''(c)] / g'(x_g),
+     * so the FWHM of f is L_g + kappa k^2 with kappa the difference of those terms / 24. */
+    {
+        double pc = 2 * cq[2];
+        out->slot_kappa_per_mm = ((xh.curv - dldp_hi * pc) / xh.slope - (xl.curv - dldp * pc) / xl.slope) / 24.0;
+    }
     out->centre_u_mm = 0.5 * (out->cross_lo_mm + out->cross_hi_mm);
     an_pose_to_px(pose, out->cross_lo_mm, ins->strip_v[s], &out->cross_lo.x, &out->cross_lo.y);
     an_pose_to_px(pose, out->cross_hi_mm, ins->strip_v[s], &out->cross_hi.x, &out->cross_hi.y);

@@ -163,13 +163,22 @@ static void measure_thickness(const an_image *im, const an_pose *pose, const an_
     double a = t->top.length_mm, b = crossed ? t->bottom.length_mm : NAN;
     double sa = t->top.length_unc_mm, sbb = crossed ? t->bottom.length_unc_mm : 0;
     if (par->slot_correction && m->slot_mm > 0) {
-        /* A slot of thickness s along the normal is a box of width s / tan(angle) along the strip;
-         * for a Gaussian-like profile the FWHM adds in quadrature as 8 ln 2 times the box variance. */
-        double ka = m->slot_mm / tt, kb = m->slot_mm / tb, c = 8 * log(2.0) / 12.0;
-        if (a * a > c * ka * ka)
-            a = sqrt(a * a - c * ka * ka);
-        if (crossed && b * b > c * kb * kb)
-            b = sqrt(b * b - c * kb * kb);
+        /* The slot (thickness s along the normal) is a box of width k = s / tan(angle) along each
+         * strip, the angle the strip's own (T / L); its widening of the FWHM is kappa k^2 with the
+         * curvature term of the strip's two crossings (an_strip.slot_kappa_per_mm). Two passes, as
+         * T depends on the corrected lengths. A flat-sided (trapezoidal) edge has no curvature at
+         * its half level and gets no correction; a Gaussian-like one gets its quadrature widening. */
+        double a0 = a, b0 = b;
+        for (int pass = 0; pass < 2; pass++) {
+            double T0 = crossed ? an_corrected_thickness(a, b, tphi) : a * tt;
+            if (!(T0 > 0))
+                break;
+            double ka = m->slot_mm * a / T0, kb = crossed ? m->slot_mm * b / T0 : 0;
+            if (isfinite(t->top.slot_kappa_per_mm))
+                a = a0 + t->top.slot_kappa_per_mm * ka * ka;
+            if (crossed && isfinite(t->bottom.slot_kappa_per_mm))
+                b = b0 + t->bottom.slot_kappa_per_mm * kb * kb;
+        }
     }
     t->top_thickness_mm = a * tt;
     t->bottom_thickness_mm = crossed ? b * tb : NAN;
