@@ -120,8 +120,9 @@ void dcm_shutdown(void);
  * per-frame items). Strings are UTF-8 (converted from SpecificCharacterSet where DCMTK can; bytes
  * that are not UTF-8 become '?').
  *
- * After dcm_init, reads share no state of ours; DCMTK's registries are read-locked, but
- * concurrent reads are not tested. */
+ * After dcm_init, reads share no state of ours and may run in several threads (DCMTK's
+ * dictionary and codec registries are read-locked; two threads reading plain, compressed,
+ * Enhanced and character-set files at once are tested, without a race detector). */
 sw_status dcm_read_file(const char *path, const dcm_read_opts *opts, dcm_file **out, sw_error *err);
 /* Same, from a buffer (copied into an anonymous memory file: Linux memfd and /proc); name is used
  * in messages only. */

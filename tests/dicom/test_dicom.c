@@ -7,6 +7,7 @@
 #include <ftw.h>
 #include <jansson.h>
 #include <math.h>
+#include <pthread.h>
 #include <stdint.h>
 #include <stdio.h>
 #include <stdlib.h>
@@ -1442,4 +1443,83 @@ Test(dicom_nodict, init_refuses_without_dictionary)
     cr_assert_eq(strncmp(e.msg, "dicom: ", 7), 0, "%s", e.msg);
     dcm_file *f = NULL;
     cr_assert_eq(dcm_read_file("x.dcm", NULL, &f, &e), SW_EINVAL, "reads must stay refused");
+}
+
+/* Two threads reading the same files at once (plain, JPEG-LS, RLE, Enhanced, a character set):
+ * every read equals the single-threaded one. A smoke test of the claim in dicom.h that reads
+ * share no state of ours once dcm_init has run; it is not a race detector. */
+struct reader_job {
+    const char *const *files;
+    int nfiles;
+    dcm_file *const *ref;
+    int rounds;
+    int bad; /* reads that failed or differed */
+};
+
+static void *reader_thread(void *arg)
+{
+    struct reader_job *j = arg;
+    for (int r = 0; r < j->rounds; r++)
+        for (int i = 0; i < j->nfiles; i++) {
+            dcm_file *f = NULL;
+            sw_error e;
+            sw_error_clear(&e);
+            if (dcm_read_file(j->files[i], NULL, &f, &e) != SW_OK) {
+                j->bad++;
+                continue;
+            }
+            const dcm_file *g = j->ref[i];
+            int same = f->nframes == g->nframes;
+            for (int k = 0; same && k < f->nframes; k++) {
+                const dcm_image *a = &f->frames[k], *b = &g->frames[k];
+                same = a->rows == b->rows && a->columns == b->columns &&
+                       strcmp(a->patient_name, b->patient_name) == 0 &&
+                       memcmp(a->pixels, b->pixels,
+                              sizeof(float) * (size_t)a->rows * (size_t)a->columns) == 0;
+            }
+            j->bad += !same;
+            dcm_file_free(f);
+        }
+    return NULL;
+}
+
+Test(dicom, concurrent_reads, .timeout = 120)
+{
+    dcm_image w;
+    make_image(&w, 64, 64, 14);
+    dcm_image fr[NF];
+    make_frames(fr, 1);
+    sw_error e;
+    sw_error_clear(&e);
+    const char *plain = tpath("t_plain.dcm"), *enh = tpath("t_enh.dcm");
+    cr_assert_eq(dcm_write_mr(plain, &w, &e), SW_OK, "%s", e.msg);
+    cr_assert_eq(dcm_write_enhanced_mr(enh, fr, NF, &e), SW_OK, "%s", e.msg);
+    const char *ls = tpath("t_ls.dcm"), *rle = tpath("t_rle.dcm");
+    convert(&lossless[5], plain, ls);
+    convert(&lossless[6], enh, rle);
+    const char *files[] = {plain,
+                           enh,
+                           ls,
+                           rle,
+                           corpus("charset_files/chrRuss.dcm"),
+                           corpus("test_files/JPGExtended.dcm")};
+    enum { NFILES = sizeof files / sizeof files[0] };
+    dcm_file *ref[NFILES];
+    for (int i = 0; i < NFILES; i++)
+        ref[i] = read_ok(files[i], 0);
+    struct reader_job jobs[2];
+    pthread_t th[2];
+    for (int t = 0; t < 2; t++) {
+        jobs[t] = (struct reader_job){files, NFILES, ref, 15, 0};
+        cr_assert_eq(pthread_create(&th[t], NULL, reader_thread, &jobs[t]), 0);
+    }
+    for (int t = 0; t < 2; t++) {
+        cr_assert_eq(pthread_join(th[t], NULL), 0);
+        cr_assert_eq(jobs[t].bad, 0, "thread %d: %d reads failed or differed", t, jobs[t].bad);
+    }
+    for (int i = 0; i < NFILES; i++)
+        dcm_file_free(ref[i]);
+    free(w.pixels);
+    for (int i = 0; i < NF; i++)
+        free(fr[i].pixels);
 }
