@@ -3,10 +3,10 @@
  * uncertainty against the observed scatter, the half-level methods side by side, the slot's own
  * widening, and the accuracy goals with PASS or MISS. docs/accuracy.md explains the method.
  *
- * Each case is rendered in memory (sim_series_render) and its images go to an_analyze_series through
- * the same view as daemon/pipeline.c builds from a dcm_image, once per half-level method. Cases are
- * drawn from a seeded generator of their own (case i depends on the seed and i only), so a run is the
- * same whatever --threads says. */
+ * Each case is rendered in memory (sim_series_render) and its images go to an_analyze_series
+ * through the same view as daemon/pipeline.c builds from a dcm_image, once per half-level method.
+ * Cases are drawn from a seeded generator of their own (case i depends on the seed and i only), so
+ * a run is the same whatever --threads says. */
 #include <errno.h>
 #include <getopt.h>
 #include <math.h>
@@ -45,12 +45,13 @@ static const an_half_level HM_LEVEL[HM_SLOT] = {AN_HALF_TRUE_ZERO, AN_HALF_FLOOR
 enum { SB_LOW, SB_15, SB_30, SB_50, SB_N };
 static const char *const SB_NAME[SB_N] = {"<15", "15-30", "30-50", ">=50"};
 
-/* Where the strips lie, from the truth: the distance of each strip's half-level crossings (and of its
- * tenth-level points, the profile's FWTM mapped along the strip) to the nearer end of the insert. The
- * analysis leaves out 2.5 mm at each end (the end's edge blur) and needs at least 1 mm of fit window
- * beyond a crossing, so a crossing 3.5 mm from an end is the least it can measure. A strip leaves the
- * insert when a crossing is nearer than 3 mm; it is inside when its crossings are at least 5 mm and
- * its tenth-level points at least 2.5 mm from the ends; the grey zone between is reported apart. */
+/* Where the strips lie, from the truth: the distance of each strip's half-level crossings (and of
+ * its tenth-level points, the profile's FWTM mapped along the strip) to the nearer end of the
+ * insert. The analysis leaves out 2.5 mm at each end (the end's edge blur) and needs at least 1 mm
+ * of fit window beyond a crossing, so a crossing 3.5 mm from an end is the least it can measure. A
+ * strip leaves the insert when a crossing is nearer than 3 mm; it is inside when its crossings are
+ * at least 5 mm and its tenth-level points at least 2.5 mm from the ends; the grey zone between is
+ * reported apart. */
 enum { IN_OUTSIDE, IN_EDGE, IN_INSIDE };
 #define EDGE_ZONE_MM 2.5
 #define MARGIN_OUTSIDE_MM 3.0
@@ -69,14 +70,14 @@ typedef struct bcase {
 
 /* One echo of one case: parameters, truth and what the analysis said. */
 typedef struct brow {
-    int used;  /* 1 when this slot holds an echo */
-    int ran;   /* render and analysis returned SW_OK */
+    int used; /* 1 when this slot holds an echo */
+    int ran;  /* render and analysis returned SW_OK */
     char error[SW_ERROR_MAX];
     bcase c;
     int echo;
     double te_ms, snr_echo;
     int band, inside;
-    double margin_mm;   /* least distance of a strip's half-level crossing to an end of the insert */
+    double margin_mm; /* least distance of a strip's half-level crossing to an end of the insert */
     double margin10_mm; /* the same for the tenth-level points */
     /* truth */
     double t_fwhm, t_fwtm, t_len[2], t_centre[2], t_disp1, t_diff[2], t_off, t_scale;
@@ -146,9 +147,18 @@ static void params_of(const bcase *c, uint64_t seed, sim_params *p)
     sim_profile_params *pr = &p->profile;
     pr->thickness_mm = c->thickness_mm;
     switch (c->prof) {
-    case PK_SINC2: pr->kind = SIM_PROFILE_BLOCH_SINC; pr->tbw = 2; break;
-    case PK_SINC4: pr->kind = SIM_PROFILE_BLOCH_SINC; pr->tbw = 4; break;
-    case PK_SINC8: pr->kind = SIM_PROFILE_BLOCH_SINC; pr->tbw = 8; break;
+    case PK_SINC2:
+        pr->kind = SIM_PROFILE_BLOCH_SINC;
+        pr->tbw = 2;
+        break;
+    case PK_SINC4:
+        pr->kind = SIM_PROFILE_BLOCH_SINC;
+        pr->tbw = 4;
+        break;
+    case PK_SINC8:
+        pr->kind = SIM_PROFILE_BLOCH_SINC;
+        pr->tbw = 8;
+        break;
     case PK_RECT: pr->kind = SIM_PROFILE_RECT; break;
     case PK_GAUSS: pr->kind = SIM_PROFILE_GAUSS; break;
     default:
@@ -232,7 +242,7 @@ static void fill_truth(const sim_series *s, int e, const an_model *m, brow *r)
     }
     r->margin_mm = margin;
     r->margin10_mm = margin10;
-    r->inside = margin < MARGIN_OUTSIDE_MM                                   ? IN_OUTSIDE
+    r->inside = margin < MARGIN_OUTSIDE_MM                               ? IN_OUTSIDE
                 : margin >= MARGIN_INSIDE_MM && margin10 >= EDGE_ZONE_MM ? IN_INSIDE
                                                                          : IN_EDGE;
     double tt = fabs(m->ramp[0].slope);
@@ -562,8 +572,24 @@ static int q_pitch(const brow *r, int k, double *e, double *u)
     return r->pitch_ok && isfinite(*e);
 }
 
-enum { Q_CORR, Q_ACR, Q_ACR_LEN, Q_TOP, Q_BOTTOM, Q_FWTM, Q_FWTM_SLOT, Q_DIFF, Q_DIFF1, Q_DIFF11, Q_RDISP,
-       Q_OFF, Q_SCALE, Q_TILT, Q_PITCH, Q_N };
+enum {
+    Q_CORR,
+    Q_ACR,
+    Q_ACR_LEN,
+    Q_TOP,
+    Q_BOTTOM,
+    Q_FWTM,
+    Q_FWTM_SLOT,
+    Q_DIFF,
+    Q_DIFF1,
+    Q_DIFF11,
+    Q_RDISP,
+    Q_OFF,
+    Q_SCALE,
+    Q_TILT,
+    Q_PITCH,
+    Q_N
+};
 
 static const quantity QUANT[Q_N] = {
     [Q_CORR] = {"thickness, tilt-corrected (mm)", "profile FWHM", 1, 1, q_corr},
@@ -593,7 +619,8 @@ static const filter ANY = {-1, -1, -1, 0, INFINITY};
 
 static int pass_filter(const brow *r, const filter *f)
 {
-    return OK_ALL(r) && (f->band < 0 || r->band == f->band) && (f->prof < 0 || r->c.prof == f->prof) &&
+    return OK_ALL(r) && (f->band < 0 || r->band == f->band) &&
+           (f->prof < 0 || r->c.prof == f->prof) &&
            (f->shading < 0 || (r->c.shading > 0) == f->shading) && r->snr_echo >= f->snr_lo &&
            r->snr_echo < f->snr_hi;
 }
@@ -676,20 +703,22 @@ static int write_csv(const char *path, const brow *rows, int n)
     FILE *f = fopen(path, "w");
     if (!f)
         return -1;
-    fprintf(f, "case,series,echo,te_ms,profile,thickness_set_mm,blur_mm,offset_mm,scale,tilt_v_deg,"
-               "tilt_u_deg,rot_deg,du_mm,dv_mm,snr_requested,snr_echo,shading,shuffled,"
-               "strip_margin_mm,strip_margin_tenth_mm,strips,truth_fwhm_mm,truth_fwtm_mm,truth_top_length_mm,"
-               "truth_bottom_length_mm,truth_top_centre_mm,truth_bottom_centre_mm,"
-               "truth_displacement_1_mm,truth_bar_difference_1_mm,truth_bar_difference_11_mm,"
-               "truth_offset_mm,truth_scale_percent,slot_widening_mm,truth_fwtm_slot_mm,"
-               "thickness_measured,"
-               "corrected_mm,uncertainty_mm,acr_mm,top_thickness_mm,bottom_thickness_mm,tilt_deg,"
-               "tilt_uncertainty_deg,fwtm_mm,ramp_displacement_mm,ramp_displacement_uncertainty_mm,"
-               "bar_difference_1_mm,bar_difference_1_uncertainty_mm,bar_difference_11_mm,"
-               "bar_difference_11_uncertainty_mm,offset_mm,offset_uncertainty_mm,scale_percent,"
-               "scale_uncertainty_percent,pitch_deg,pitch_uncertainty_deg,corrected_true_zero_mm,"
-               "corrected_floor_mm,corrected_background_mm,corrected_default_slot_mm,verdict,reason,"
-               "thickness_reason,position_1_reason,position_11_reason,error\n");
+    fprintf(f,
+            "case,series,echo,te_ms,profile,thickness_set_mm,blur_mm,offset_mm,scale,tilt_v_deg,"
+            "tilt_u_deg,rot_deg,du_mm,dv_mm,snr_requested,snr_echo,shading,shuffled,"
+            "strip_margin_mm,strip_margin_tenth_mm,strips,truth_fwhm_mm,truth_fwtm_mm,truth_top_"
+            "length_mm,"
+            "truth_bottom_length_mm,truth_top_centre_mm,truth_bottom_centre_mm,"
+            "truth_displacement_1_mm,truth_bar_difference_1_mm,truth_bar_difference_11_mm,"
+            "truth_offset_mm,truth_scale_percent,slot_widening_mm,truth_fwtm_slot_mm,"
+            "thickness_measured,"
+            "corrected_mm,uncertainty_mm,acr_mm,top_thickness_mm,bottom_thickness_mm,tilt_deg,"
+            "tilt_uncertainty_deg,fwtm_mm,ramp_displacement_mm,ramp_displacement_uncertainty_mm,"
+            "bar_difference_1_mm,bar_difference_1_uncertainty_mm,bar_difference_11_mm,"
+            "bar_difference_11_uncertainty_mm,offset_mm,offset_uncertainty_mm,scale_percent,"
+            "scale_uncertainty_percent,pitch_deg,pitch_uncertainty_deg,corrected_true_zero_mm,"
+            "corrected_floor_mm,corrected_background_mm,corrected_default_slot_mm,verdict,reason,"
+            "thickness_reason,position_1_reason,position_11_reason,error\n");
     static const char *const inside[] = {"outside", "edge", "inside"};
     for (int i = 0; i < n; i++) {
         const brow *r = &rows[i];
@@ -702,17 +731,34 @@ static int write_csv(const char *path, const brow *rows, int n)
         fprintf(f,
                 ",%.4f,%.4f,%.4f,%.6f,%.4f,%.4f,%.4f,%.4f,%.4f,%.3f,%.3f,%.2f,%d,%.3f,%.3f,%s,"
                 "%.5f,%.5f,%.4f,%.4f,%.4f,%.4f,%.5f,%.5f,%.5f,%.5f,%.5f,%.5f,%.5f,%d,",
-                c->thickness_mm, c->blur_mm, c->offset_mm, c->scale, c->tilt_v_deg,
-                c->tilt_u_deg, c->rot_deg, c->du_mm, c->dv_mm, c->snr, r->snr_echo, c->shading,
-                c->shuffle, r->margin_mm, r->margin10_mm, inside[r->inside], r->t_fwhm, r->t_fwtm, r->t_len[0],
-                r->t_len[1], r->t_centre[0], r->t_centre[1], r->t_disp1, r->t_diff[0],
-                r->t_diff[1], r->t_off, r->t_scale, r->slot_widening, r->t_fwtm_slot, r->th_ok);
-        const double v[] = {r->corr,       r->unc,      r->acr,         r->top_th,
-                            r->bot_th,     r->tilt,     r->tilt_unc,    r->fwtm,
-                            r->rdisp,      r->rdisp_unc, r->diff[0],    r->diff_unc[0],
-                            r->diff[1],    r->diff_unc[1], r->off,      r->off_unc,
-                            r->scl,        r->scl_unc,  r->pitch,       r->pitch_unc,
-                            r->m_corr[HM_ZERO], r->m_corr[HM_FLOOR], r->m_corr[HM_BACKGROUND],
+                c->thickness_mm, c->blur_mm, c->offset_mm, c->scale, c->tilt_v_deg, c->tilt_u_deg,
+                c->rot_deg, c->du_mm, c->dv_mm, c->snr, r->snr_echo, c->shading, c->shuffle,
+                r->margin_mm, r->margin10_mm, inside[r->inside], r->t_fwhm, r->t_fwtm, r->t_len[0],
+                r->t_len[1], r->t_centre[0], r->t_centre[1], r->t_disp1, r->t_diff[0], r->t_diff[1],
+                r->t_off, r->t_scale, r->slot_widening, r->t_fwtm_slot, r->th_ok);
+        const double v[] = {r->corr,
+                            r->unc,
+                            r->acr,
+                            r->top_th,
+                            r->bot_th,
+                            r->tilt,
+                            r->tilt_unc,
+                            r->fwtm,
+                            r->rdisp,
+                            r->rdisp_unc,
+                            r->diff[0],
+                            r->diff_unc[0],
+                            r->diff[1],
+                            r->diff_unc[1],
+                            r->off,
+                            r->off_unc,
+                            r->scl,
+                            r->scl_unc,
+                            r->pitch,
+                            r->pitch_unc,
+                            r->m_corr[HM_ZERO],
+                            r->m_corr[HM_FLOOR],
+                            r->m_corr[HM_BACKGROUND],
                             r->m_corr[HM_SLOT]};
         for (size_t k = 0; k < sizeof v / sizeof v[0]; k++) {
             if (isfinite(v[k]))
@@ -740,14 +786,14 @@ static int write_csv(const char *path, const brow *rows, int n)
 static void case_line(FILE *f, const brow *r)
 {
     const bcase *c = &r->c;
-    fprintf(f,
-            "    case %d %s echo %d: %s T %.2f mm (FWHM %.3f), SNR %.1f, tilt_v %+.2f, tilt_u %+.2f, "
-            "rot %+.2f, offset (%+.1f, %+.1f) mm, e(z) %+.2f mm %+.3f %%, shading %.1f, margins "
-            "%.1f (half) %.1f (tenth) mm\n",
-            c->index, c->kind == SIM_SERIES_T2 ? "T2" : "T1", r->echo, PK_NAME[c->prof],
-            c->thickness_mm, r->t_fwhm, r->snr_echo, c->tilt_v_deg, c->tilt_u_deg, c->rot_deg,
-            c->du_mm, c->dv_mm, c->offset_mm, 100 * c->scale, c->shading, r->margin_mm,
-            r->margin10_mm);
+    fprintf(
+        f,
+        "    case %d %s echo %d: %s T %.2f mm (FWHM %.3f), SNR %.1f, tilt_v %+.2f, tilt_u %+.2f, "
+        "rot %+.2f, offset (%+.1f, %+.1f) mm, e(z) %+.2f mm %+.3f %%, shading %.1f, margins "
+        "%.1f (half) %.1f (tenth) mm\n",
+        c->index, c->kind == SIM_SERIES_T2 ? "T2" : "T1", r->echo, PK_NAME[c->prof],
+        c->thickness_mm, r->t_fwhm, r->snr_echo, c->tilt_v_deg, c->tilt_u_deg, c->rot_deg, c->du_mm,
+        c->dv_mm, c->offset_mm, 100 * c->scale, c->shading, r->margin_mm, r->margin10_mm);
 }
 
 static const char *mark(int ok)
@@ -770,9 +816,12 @@ static void usage(FILE *f)
 int main(int argc, char **argv)
 {
     static const struct option opts[] = {
-        {"cases", required_argument, NULL, 'n'}, {"seed", required_argument, NULL, 's'},
-        {"threads", required_argument, NULL, 't'}, {"csv", required_argument, NULL, 'c'},
-        {"quiet", no_argument, NULL, 'q'},       {"help", no_argument, NULL, 'h'},
+        {"cases", required_argument, NULL, 'n'},
+        {"seed", required_argument, NULL, 's'},
+        {"threads", required_argument, NULL, 't'},
+        {"csv", required_argument, NULL, 'c'},
+        {"quiet", no_argument, NULL, 'q'},
+        {"help", no_argument, NULL, 'h'},
         {NULL, 0, NULL, 0},
     };
     int ncases = DEFAULT_CASES, nthreads = 1, quiet = 0, rc = 0, c;
@@ -861,19 +910,22 @@ int main(int argc, char **argv)
             n_t2++;
     }
     FILE *o = stdout;
-    fprintf(o, "slicewarden accuracy bench: %d cases (%d echoes analysed, %d of them T2), seed %llu, "
-               "%d thread%s, %.1f s (%.2f s per case per thread)\n",
+    fprintf(o,
+            "slicewarden accuracy bench: %d cases (%d echoes analysed, %d of them T2), seed %llu, "
+            "%d thread%s, %.1f s (%.2f s per case per thread)\n",
             ncases, n_echo - n_fail, n_t2, (unsigned long long)seed, started ? started : 1,
             started > 1 ? "s" : "", wall, wall * (started ? started : 1) / ncases);
-    fprintf(o, "sweep: thickness 3-8 mm; position error offset +-2.5 mm, scale +-1 %% (|d| <= 3 "
-               "mm); tilt_v +-2.5 deg; tilt_u +-2 deg; rotation +-5 deg; centre offset <= 20 mm;\n"
-               "       SNR 15-200 (log-uniform, first echo); profiles %s, %s, %s, %s, %s, %s;\n"
-               "       coil shading 0 or 0.3; T1 (2/3) and T2 double echo (1/3), every echo "
-               "analysed; half the series shuffled\n",
+    fprintf(o,
+            "sweep: thickness 3-8 mm; position error offset +-2.5 mm, scale +-1 %% (|d| <= 3 "
+            "mm); tilt_v +-2.5 deg; tilt_u +-2 deg; rotation +-5 deg; centre offset <= 20 mm;\n"
+            "       SNR 15-200 (log-uniform, first echo); profiles %s, %s, %s, %s, %s, %s;\n"
+            "       coil shading 0 or 0.3; T1 (2/3) and T2 double echo (1/3), every echo "
+            "analysed; half the series shuffled\n",
             PK_NAME[0], PK_NAME[1], PK_NAME[2], PK_NAME[3], PK_NAME[4], PK_NAME[5]);
-    fprintf(o, "strips (from the truth): %d inside the insert (half-level crossings >= %.1f mm and "
-               "tenth-level points >= %.1f mm from its ends), %d leaving it (a crossing < %.1f mm "
-               "from an end), %d between\n",
+    fprintf(o,
+            "strips (from the truth): %d inside the insert (half-level crossings >= %.1f mm and "
+            "tenth-level points >= %.1f mm from its ends), %d leaving it (a crossing < %.1f mm "
+            "from an end), %d between\n",
             n_class[IN_INSIDE], MARGIN_INSIDE_MM, EDGE_ZONE_MM, n_class[IN_OUTSIDE],
             MARGIN_OUTSIDE_MM, n_class[IN_EDGE]);
     if (n_fail) {
@@ -884,13 +936,14 @@ int main(int argc, char **argv)
                 shown++;
             }
     }
-    fprintf(o, "\nGoals: thickness (tilt-corrected) |bias| <= 0.05 mm and SD <= 0.05 mm at SNR >= 50, "
-               "SD <= 0.15 mm at SNR 15 (15-20);\n"
-               "       bar length difference |bias| <= 0.1 mm and SD <= 0.2 mm at SNR >= 50;\n"
-               "       100 %% measured at SNR >= 15 with the strips inside the insert (the others "
-               "with that reason);\n"
-               "       reported uncertainty within 30 %% of the observed scatter (SD of the z-score "
-               "(measured - truth) / uncertainty in 0.7..1.3).\n");
+    fprintf(o,
+            "\nGoals: thickness (tilt-corrected) |bias| <= 0.05 mm and SD <= 0.05 mm at SNR >= 50, "
+            "SD <= 0.15 mm at SNR 15 (15-20);\n"
+            "       bar length difference |bias| <= 0.1 mm and SD <= 0.2 mm at SNR >= 50;\n"
+            "       100 %% measured at SNR >= 15 with the strips inside the insert (the others "
+            "with that reason);\n"
+            "       reported uncertainty within 30 %% of the observed scatter (SD of the z-score "
+            "(measured - truth) / uncertainty in 0.7..1.3).\n");
 
     an_params def;
     an_params_default(&def);
@@ -900,8 +953,9 @@ int main(int argc, char **argv)
             hm_def = h;
 
     /* ---- table 1: bias and SD by SNR band ---- */
-    fprintf(o, "\n1. Error (measured - truth) by SNR band: n, bias, SD. Strip-based rows: strips "
-               "inside the insert only. Default parameters (half level: %s%s).\n",
+    fprintf(o,
+            "\n1. Error (measured - truth) by SNR band: n, bias, SD. Strip-based rows: strips "
+            "inside the insert only. Default parameters (half level: %s%s).\n",
             HM_NAME[hm_def], def.slot_correction ? ", slot correction on" : "");
     fprintf(o, "%-34s %-21s", "quantity", "truth");
     for (int b = 0; b < SB_N; b++)
@@ -1029,11 +1083,12 @@ int main(int argc, char **argv)
     fputc('\n', o);
 
     /* ---- table 5: the slot's share ---- */
-    fprintf(o, "\n5. The slot's own widening (truth stays the profile FWHM): expected widening vs the "
-               "measured bias at SNR >= 50, per profile kind (default method; with the analysis's slot "
-               "correction).\n");
-    fprintf(o, "%-12s | %4s | %9s | %9s | %10s | %10s | %14s\n", "profile", "n", "expected",
-            "bias", "bias-exp.", "slot corr.", "slot corr.-exp");
+    fprintf(
+        o, "\n5. The slot's own widening (truth stays the profile FWHM): expected widening vs the "
+           "measured bias at SNR >= 50, per profile kind (default method; with the analysis's slot "
+           "correction).\n");
+    fprintf(o, "%-12s | %4s | %9s | %9s | %10s | %10s | %14s\n", "profile", "n", "expected", "bias",
+            "bias-exp.", "slot corr.", "slot corr.-exp");
     for (int k = 0; k < PK_N; k++) {
         filter f = ANY;
         f.prof = k;
@@ -1105,8 +1160,9 @@ int main(int argc, char **argv)
     fprintf(o, "  %s bar difference |bias| at SNR >= 50: %.4f mm (goal <= 0.1, n %d)\n", mark(g4),
             fabs(bd_hi.mean), bd_hi.n);
     fprintf(o, "  %s bar difference SD at SNR >= 50: %.4f mm (goal <= 0.2)\n", mark(g5), bd_hi.sd);
-    fprintf(o, "  %s measured at SNR >= 15, strips inside: thickness %d/%d, bars %d/%d, position "
-               "model %d/%d\n",
+    fprintf(o,
+            "  %s measured at SNR >= 15, strips inside: thickness %d/%d, bars %d/%d, position "
+            "model %d/%d\n",
             mark(g6), m_th, e_th, m_bd, e_bd, m_pm, e_pm);
     fprintf(o, "  %s strips leaving the insert reported with that reason: %d/%d\n", mark(g7),
             cls_reason[IN_OUTSIDE], cls_n[IN_OUTSIDE]);
@@ -1166,8 +1222,9 @@ int main(int argc, char **argv)
         if (shown > 10)
             continue;
         case_line(o, r);
-        fprintf(o, "      corrected %.3f +- %.3f mm vs FWHM %.3f (error %+.3f); strips %.2f, %.2f mm "
-                   "vs %.2f, %.2f\n",
+        fprintf(o,
+                "      corrected %.3f +- %.3f mm vs FWHM %.3f (error %+.3f); strips %.2f, %.2f mm "
+                "vs %.2f, %.2f\n",
                 r->corr, r->unc, r->t_fwhm, e, r->top_th / 0.1, r->bot_th / 0.1, r->t_len[0],
                 r->t_len[1]);
     }
@@ -1184,8 +1241,9 @@ int main(int argc, char **argv)
         if (shown > 15)
             continue;
         case_line(o, r);
-        fprintf(o, "      corrected %.3f +- %.3f mm vs FWHM %.3f (error %+.3f); strips %.2f, %.2f mm "
-                   "vs %.2f, %.2f\n",
+        fprintf(o,
+                "      corrected %.3f +- %.3f mm vs FWHM %.3f (error %+.3f); strips %.2f, %.2f mm "
+                "vs %.2f, %.2f\n",
                 r->corr, r->unc, r->t_fwhm, e, r->top_th / 0.1, r->bot_th / 0.1, r->t_len[0],
                 r->t_len[1]);
     }
