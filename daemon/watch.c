@@ -228,8 +228,9 @@ static void set_del(strset *t, const char *s)
 
 typedef struct qitem {
     char *path;
-    double due; /* monotonic */
+    double due;  /* monotonic */
     int tries;
+    int scanned; /* found by listing a folder, not announced finished by inotify */
 } qitem;
 
 typedef struct queue {
@@ -257,11 +258,12 @@ static int push_item(qitem **v, size_t *n, size_t *cap, qitem it)
 }
 
 /* Queues a copy of path (once: a path already queued is not queued again). */
-static int enqueue(queue *q, const char *path, double delay, int tries)
+static int enqueue_item(queue *q, const char *path, double delay, int tries, int scanned)
 {
     if (set_has(&q->set, path))
         return 0;
-    qitem it = {.path = strdup(path), .due = wd_now_mono() + delay, .tries = tries};
+    qitem it = {.path = strdup(path), .due = wd_now_mono() + delay, .tries = tries,
+                .scanned = scanned};
     if (!it.path)
         return -1;
     int rc = delay > 0 ? push_item(&q->late, &q->nlate, &q->caplate, it)
@@ -278,6 +280,11 @@ static int enqueue(queue *q, const char *path, double delay, int tries)
         return -1;
     }
     return 0;
+}
+
+static int enqueue(queue *q, const char *path, double delay, int tries)
+{
+    return enqueue_item(q, path, delay, tries, 0);
 }
 
 static void promote_due(queue *q)
@@ -572,7 +579,7 @@ static void scan_dir(watcher *w, const char *dir)
         if (type == DT_DIR)
             push_dir(w, path);
         else if (type == DT_REG && !wd_name_is_temporary(name))
-            (void)enqueue(&w->q, path, 0, 0);
+            (void)enqueue_item(&w->q, path, 0, 0, 1);
     }
     closedir(dp);
 }
@@ -1079,7 +1086,12 @@ static int attach(watcher *w, wseries *s, int64_t id, const char *path, const ch
 
 /* ---- taking one file ---- */
 
-enum { TAKEN = 0, RETRY, SKIPPED };
+enum { TAKEN = 0, RETRY, SKIPPED, SETTLE };
+
+/* A file found by listing a folder that changed less than this long ago may still be written by
+ * a receiver that writes under its final name (storescp does): it waits until it has settled, or
+ * until inotify says it was closed. */
+#define SETTLE_S 1.0
 
 typedef struct series_state_look {
     db_series_state state;
@@ -1167,6 +1179,22 @@ static int parse(watcher *w, int64_t id, const char *path, const wd_blob *b)
     char why[512];
     const char *hash = b->hash;
     if (dcm_read_buffer(b->data, b->len, path, NULL, &f, &err) != SW_OK) {
+        /* Still being written? Then the bytes read were not the file's: never quarantine those. */
+        char now_hash[WD_HASH_MAX];
+        sw_error e2;
+        sw_error_clear(&e2);
+        if (wd_file_hash(path, now_hash, &e2) == SW_OK && strcmp(now_hash, hash) != 0) {
+            sw_error_clear(&err);
+            st = db_file_transition(w->d, id, DB_FILE_SEEN, DB_FILE_IGNORED,
+                                    "changed while it was read; its new content is taken as a "
+                                    "new file",
+                                    &err);
+            if (st == SW_OK) {
+                wd_info("%s: changed while it was read; taken again", path);
+                (void)enqueue(&w->q, path, SETTLE_S, 0);
+            }
+            goto out;
+        }
         /* dcm_ messages begin with the path already */
         st = to_final(w, id, path, hash, DB_FILE_SEEN, DB_FILE_QUARANTINED, err.msg, 0, &err);
         goto out;
@@ -1358,7 +1386,7 @@ static int reattach(watcher *w, int64_t id, const char *path, const wd_blob *b, 
     return result;
 }
 
-static int take_file(watcher *w, const char *path)
+static int take_file(watcher *w, const char *path, int scanned)
 {
     sw_error err;
     sw_error_clear(&err);
@@ -1374,6 +1402,8 @@ static int take_file(watcher *w, const char *path)
         wd_debug("%s: not a regular file; left in place", path);
         return SKIPPED;
     }
+    if (scanned && wd_now_real() - arrival_of(&st.st_mtim, &st.st_ctim) < SETTLE_S)
+        return SETTLE;
     sw_status rs = wd_blob_read(path, &b, &eno, &err);
     if (rs == SW_ENOTFOUND)
         return SKIPPED;
@@ -1848,7 +1878,7 @@ static sw_status rebuild(watcher *w, sw_error *err)
     for (int k = 0; k < pf.n; k++) {
         struct stat st;
         if (lstat(pf.v[k].path, &st) == 0) {
-            (void)enqueue(&w->q, pf.v[k].path, 0, 0);
+            (void)enqueue_item(&w->q, pf.v[k].path, 0, 0, 1);
             continue;
         }
         const char *why = "vanished from the watch folder before it was read";
@@ -1986,6 +2016,10 @@ static void ping(watcher *w, int force)
 
 static void after_take(watcher *w, const qitem *it, int r)
 {
+    if (r == SETTLE) {
+        (void)enqueue_item(&w->q, it->path, SETTLE_S / 2, it->tries, 1);
+        return;
+    }
     if (r == RETRY) {
         /* 1, 2, 4, then every 4 s: a lock held by another writer is brief, and each try waits
          * for it a second anyway. */
@@ -2014,7 +2048,7 @@ static int loop(watcher *w)
         qitem it;
         if (dequeue(&w->q, &it)) {
             progress_clear(w);
-            int r = take_file(w, it.path);
+            int r = take_file(w, it.path, it.scanned);
             after_take(w, &it, r);
             if (r == TAKEN)
                 last_progress = wd_now_mono();

@@ -76,6 +76,7 @@ def remaining():
     return [p for p in files_under(inbox) if not os.path.basename(p).startswith(".")]
 
 
+time.sleep(1.2)  # files younger than a second wait to settle (they may still be written)
 kills = 0
 starts = 0
 while kills < 24:
