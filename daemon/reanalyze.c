@@ -6,6 +6,7 @@
 #include <string.h>
 #include <unistd.h>
 
+#include "trends.h"
 #include "watch.h"
 #include "wd.h"
 
@@ -205,6 +206,14 @@ static int redo(db *d, const wd_settings *s, int64_t series_id, int png, int ale
     began = 1;
     if (wd_store_run(d, &ctx, &method, measured ? &m : NULL, fail_why, &res, &err) != SW_OK)
         goto fail;
+    /* With --alerts, drift is checked too (the new run is now the series' latest). */
+    if (alerts && measured) {
+        sw_error e4;
+        sw_error_clear(&e4);
+        if (wd_drift_check_run(d, os.scanner_id, res.run_id, &s->cfg.drift,
+                               res.n_pngs ? res.png[0].path : NULL, NULL, NULL, &e4) != SW_OK)
+            wd_error("series %s: drift check: %s", os.uid, e4.msg);
+    }
     /* A series that had failed and now measures is stored at last; a stored one stays stored. */
     if (measured && os.state == DB_SERIES_FAILED &&
         (db_series_set_state(d, series_id, DB_SERIES_FAILED, DB_SERIES_MEASURED, NULL, &err) !=

@@ -43,6 +43,7 @@
 #endif
 
 #include "config.h"
+#include "trends.h"
 #include "watch.h"
 #include "wd.h"
 
@@ -1514,6 +1515,7 @@ static int measure_series(watcher *w, wseries *s, int quiet)
     char fail_why[SW_ERROR_MAX + 32] = "";
     const char *how = quiet ? "quiet" : "complete";
     const int nfiles = s->nfiles;
+    int drift_started = 0;
 
     /* 1. The series' state says why it is measured (its own commit). */
     if (s->state == DB_SERIES_COLLECTING) {
@@ -1618,6 +1620,14 @@ static int measure_series(watcher *w, wseries *s, int quiet)
             SW_OK)
             goto out;
         if (measured) {
+            /* Drift: the new result against the key's history (docs/trends.md), in the same
+             * transaction. Its failure is logged and does not cost the measurement. */
+            sw_error e4;
+            sw_error_clear(&e4);
+            if (wd_drift_check_run(w->d, s->scanner_id, res.run_id, &w->s->cfg.drift,
+                                   res.n_pngs ? res.png[0].path : NULL, &drift_started, NULL,
+                                   &e4) != SW_OK)
+                wd_error("series %s: drift check: %s", s->uid, e4.msg);
             if (s->state != DB_SERIES_MEASURED &&
                 (st = db_series_set_state(w->d, s->id, s->state, DB_SERIES_MEASURED, NULL,
                                           &err)) != SW_OK)
@@ -1660,7 +1670,10 @@ static int measure_series(watcher *w, wseries *s, int quiet)
         } else {
             w->st.series_failed++;
         }
-        w->st.alerts_recorded += res.n_alerts;
+        w->st.alerts_recorded += res.n_alerts + drift_started;
+        if (drift_started)
+            wd_warn("series %s %s: drift: %d episode%s opened, with an alert each", s->label,
+                    s->uid, drift_started, drift_started == 1 ? "" : "s");
         if (res.n_alerts)
             wd_warn("series %s %s: %d alert%s recorded", s->label, s->uid, res.n_alerts,
                     res.n_alerts == 1 ? "" : "s");
