@@ -11,18 +11,18 @@
 #define AN_DEG (180.0 / M_PI)
 
 /* ---- geometry of one image ----
- * Stored pixel (x = column, y = row, centres at integers) to the display plane (a to the right, b up,
- * mm, origin at pixel 0,0): a = d[0] x + d[1] y, b = d[2] x + d[3] y. The display axes are unit
+ * Stored pixel (x = column, y = row, centres at integers) to the display plane (a to the right, b
+ * up, mm, origin at pixel 0,0): a = d[0] x + d[1] y, b = d[2] x + d[3] y. The display axes are unit
  * vectors of the patient frame: vhat is anterior (-y of LPS) projected into the slice plane (or a
- * fallback for planes that hold the y axis), uhat = w x vhat with w the slice normal oriented toward
- * slice 11 (wsign * n). That cross product is the left-handed phantom frame's u: for a head-first
- * image, uhat = +x (patient left shown on the right), as phantom-large.md defines. */
+ * fallback for planes that hold the y axis), uhat = w x vhat with w the slice normal oriented
+ * toward slice 11 (wsign * n). That cross product is the left-handed phantom frame's u: for a
+ * head-first image, uhat = +x (patient left shown on the right), as phantom-large.md defines. */
 typedef struct an_geom {
     double d[4], di[4];
-    double n[3];        /* unit normal r x c of the stored image (patient frame) */
-    double z_n;         /* ImagePositionPatient . n */
+    double n[3]; /* unit normal r x c of the stored image (patient frame) */
+    double z_n;  /* ImagePositionPatient . n */
     double uhat[3], vhat[3];
-    int wsign;          /* +1: slice 11 lies along +n; -1: along -n */
+    int wsign; /* +1: slice 11 lies along +n; -1: along -n */
     int has_geometry;
 } an_geom;
 
@@ -47,8 +47,9 @@ double an_bilinear(const an_image *im, double x, double y);
 
 /* ---- line sampling with exact noise bookkeeping ----
  * A profile along a line in the phantom frame, each sample the mean of k bilinear samples taken at
- * offsets across the line. Because each sample is a fixed linear combination of pixels, the variance
- * of any linear functional of the profile is sigma^2 times the sum of the squared pixel weights. */
+ * offsets across the line. Because each sample is a fixed linear combination of pixels, the
+ * variance of any linear functional of the profile is sigma^2 times the sum of the squared pixel
+ * weights. */
 #define AN_LINE_MAX_OFF 33
 typedef struct an_line {
     const an_image *img;
@@ -63,13 +64,14 @@ typedef struct an_line {
     const double *gain; /* per-sample factor applied to the profile after sampling, or NULL */
 } an_line;
 
-/* Sets k offsets spaced at most `spacing` mm apart over [-half, +half] (one offset when half is 0). */
+/* Sets k offsets spaced at most `spacing` mm apart over [-half, +half] (one offset when half is 0).
+ */
 void an_line_offsets(an_line *l, double half, double spacing);
 /* Samples the profile into out[0..n); returns the number of samples that fell (partly) outside the
  * image (those are NAN). */
 int an_line_sample(const an_line *l, double *out);
-/* Sum over pixels of (sum_i c[i] w_i(pixel))^2 for samples i0 .. i0 + m - 1, where w_i are sample i's
- * pixel weights. NAN when a sample falls outside or memory runs out. */
+/* Sum over pixels of (sum_i c[i] w_i(pixel))^2 for samples i0 .. i0 + m - 1, where w_i are sample
+ * i's pixel weights. NAN when a sample falls outside or memory runs out. */
 double an_line_weight_ss(const an_line *l, int i0, int m, const double *c);
 /* Phantom point of (fractional) sample index t at offset 0. */
 void an_line_point(const an_line *l, double t, double *u, double *v);
@@ -89,11 +91,11 @@ int an_poly_fit(const double *p, int i0, int i1, double ic, double step, int deg
 /* A level crossing found by a local polynomial fit around a first guess. */
 typedef struct an_xing {
     int ok;
-    double idx;    /* fractional sample index of the crossing */
-    double slope;  /* dq/dt at the crossing, profile units per mm */
-    double curv;   /* d2q/dt2 at the crossing, per mm^2 */
-    double ss;     /* noise gain: var(q(x*)) = sigma^2 ss */
-    int i0, i1;    /* fit window */
+    double idx;   /* fractional sample index of the crossing */
+    double slope; /* dq/dt at the crossing, profile units per mm */
+    double curv;  /* d2q/dt2 at the crossing, per mm^2 */
+    double ss;    /* noise gain: var(q(x*)) = sigma^2 ss */
+    int i0, i1;   /* fit window */
 } an_xing;
 
 /* Refines the crossing of `level` near sample index guess with a quadratic fitted over +-h_mm; the
@@ -128,11 +130,11 @@ double an_rice_invert(double m, double sigma);
 /* ---- phantom on one image ---- */
 typedef struct an_disc {
     int found;
-    double xc, yc;   /* stored pixels */
+    double xc, yc; /* stored pixels */
     double r_mm;
-    double rms_mm;   /* RMS residual of the edge points to the circle */
-    double thresh;   /* Otsu threshold */
-    double fluid;    /* median signal inside 0.6 r */
+    double rms_mm; /* RMS residual of the edge points to the circle */
+    double thresh; /* Otsu threshold */
+    double fluid;  /* median signal inside 0.6 r */
     int n_edge;
     char reason[AN_REASON_MAX];
 } an_disc;
@@ -155,21 +157,22 @@ void an_work_free(an_work *w);
 int an_find_disc(const an_image *im, const an_model *model, int refine, an_work *w, an_disc *d);
 
 /* Per-channel noise sigma from the air around a disc: the Rayleigh median in four bands around the
- * phantom, the mean of the two lowest bands (robust to ghosts along one direction). NAN when the air
- * is too small or masked to zero. scratch holds w * h floats. */
+ * phantom, the mean of the two lowest bands (robust to ghosts along one direction). NAN when the
+ * air is too small or masked to zero. scratch holds w * h floats. */
 double an_noise_air(const an_image *im, const an_disc *d, float *scratch);
 /* Fallback: sigma from neighbour differences inside a uniform central region (Gaussian regime). */
 double an_noise_fluid(const an_image *im, const an_disc *d, float *scratch);
-/* Mean fluid signal in a central disc of radius frac * r (pixels under half the median excluded). */
+/* Mean fluid signal in a central disc of radius frac * r (pixels under half the median excluded).
+ */
 double an_fluid_mean(const an_image *im, const an_disc *d, double frac, float *scratch);
 
 /* ---- the thickness insert on the ramp slice ---- */
 typedef struct an_insert {
     int found;
-    double rot_deg;        /* in-plane rotation from the insert's long edges */
+    double rot_deg; /* in-plane rotation from the insert's long edges */
     double rot_unc_deg;
-    double v_top, v_bot;   /* long edges at u = 0 (phantom v, mm) */
-    double u_lo, u_hi;     /* ends along u */
+    double v_top, v_bot; /* long edges at u = 0 (phantom v, mm) */
+    double u_lo, u_hi;   /* ends along u */
     int n_strips;
     double strip_v[2], strip_w[2]; /* centre and width across: [0] top (or the only), [1] bottom */
     char reason[AN_REASON_MAX];
@@ -181,7 +184,8 @@ typedef struct an_insert {
 int an_dark_axis(const an_image *im, const an_geom *g, const an_disc *d, double *angle_deg,
                  double *elong, double *area_mm2, double *off_mm);
 /* Refines the rotation from the insert's long edges, starting at rot0, and finds its ends and the
- * strips. ins->found says whether it worked, ins->reason why not. Returns -1 on allocation failure. */
+ * strips. ins->found says whether it worked, ins->reason why not. Returns -1 on allocation failure.
+ */
 int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const an_model *m,
                    double rot0, int want_strips, an_insert *ins);
 /* Measures strip s (0 top, 1 bottom) of the insert on its profile along u. sigma is the per-channel

@@ -1,6 +1,7 @@
 /* analysis.h: slice thickness and slice position from images of a ramp-and-wedge phantom. Pure
  * computation: const image views and parameters in, result structs the caller owns out; no I/O, no
- * logging, no globals. Every value carries an uncertainty and a verdict, or the reason it is absent. */
+ * logging, no globals. Every value carries an uncertainty and a verdict, or the reason it is
+ * absent. */
 #ifndef ANALYSIS_H
 #define ANALYSIS_H
 
@@ -36,18 +37,18 @@ typedef struct an_model {
     an_thickness_method method;
     double insert_u_min, insert_u_max, insert_v_min, insert_v_max, insert_w_half;
     int n_ramps;
-    an_ramp_def ramp[2];       /* [0] top, [1] bottom for crossed ramps */
-    double slot_mm;            /* slot thickness along w (1.0) */
-    double wedge_slope;        /* single-wedge method: dw/du of the wedge face */
+    an_ramp_def ramp[2]; /* [0] top, [1] bottom for crossed ramps */
+    double slot_mm;      /* slot thickness along w (1.0) */
+    double wedge_slope;  /* single-wedge method: dw/du of the wedge face */
     /* slice-position wedges */
     int has_wedges;
-    double wedge_w[2];         /* vertex planes (0 and 100) */
+    double wedge_w[2]; /* vertex planes (0 and 100) */
     double bridge_u_min, bridge_u_max, bridge_v_min, bridge_v_max;
     double bar_u_min[2], bar_u_max[2]; /* [0] left bar, [1] right bar */
-    double bar_top_v;          /* bars hang from here (80) */
-    double bar_len0_mm;        /* bar length at the vertex (15) */
-    int ramp_slice;            /* ordinal of the slice holding the ramps (1) */
-    int wedge_slice[2];        /* ordinals of the wedge slices (1, 11) */
+    double bar_top_v;                  /* bars hang from here (80) */
+    double bar_len0_mm;                /* bar length at the vertex (15) */
+    int ramp_slice;                    /* ordinal of the slice holding the ramps (1) */
+    int wedge_slice[2];                /* ordinals of the wedge slices (1, 11) */
     /* added for the simulator (additive): extents it needs to build the whole object */
     double cyl_w_min, cyl_w_max; /* fluid cylinder's ends along w (-24, +124) */
     double wedge_w_half;         /* bridge and bars extend |w - wedge_w| <= this (12) */
@@ -69,7 +70,8 @@ typedef struct an_tolerance {
     double min_snr;             /* below this a result is unmeasurable ("SNR too low") */
 } an_tolerance;
 
-/* Fills t with the default set (ACR large-phantom guidance, values from memory, to be confirmed). */
+/* Fills t with the default set (ACR large-phantom guidance, values from memory, to be confirmed).
+ */
 void an_tolerance_default(an_tolerance *t);
 
 /* ---- parameters of the method ---- */
@@ -77,7 +79,8 @@ typedef enum an_half_level {
     AN_HALF_TRUE_ZERO = 0, /* half of the plateau above zero (the plastic gives no signal) */
     AN_HALF_FLOOR_MODEL,   /* the same half level in signal space, through the Rician model of the
                               magnitude with the noise measured in air (the default) */
-    AN_HALF_BACKGROUND,    /* half between the plateau and the raw background mean (biased; bench only) */
+    AN_HALF_BACKGROUND, /* half between the plateau and the raw background mean (biased; bench only)
+                         */
 } an_half_level;
 
 typedef struct an_params {
@@ -93,8 +96,8 @@ typedef struct an_image {
     const float *px;   /* row-major, stride floats per row */
     int width, height; /* columns, rows */
     ptrdiff_t stride;
-    double col_mm;     /* spacing between columns (DICOM PixelSpacing[1]) */
-    double row_mm;     /* spacing between rows (DICOM PixelSpacing[0]) */
+    double col_mm; /* spacing between columns (DICOM PixelSpacing[1]) */
+    double row_mm; /* spacing between rows (DICOM PixelSpacing[0]) */
     double ipp[3], iop[6];
     int has_geometry;
     double nominal_thickness_mm; /* SliceThickness, or NAN */
@@ -104,7 +107,9 @@ typedef struct an_image {
 typedef enum an_verdict { AN_PASS = 0, AN_WARN, AN_FAIL, AN_UNMEASURABLE } an_verdict;
 const char *an_verdict_name(an_verdict v); /* "pass", "warn", "fail", "unmeasurable" */
 
-typedef struct an_point { double x, y; } an_point; /* stored-image pixels: column, row (centres) */
+typedef struct an_point {
+    double x, y;
+} an_point; /* stored-image pixels: column, row (centres) */
 
 typedef struct an_profile {
     int n;
@@ -117,7 +122,7 @@ typedef struct an_strip {
     char reason[AN_REASON_MAX];
     double length_mm, length_unc_mm; /* FWHM along the strip */
     double fwtm_mm;
-    double centre_u_mm;              /* mid-point of the half-level crossings, phantom u */
+    double centre_u_mm; /* mid-point of the half-level crossings, phantom u */
     double plateau, plateau_sd, half_level, floor;
     double half_width_mm;            /* across-strip averaging half width */
     an_point line0, line1;           /* ends of the sampled line */
@@ -125,26 +130,26 @@ typedef struct an_strip {
     double cross_lo_mm, cross_hi_mm; /* the crossings on the profile's abscissa */
     an_profile profile;              /* along the strip */
     /* added (additive) */
-    double centre_unc_mm;            /* of centre_u_mm */
-    double plateau_unc;              /* standard uncertainty of the plateau level (plateau_sd is the
-                                        SD of the profile samples about the fitted top) */
-    double slot_kappa_per_mm;        /* (q''/q' at the high crossing - at the low one) / 24, from
-                                        the local fits: a box of width k along the strip changes the
-                                        FWHM by kappa k^2 (docs/methods.md, slot correction) */
+    double centre_unc_mm;     /* of centre_u_mm */
+    double plateau_unc;       /* standard uncertainty of the plateau level (plateau_sd is the
+                                 SD of the profile samples about the fitted top) */
+    double slot_kappa_per_mm; /* (q''/q' at the high crossing - at the low one) / 24, from
+                                 the local fits: a box of width k along the strip changes the
+                                 FWHM by kappa k^2 (docs/methods.md, slot correction) */
 } an_strip;
 
 typedef struct an_thickness {
     int measured;
-    int slice, image;                /* ordinal, index into the input images */
-    an_strip top, bottom;            /* bottom unused for single-ramp and wedge methods */
+    int slice, image;     /* ordinal, index into the input images */
+    an_strip top, bottom; /* bottom unused for single-ramp and wedge methods */
     double top_thickness_mm, bottom_thickness_mm;
-    double acr_mm;                   /* 0.2 a b / (a + b) */
-    double corrected_mm;             /* tilt-corrected; the reported thickness */
+    double acr_mm;       /* 0.2 a b / (a + b) */
+    double corrected_mm; /* tilt-corrected; the reported thickness */
     double tilt_deg, tilt_unc_deg;
-    double fwtm_mm;                  /* of the combined slice profile along the normal */
-    double uncertainty_mm;           /* of corrected_mm */
+    double fwtm_mm;        /* of the combined slice profile along the normal */
+    double uncertainty_mm; /* of corrected_mm */
     double nominal_mm, limit_lo_mm, limit_hi_mm;
-    an_profile zprofile;             /* slice profile vs position along the normal, peak 1 */
+    an_profile zprofile; /* slice profile vs position along the normal, peak 1 */
     an_verdict verdict;
     char reason[AN_REASON_MAX];
 } an_thickness;
@@ -152,20 +157,20 @@ typedef struct an_thickness {
 typedef struct an_bar {
     int measured;
     double length_mm, unc_mm;
-    an_point top, end;               /* bar top and found 50 % end */
-    double level_hi, level_lo;       /* levels either side of the end */
-    an_profile profile;              /* along the bar from its top downwards */
+    an_point top, end;         /* bar top and found 50 % end */
+    double level_hi, level_lo; /* levels either side of the end */
+    an_profile profile;        /* along the bar from its top downwards */
 } an_bar;
 
 typedef struct an_position {
     int measured;
     int slice, image;
     an_bar left, right;
-    double bar_difference_mm;        /* right minus left */
-    double displacement_mm;          /* -(bar difference) / 2, toward the last slice */
-    double uncertainty_mm;           /* of bar_difference_mm */
+    double bar_difference_mm; /* right minus left */
+    double displacement_mm;   /* -(bar difference) / 2, toward the last slice */
+    double uncertainty_mm;    /* of bar_difference_mm */
     double ramp_displacement_mm, ramp_displacement_unc_mm; /* ramp slice only, else NAN */
-    double z_mm;                     /* slice centre along the normal (from ImagePositionPatient) */
+    double z_mm; /* slice centre along the normal (from ImagePositionPatient) */
     double limit_mm;
     an_verdict verdict;
     char reason[AN_REASON_MAX];
@@ -173,10 +178,10 @@ typedef struct an_position {
 
 typedef struct an_phantom_fit {
     int found;
-    an_point centre;                 /* stored-image pixels */
+    an_point centre; /* stored-image pixels */
     double radius_mm;
-    double rotation_deg;             /* in-plane, counter-clockwise as displayed in the phantom frame */
-    int flip_u, flip_v, transpose;   /* how the stored image maps to the phantom frame */
+    double rotation_deg; /* in-plane, counter-clockwise as displayed in the phantom frame */
+    int flip_u, flip_v, transpose; /* how the stored image maps to the phantom frame */
 } an_phantom_fit;
 
 typedef struct an_position_model {
@@ -186,13 +191,13 @@ typedef struct an_position_model {
 
 typedef struct an_series_result {
     int n_images;
-    int ordinal[AN_MAX_IMAGES];      /* per input image: slice ordinal 1..n_slices, 0 if unplaced */
+    int ordinal[AN_MAX_IMAGES]; /* per input image: slice ordinal 1..n_slices, 0 if unplaced */
     an_phantom_fit phantom[AN_MAX_IMAGES];
-    double rotation_deg;             /* the series' in-plane rotation estimate */
-    double noise_sd;                 /* per-channel Gaussian SD estimated from air */
-    double snr;                      /* as the phantom file defines it */
+    double rotation_deg; /* the series' in-plane rotation estimate */
+    double noise_sd;     /* per-channel Gaussian SD estimated from air */
+    double snr;          /* as the phantom file defines it */
     an_thickness thickness;
-    an_position position[2];         /* the two wedge slices, ramp slice first */
+    an_position position[2]; /* the two wedge slices, ramp slice first */
     an_position_model position_model;
     int pitch_measured;
     double pitch_deg, pitch_unc_deg; /* from ramp vs wedge displacement on the ramp slice */
@@ -204,11 +209,11 @@ typedef struct an_series_result {
  * part is unmeasurable (its verdict says so, with the reason). Returns SW_OK when the analysis ran,
  * SW_EINVAL on bad arguments (n < 1 or > AN_MAX_IMAGES, NULL views). */
 sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
-                            const an_tolerance *tol, const an_params *params,
-                            an_series_result *out, sw_error *err);
+                            const an_tolerance *tol, const an_params *params, an_series_result *out,
+                            sw_error *err);
 
 /* ---- formulas (exposed for tests and the report) ---- */
-double an_acr_thickness(double a_mm, double b_mm, double tan_theta);      /* 0.2 a b / (a + b) at 0.1 */
+double an_acr_thickness(double a_mm, double b_mm, double tan_theta); /* 0.2 a b / (a + b) at 0.1 */
 /* Tilt-corrected crossed-ramp thickness for ramps whose angles to the slice add to phi. */
 double an_corrected_thickness(double a_mm, double b_mm, double tan_phi);
 double an_tilt_deg(double t_mm, double a_mm, double tan_theta);

@@ -14,7 +14,8 @@ int an_poly_fit(const double *p, int i0, int i1, double ic, double step, int deg
     double hs = fmax(fabs(i0 - ic), fabs(i1 - ic)) * step;
     if (!(hs > 0))
         return -1;
-    /* Normal equations in s = t / hs; A is m x m, augmented with the identity to get the inverse. */
+    /* Normal equations in s = t / hs; A is m x m, augmented with the identity to get the inverse.
+     */
     double S[7] = {0}, A[4][8];
     int cnt = 0;
     for (int i = i0; i <= i1; i++) {
@@ -153,8 +154,9 @@ int an_xing_find_in(const an_line *l, const double *p, int lim0, int lim1, doubl
         hn = 2;
     double c[4], t = NAN, ic = guess;
     int i0 = 0, i1 = 0, conv = 0, deg = 3;
-    /* A cubic follows an edge's sigmoid shape through the crossing; its value at the window's centre
-     * has the same noise as a quadratic's. Fall back to lower degrees when it has no clean root. */
+    /* A cubic follows an edge's sigmoid shape through the crossing; its value at the window's
+     * centre has the same noise as a quadratic's. Fall back to lower degrees when it has no clean
+     * root. */
     for (; deg >= 1; deg--) {
         ic = guess;
         for (int it = 0; it < 8 && !conv; it++) {
@@ -317,13 +319,20 @@ static double i0e(double x)
     if (x < 3.75) {
         double t = x / 3.75, y = t * t;
         return exp(-x) *
-               (1.0 + y * (3.5156229 + y * (3.0899424 + y * (1.2067492 +
-                y * (0.2659732 + y * (0.0360768 + y * 0.0045813))))));
+               (1.0 +
+                y * (3.5156229 +
+                     y * (3.0899424 +
+                          y * (1.2067492 + y * (0.2659732 + y * (0.0360768 + y * 0.0045813))))));
     }
     double t = 3.75 / x;
-    return (0.39894228 + t * (0.01328592 + t * (0.00225319 + t * (-0.00157565 +
-            t * (0.00916281 + t * (-0.02057706 + t * (0.02635537 + t * (-0.01647633 +
-            t * 0.00392377)))))))) / sqrt(x);
+    return (0.39894228 +
+            t * (0.01328592 +
+                 t * (0.00225319 +
+                      t * (-0.00157565 +
+                           t * (0.00916281 +
+                                t * (-0.02057706 +
+                                     t * (0.02635537 + t * (-0.01647633 + t * 0.00392377)))))))) /
+           sqrt(x);
 }
 
 static double i1e(double x)
@@ -331,13 +340,20 @@ static double i1e(double x)
     if (x < 3.75) {
         double t = x / 3.75, y = t * t;
         return exp(-x) * x *
-               (0.5 + y * (0.87890594 + y * (0.51498869 + y * (0.15084934 +
-                y * (0.02658733 + y * (0.00301532 + y * 0.00032411))))));
+               (0.5 + y * (0.87890594 +
+                           y * (0.51498869 +
+                                y * (0.15084934 +
+                                     y * (0.02658733 + y * (0.00301532 + y * 0.00032411))))));
     }
     double t = 3.75 / x;
-    return (0.39894228 + t * (-0.03988024 + t * (-0.00362018 + t * (0.00163801 +
-            t * (-0.01031555 + t * (0.02282967 + t * (-0.02895312 + t * (0.01787654 -
-            t * 0.00420059)))))))) / sqrt(x);
+    return (0.39894228 +
+            t * (-0.03988024 +
+                 t * (-0.00362018 +
+                      t * (0.00163801 +
+                           t * (-0.01031555 +
+                                t * (0.02282967 +
+                                     t * (-0.02895312 + t * (0.01787654 - t * 0.00420059)))))))) /
+           sqrt(x);
 }
 
 /* Mean of the Rice distribution: sigma sqrt(pi/2) L_1/2(-a^2 / 2 sigma^2), written with the scaled

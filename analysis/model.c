@@ -47,10 +47,10 @@ void an_model_large(an_model *m)
 
 sw_status an_model_check(const an_model *m, sw_error *err)
 {
-#define NEED(cond, what) \
-    do { \
-        if (!(cond)) \
-            return sw_error_set(err, SW_EINVAL, "phantom model %s: %s", m->name, what); \
+#define NEED(cond, what)                                                                           \
+    do {                                                                                           \
+        if (!(cond))                                                                               \
+            return sw_error_set(err, SW_EINVAL, "phantom model %s: %s", m->name, what);            \
     } while (0)
     NEED(m->radius_mm > 0 && isfinite(m->radius_mm), "radius must be positive");
     NEED(m->n_slices >= 1 && m->n_slices <= AN_MAX_IMAGES, "slice count out of range");
@@ -60,7 +60,8 @@ sw_status an_model_check(const an_model *m, sw_error *err)
          "thickness insert extent is empty");
     NEED(m->n_ramps >= 0 && m->n_ramps <= 2, "ramp count must be 0, 1 or 2");
     NEED(m->method != AN_METHOD_CROSSED_RAMPS || m->n_ramps == 2, "crossed ramps need two ramps");
-    NEED(m->method != AN_METHOD_SINGLE_RAMP || m->n_ramps == 1, "a single-ramp phantom needs one ramp");
+    NEED(m->method != AN_METHOD_SINGLE_RAMP || m->n_ramps == 1,
+         "a single-ramp phantom needs one ramp");
     for (int i = 0; i < m->n_ramps; i++) {
         NEED(m->ramp[i].v_min < m->ramp[i].v_max, "ramp extent is empty");
         NEED(m->ramp[i].slope != 0 && isfinite(m->ramp[i].slope), "ramp slope must be non-zero");
@@ -68,9 +69,8 @@ sw_status an_model_check(const an_model *m, sw_error *err)
     NEED(m->method != AN_METHOD_SINGLE_WEDGE || m->wedge_slope > 0, "wedge slope must be positive");
     NEED(m->ramp_slice >= 1 && m->ramp_slice <= m->n_slices, "ramp slice out of range");
     if (m->has_wedges) {
-        NEED(m->wedge_slice[0] >= 1 && m->wedge_slice[0] <= m->n_slices &&
-                 m->wedge_slice[1] >= 1 && m->wedge_slice[1] <= m->n_slices &&
-                 m->wedge_slice[0] != m->wedge_slice[1],
+        NEED(m->wedge_slice[0] >= 1 && m->wedge_slice[0] <= m->n_slices && m->wedge_slice[1] >= 1 &&
+                 m->wedge_slice[1] <= m->n_slices && m->wedge_slice[0] != m->wedge_slice[1],
              "wedge slices out of range");
         NEED(m->bar_len0_mm > 0, "bar length must be positive");
         for (int i = 0; i < 2; i++)
@@ -96,8 +96,8 @@ void an_params_default(an_params *p)
 {
     memset(p, 0, sizeof *p);
     /* The Rician-consistent half level: half of the plateau above the true zero, taken in signal
-     * space and mapped back through the magnitude's mean. It equals the ACR convention (plateau / 2)
-     * at high SNR and removes the magnitude bias of the half-level crossing at low strip SNR
+     * space and mapped back through the magnitude's mean. It equals the ACR convention (plateau /
+     * 2) at high SNR and removes the magnitude bias of the half-level crossing at low strip SNR
      * (docs/methods.md, "Half level"); without a noise estimate it falls back to plateau / 2. */
     p->half_level = AN_HALF_FLOOR_MODEL;
     p->slot_correction = 0;
@@ -124,8 +124,8 @@ double an_acr_thickness(double a_mm, double b_mm, double tan_theta)
     return 2.0 * tan_theta * a_mm * b_mm / (a_mm + b_mm);
 }
 
-/* Two ramps whose angles to the slice add to phi, tilted by an unknown angle: with T = a tan(t1) and
- * T = b tan(phi - t1), eliminating t1 gives T^2 tan(phi) + T (a + b) - a b tan(phi) = 0. */
+/* Two ramps whose angles to the slice add to phi, tilted by an unknown angle: with T = a tan(t1)
+ * and T = b tan(phi - t1), eliminating t1 gives T^2 tan(phi) + T (a + b) - a b tan(phi) = 0. */
 double an_corrected_thickness(double a_mm, double b_mm, double tan_phi)
 {
     if (!(a_mm > 0) || !(b_mm > 0) || !(tan_phi > 0))

@@ -155,8 +155,8 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
     memset(d, 0, sizeof *d);
     d->xc = d->yc = d->r_mm = NAN;
     size_t npx;
-    if (im->width < 8 || im->height < 8 || sw_mul_size((size_t)im->width, (size_t)im->height, &npx) ||
-        npx > (size_t)INT32_MAX) {
+    if (im->width < 8 || im->height < 8 ||
+        sw_mul_size((size_t)im->width, (size_t)im->height, &npx) || npx > (size_t)INT32_MAX) {
         sw_strlcpy(d->reason, "phantom not found: image too small or too large", sizeof d->reason);
         return 0;
     }
@@ -257,7 +257,8 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
         double r6 = 0.6 * R;
         for (int y = 0; y < ch; y++)
             for (int x = 0; x < cw; x++) {
-                double dx = (x * f + 0.5 * (o0 + o1) - xc) * col, dy = (y * f + 0.5 * (o0 + o1) - yc) * row;
+                double dx = (x * f + 0.5 * (o0 + o1) - xc) * col,
+                       dy = (y * f + 0.5 * (o0 + o1) - yc) * row;
                 float v = cv[(size_t)y * cw + x];
                 if (dx * dx + dy * dy <= r6 * r6 && isfinite(v))
                     buf[nb++] = v;
@@ -284,7 +285,8 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
         size_t in = 0, inside = 0, outside = 0;
         for (int y = 0; y < ch; y++)
             for (int x = 0; x < cw; x++) {
-                double ax = (x * f + 0.5 * (o0 + o1) - xc) * col, ay = (y * f + 0.5 * (o0 + o1) - yc) * row;
+                double ax = (x * f + 0.5 * (o0 + o1) - xc) * col,
+                       ay = (y * f + 0.5 * (o0 + o1) - yc) * row;
                 double rr = ax * ax + ay * ay;
                 int msk = m[(size_t)y * cw + x] != 4;
                 if (rr <= 0.81 * R * R) {
@@ -300,8 +302,10 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
         }
         double tr = sxx + syy, det = sxx * syy - sxy * sxy, disc = sqrt(fmax(0, tr * tr / 4 - det));
         double l1 = tr / 2 + disc, l2 = tr / 2 - disc;
-        if (!(l2 > 0) || l1 / l2 > 1.3 || !(R > 0.6 * model->radius_mm && R < 1.4 * model->radius_mm)) {
-            sw_strlcpy(d->reason, "phantom not found: no disc of the model's size", sizeof d->reason);
+        if (!(l2 > 0) || l1 / l2 > 1.3 ||
+            !(R > 0.6 * model->radius_mm && R < 1.4 * model->radius_mm)) {
+            sw_strlcpy(d->reason, "phantom not found: no disc of the model's size",
+                       sizeof d->reason);
             return 0;
         }
         d->xc = xc;
@@ -381,7 +385,7 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
             }
         }
         /* Solve JtJ delta = -Jtr (3x3, Cramer). */
-        double (*A)[3] = JtJ;
+        double(*A)[3] = JtJ;
         double det = A[0][0] * (A[1][1] * A[2][2] - A[1][2] * A[2][1]) -
                      A[0][1] * (A[1][0] * A[2][2] - A[1][2] * A[2][0]) +
                      A[0][2] * (A[1][0] * A[2][1] - A[1][1] * A[2][0]);
@@ -395,7 +399,8 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
                 M[r][c] = b[r];
             dl[c] = (M[0][0] * (M[1][1] * M[2][2] - M[1][2] * M[2][1]) -
                      M[0][1] * (M[1][0] * M[2][2] - M[1][2] * M[2][0]) +
-                     M[0][2] * (M[1][0] * M[2][1] - M[1][1] * M[2][0])) / det;
+                     M[0][2] * (M[1][0] * M[2][1] - M[1][1] * M[2][0])) /
+                    det;
         }
         fx += dl[0];
         fy += dl[1];
@@ -427,7 +432,8 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
     return 0;
 }
 
-/* Pixels of the air around the disc, in four bands (left, right, top, bottom of the stored image). */
+/* Pixels of the air around the disc, in four bands (left, right, top, bottom of the stored image).
+ */
 double an_noise_air(const an_image *im, const an_disc *d, float *scratch)
 {
     if (!d->found)
@@ -480,8 +486,8 @@ double an_noise_fluid(const an_image *im, const an_disc *d, float *scratch)
     size_t n = 0;
     for (int y = (int)fmax(0, d->yc - rr / row); y <= (int)fmin(im->height - 1, d->yc + rr / row);
          y++)
-        for (int x = (int)fmax(0, d->xc - rr / col);
-             x < (int)fmin(im->width - 1, d->xc + rr / col); x++) {
+        for (int x = (int)fmax(0, d->xc - rr / col); x < (int)fmin(im->width - 1, d->xc + rr / col);
+             x++) {
             double dx = (x - d->xc) * col, dy = (y - d->yc) * row;
             if (dx * dx + dy * dy > rr * rr)
                 continue;
@@ -506,8 +512,8 @@ double an_fluid_mean(const an_image *im, const an_disc *d, double frac, float *s
     size_t n = 0;
     for (int y = (int)fmax(0, d->yc - rr / row); y <= (int)fmin(im->height - 1, d->yc + rr / row);
          y++)
-        for (int x = (int)fmax(0, d->xc - rr / col); x <= (int)fmin(im->width - 1, d->xc + rr / col);
-             x++) {
+        for (int x = (int)fmax(0, d->xc - rr / col);
+             x <= (int)fmin(im->width - 1, d->xc + rr / col); x++) {
             double dx = (x - d->xc) * col, dy = (y - d->yc) * row;
             float v = im->px[(ptrdiff_t)y * im->stride + x];
             if (dx * dx + dy * dy <= rr * rr && isfinite(v))

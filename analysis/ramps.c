@@ -129,8 +129,10 @@ static void line_init(an_line *l, const an_image *im, const an_pose *p, double u
 static int long_edges(const an_image *im, const an_pose *pose, const an_model *m, double *at,
                       double *bt, double *sbt, double *ab, double *bb, double *sbb, double *buf)
 {
-    double U = 0.5 * (m->insert_u_max - m->insert_u_min), uc = 0.5 * (m->insert_u_max + m->insert_u_min);
-    double Vh = 0.5 * (m->insert_v_max - m->insert_v_min), vc = 0.5 * (m->insert_v_max + m->insert_v_min);
+    double U = 0.5 * (m->insert_u_max - m->insert_u_min),
+           uc = 0.5 * (m->insert_u_max + m->insert_u_min);
+    double Vh = 0.5 * (m->insert_v_max - m->insert_v_min),
+           vc = 0.5 * (m->insert_v_max + m->insert_v_min);
     double ut[EDGE_MAX], vt[EDGE_MAX], ub[EDGE_MAX], vb[EDGE_MAX];
     int nt = 0, nb = 0;
     double span = Vh + 14, step = 0.5;
@@ -201,7 +203,8 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
         goto out;
     }
     /* Ends: rows inside the plastic (between the strips and beside them); median of the rows. */
-    double U = 0.5 * (m->insert_u_max - m->insert_u_min), uc = 0.5 * (m->insert_u_max + m->insert_u_min);
+    double U = 0.5 * (m->insert_u_max - m->insert_u_min),
+           uc = 0.5 * (m->insert_u_max + m->insert_u_min);
     double reach = fmin(U + 25, 0.92 * d->r_mm), step = 0.25;
     int n = (int)(2 * reach / step) + 1;
     if (n > 4096)
@@ -274,7 +277,12 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
     int want = m->n_ramps >= 2 ? 2 : 1;
     ins->n_strips = 0;
     for (int s = 0; s < want; s++) {
-        int j0 = want == 1 ? 0 : s == 0 ? jc + 2 : 0, j1 = want == 1 ? nv - 1 : s == 0 ? nv - 1 : jc - 2;
+        int j0 = want == 1 ? 0
+                 : s == 0  ? jc + 2
+                           : 0,
+            j1 = want == 1 ? nv - 1
+                 : s == 0  ? nv - 1
+                           : jc - 2;
         int jp = -1;
         for (int j = j0; j <= j1; j++)
             if (jp < 0 || As[j] > As[jp])
@@ -282,7 +290,9 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
         if (jp < 0 || jp <= j0 + 1 || jp >= j1 - 1 || !(As[jp] - floor > 0.02 * d->fluid)) {
             ins->found = 0;
             snprintf(ins->reason, sizeof ins->reason, "strip not found: no %s strip in the insert",
-                     want == 1 ? "" : s == 0 ? "top" : "bottom");
+                     want == 1 ? ""
+                     : s == 0  ? "top"
+                               : "bottom");
             goto out;
         }
         double vpk = ab + EDGE_BLUR + jp * vs;
@@ -303,7 +313,8 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
             if (sm[i] > sm[ip])
                 ip = i;
         double half = 0.5 * (sm[ip] + floor);
-        double ia = an_walk_cross(sm, nu2, ip, -1, half, 1), ib = an_walk_cross(sm, nu2, ip, +1, half, 1);
+        double ia = an_walk_cross(sm, nu2, ip, -1, half, 1),
+               ib = an_walk_cross(sm, nu2, ip, +1, half, 1);
         if (!isfinite(ia))
             ia = 0;
         if (!isfinite(ib))
@@ -316,7 +327,8 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
         int nuu = (int)(0.5 * len / 1.0) + 1;
         if (nvv < 5 || nvv > 4096) {
             ins->found = 0;
-            sw_strlcpy(ins->reason, "strip not found: no room across the strip", sizeof ins->reason);
+            sw_strlcpy(ins->reason, "strip not found: no room across the strip",
+                       sizeof ins->reason);
             goto out;
         }
         double Bv[4096];
@@ -336,7 +348,8 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
             bmin = fmin(bmin, Bs[j]);
         }
         double hb = 0.5 * (Bs[kp] + bmin);
-        double ja = an_walk_cross(Bs, nvv, kp, -1, hb, 1), jb = an_walk_cross(Bs, nvv, kp, +1, hb, 1);
+        double ja = an_walk_cross(Bs, nvv, kp, -1, hb, 1),
+               jb = an_walk_cross(Bs, nvv, kp, +1, hb, 1);
         double cen, wid;
         if (isfinite(ja) && isfinite(jb)) {
             cen = wa + 0.5 * (ja + jb) * 0.1;
@@ -364,8 +377,8 @@ static double level_for(an_half_level how, double P, double B, double sigma, dou
     case AN_HALF_FLOOR_MODEL:
         if (sigma > 0 && sigma_x > 0) {
             /* The magnitude of a signal a has mean M(a); the profile shows M(a(u)), so the crossing
-             * of a = frac A_P is where the profile equals M(frac M^-1(P)). sigma is the noise at the
-             * plateau, sigma_x at the crossing (they differ after the shading correction). */
+             * of a = frac A_P is where the profile equals M(frac M^-1(P)). sigma is the noise at
+             * the plateau, sigma_x at the crossing (they differ after the shading correction). */
             double ap = an_rice_invert(P, sigma), l = an_rice_mean(frac * ap, sigma_x);
             double e = 1e-4 * fmax(P, sigma);
             double ap2 = an_rice_invert(P + e, sigma);
@@ -379,8 +392,7 @@ static double level_for(an_half_level how, double P, double B, double sigma, dou
             return B + frac * (P - B);
         }
         return NAN;
-    case AN_HALF_TRUE_ZERO:
-        break;
+    case AN_HALF_TRUE_ZERO: break;
     }
     *dldp = frac;
     return frac * P;
@@ -396,7 +408,8 @@ static double sd_at(double m, double sigma)
 
 /* Gain g(u) = F(u_ref) / F(u) along the strip at v_s from the fluid bands beside the insert's long
  * edges (2.5 to 5.5 mm outside each), each fitted by a quartic in u, interpolated linearly in v;
- * u_ref is the insert's middle. All ones when the bands are not usable (leave the image, too dark). */
+ * u_ref is the insert's middle. All ones when the bands are not usable (leave the image, too dark).
+ */
 static void shading_gain(const an_image *im, const an_pose *pose, const an_insert *ins, double vs,
                          double step, int n, double *gain)
 {
@@ -503,13 +516,14 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     an_pose_to_px(pose, ins->u_lo, ins->strip_v[s], &out->line0.x, &out->line0.y);
     an_pose_to_px(pose, ins->u_lo + (n - 1) * step, ins->strip_v[s], &out->line1.x, &out->line1.y);
     if (an_line_sample(&l, p)) {
-        sw_strlcpy(out->reason, "strip not measurable: its line leaves the image", sizeof out->reason);
+        sw_strlcpy(out->reason, "strip not measurable: its line leaves the image",
+                   sizeof out->reason);
         goto out;
     }
     /* Receive shading: the fluid just outside the insert's long edges shows the coil's sensitivity
      * along u; a smooth (quartic) fit of it, interpolated to the strip's v, divides the profile, so
-     * that a sensitivity rising toward the rim does not lengthen the strip. The noise of each sample
-     * is scaled by the same gain (an_line.gain). */
+     * that a sensitivity rising toward the rim does not lengthen the strip. The noise of each
+     * sample is scaled by the same gain (an_line.gain). */
     shading_gain(im, pose, ins, ins->strip_v[s], step, n, gain);
     for (int i = 0; i < n; i++)
         p[i] *= gain[i];
@@ -526,7 +540,8 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     /* Samples within 2.5 mm of an end of the insert carry its edge's blur and ringing. */
     int edge = (int)ceil(2.5 / step);
     if (n < 4 * edge) {
-        sw_strlcpy(out->reason, "strip not measurable: the insert is too short", sizeof out->reason);
+        sw_strlcpy(out->reason, "strip not measurable: the insert is too short",
+                   sizeof out->reason);
         goto out;
     }
     int ip = edge;
@@ -567,8 +582,8 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
         sw_strlcpy(out->reason, "profile malformed: no strip plateau", sizeof out->reason);
         goto out;
     }
-    /* Plateau: a quadratic fitted over the middle 60 % of the strip, evaluated at its centre, so that
-     * neither a noisy maximum nor the rounded top of a smooth profile biases it. */
+    /* Plateau: a quadratic fitted over the middle 60 % of the strip, evaluated at its centre, so
+     * that neither a noisy maximum nor the rounded top of a smooth profile biases it. */
     int a0 = (int)floor(c0 - 0.3 * L0 / step), a1 = (int)ceil(c0 + 0.3 * L0 / step);
     double cq[3];
     if (an_quad_fit(p, a0, a1, c0, step, cq, 0, g)) {
@@ -604,18 +619,22 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     out->floor = B;
     double dldp, dldp_hi, h = 1.0;
     /* first guesses of the crossings, for the noise there after the shading correction */
-    double g0 = an_walk_cross(ps, n, ip, -1, 0.5 * P, 1), g1 = an_walk_cross(ps, n, ip, +1, 0.5 * P, 1);
+    double g0 = an_walk_cross(ps, n, ip, -1, 0.5 * P, 1),
+           g1 = an_walk_cross(ps, n, ip, +1, 0.5 * P, 1);
     double gc = gain[(int)lround(c0)];
-    double glo_gain = isfinite(g0) ? gain[(int)g0] : gc, ghi_gain = isfinite(g1) ? gain[(int)g1] : gc;
+    double glo_gain = isfinite(g0) ? gain[(int)g0] : gc,
+           ghi_gain = isfinite(g1) ? gain[(int)g1] : gc;
     double lvl = level_for(par->half_level, P, B, sigma * gc, sigma * glo_gain, 0.5, &dldp);
     double lvl_hi = level_for(par->half_level, P, B, sigma * gc, sigma * ghi_gain, 0.5, &dldp_hi);
     if (!isfinite(lvl) || !isfinite(lvl_hi)) {
-        sw_strlcpy(out->reason, "profile malformed: no background beside the strip", sizeof out->reason);
+        sw_strlcpy(out->reason, "profile malformed: no background beside the strip",
+                   sizeof out->reason);
         goto out;
     }
     out->half_level = 0.5 * (lvl + lvl_hi);
     an_xing xl, xh;
-    double glo = an_walk_cross(ps, n, ip, -1, lvl, 1), ghi = an_walk_cross(ps, n, ip, +1, lvl_hi, 1);
+    double glo = an_walk_cross(ps, n, ip, -1, lvl, 1),
+           ghi = an_walk_cross(ps, n, ip, +1, lvl_hi, 1);
     if (!isfinite(glo) || !isfinite(ghi)) {
         sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
         goto out;
@@ -632,9 +651,13 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
         double e0 = fmin(h0, (glo - edge) * step), e1 = fmin(h0, (n - 1 - edge - ghi) * step);
         double ks = 0;
         int kn = 0;
-        if (e0 >= 1.0 && !an_xing_find_in(NULL, p, edge, n - 1 - edge, glo, lvl, e0 / step, +1, &f0) && f0.slope > 0)
+        if (e0 >= 1.0 &&
+            !an_xing_find_in(NULL, p, edge, n - 1 - edge, glo, lvl, e0 / step, +1, &f0) &&
+            f0.slope > 0)
             ks += f0.slope / step, kn++;
-        if (e1 >= 1.0 && !an_xing_find_in(NULL, p, edge, n - 1 - edge, ghi, lvl_hi, e1 / step, -1, &f1) && f1.slope < 0)
+        if (e1 >= 1.0 &&
+            !an_xing_find_in(NULL, p, edge, n - 1 - edge, ghi, lvl_hi, e1 / step, -1, &f1) &&
+            f1.slope < 0)
             ks -= f1.slope / step, kn++;
         double rise = kn && ks > 0 ? 0.5 * P / (ks / kn) : 8.0;
         h = fmin(fmax(H_RISE * rise, 3.0), H_LEN * L0);
@@ -647,7 +670,8 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     }
     if (an_xing_find_in(&l, p, edge, n - 1 - edge, glo, lvl, hlo, +1, &xl) ||
         an_xing_find_in(&l, p, edge, n - 1 - edge, ghi, lvl_hi, hhi, -1, &xh)) {
-        sw_strlcpy(out->reason, "profile malformed: no clean half-level crossing", sizeof out->reason);
+        sw_strlcpy(out->reason, "profile malformed: no clean half-level crossing",
+                   sizeof out->reason);
         goto out;
     }
     if (xl.i0 < edge || xh.i1 > n - 1 - edge) {
@@ -662,7 +686,8 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
      * the smoothed profile stays above the level inside and below it outside. A noisy or irregular
      * profile that fails this is not measured rather than measured wrongly. */
     {
-        int mg2 = (int)ceil(fmax(2 * fmax(hlo, hhi), 0.05 * L0) / step), wide = (int)(0.25 * L0 / step);
+        int mg2 = (int)ceil(fmax(2 * fmax(hlo, hhi), 0.05 * L0) / step),
+            wide = (int)(0.25 * L0 / step);
         int bad_in = 0, n_in = 0, bad_out = 0, n_out = 0;
         for (int i = (int)xl.idx + mg2; i <= (int)xh.idx - mg2; i++, n_in++)
             bad_in += ps[i] < (i < c0 ? lvl : lvl_hi);
@@ -677,7 +702,8 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
                 bad_out += ps[i] > lvl_hi;
             }
         if ((n_in > 0 && bad_in > 0.1 * n_in) || (n_out > 0 && bad_out > 0.1 * n_out)) {
-            sw_strlcpy(out->reason, "profile malformed: the strip crosses its half level more than twice",
+            sw_strlcpy(out->reason,
+                       "profile malformed: the strip crosses its half level more than twice",
                        sizeof out->reason);
             goto out;
         }
@@ -691,7 +717,8 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
      * so the FWHM of f is L_g + kappa k^2 with kappa the difference of those terms / 24. */
     {
         double pc = 2 * cq[2];
-        out->slot_kappa_per_mm = ((xh.curv - dldp_hi * pc) / xh.slope - (xl.curv - dldp * pc) / xl.slope) / 24.0;
+        out->slot_kappa_per_mm =
+            ((xh.curv - dldp_hi * pc) / xh.slope - (xl.curv - dldp * pc) / xl.slope) / 24.0;
     }
     out->centre_u_mm = 0.5 * (out->cross_lo_mm + out->cross_hi_mm);
     an_pose_to_px(pose, out->cross_lo_mm, ins->strip_v[s], &out->cross_lo.x, &out->cross_lo.y);
@@ -699,23 +726,29 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     /* Uncertainty: each crossing's own noise over its slope, plus the level's (shared) noise. */
     /* ss already carries the gain; the Rician SD is that of the uncorrected sample */
     double sdl = sd_at(lvl / glo_gain, sigma), sdh = sd_at(lvl_hi / ghi_gain, sigma);
-    double vlo = sdl * sdl * xl.ss / (xl.slope * xl.slope), vhi = sdh * sdh * xh.ss / (xh.slope * xh.slope);
+    double vlo = sdl * sdl * xl.ss / (xl.slope * xl.slope),
+           vhi = sdh * sdh * xh.ss / (xh.slope * xh.slope);
     double vlev = dldp * dldp * sdP * sdP * ssP;
     if (par->half_level == AN_HALF_BACKGROUND)
-        vlev += 0.25 * sdl * sdl / (bc > 0 ? bc * step : 1); /* about one independent sample per mm */
+        vlev +=
+            0.25 * sdl * sdl / (bc > 0 ? bc * step : 1); /* about one independent sample per mm */
     double k = 1 / fabs(xl.slope) + dldp_hi / dldp / fabs(xh.slope);
     out->length_unc_mm = sqrt(vlo + vhi + vlev * k * k);
-    out->centre_unc_mm = 0.5 * sqrt(vlo + vhi + vlev * pow(1 / xl.slope + dldp_hi / dldp / xh.slope, 2));
+    out->centre_unc_mm =
+        0.5 * sqrt(vlo + vhi + vlev * pow(1 / xl.slope + dldp_hi / dldp / xh.slope, 2));
     /* FWTM on the same profile (NAN when the tenth-level points are not both inside). The tenth
-     * level lies near the noise floor, so it is always taken through the Rician model when the noise
-     * is known (a true-zero tenth level may sit below the floor and never be crossed). */
+     * level lies near the noise floor, so it is always taken through the Rician model when the
+     * noise is known (a true-zero tenth level may sit below the floor and never be crossed). */
     double dl10;
-    double l10 = level_for(par->half_level == AN_HALF_BACKGROUND ? AN_HALF_BACKGROUND : AN_HALF_FLOOR_MODEL,
-                           P, B, sigma * gc, sigma * gc, 0.1, &dl10);
+    double l10 =
+        level_for(par->half_level == AN_HALF_BACKGROUND ? AN_HALF_BACKGROUND : AN_HALF_FLOOR_MODEL,
+                  P, B, sigma * gc, sigma * gc, 0.1, &dl10);
     double t0 = an_walk_cross(ps, n, ip, -1, l10, 1), t1 = an_walk_cross(ps, n, ip, +1, l10, 1);
     an_xing tl, th;
-    double h0 = isfinite(t0) ? fmin(h, (t0 - edge) * step) : 0, h1 = isfinite(t1) ? fmin(h, (n - 1 - edge - t1) * step) : 0;
-    if (isfinite(l10) && h0 >= 1.0 && h1 >= 1.0 && !an_xing_find_in(&l, p, edge, n - 1 - edge, t0, l10, h0, +1, &tl) &&
+    double h0 = isfinite(t0) ? fmin(h, (t0 - edge) * step) : 0,
+           h1 = isfinite(t1) ? fmin(h, (n - 1 - edge - t1) * step) : 0;
+    if (isfinite(l10) && h0 >= 1.0 && h1 >= 1.0 &&
+        !an_xing_find_in(&l, p, edge, n - 1 - edge, t0, l10, h0, +1, &tl) &&
         !an_xing_find_in(&l, p, edge, n - 1 - edge, t1, l10, h1, -1, &th))
         out->fwtm_mm = (th.idx - tl.idx) * step;
     out->measured = 1;
@@ -729,9 +762,9 @@ out:
 
 /* NEMA MS 5 single wedge: along u in the wedge's band the signal is the integral of the slice
  * profile (an edge response); its derivative is the profile stretched by 1 / tan(angle). The
- * derivative is taken by a local quadratic (Savitzky-Golay) fit over +-1 mm, and its FWHM found with
- * the same crossing fits as a strip. The uncertainty uses the derivative's own scatter measured away
- * from the edge, with neighbouring samples treated as independent over 1 mm. */
+ * derivative is taken by a local quadratic (Savitzky-Golay) fit over +-1 mm, and its FWHM found
+ * with the same crossing fits as a strip. The uncertainty uses the derivative's own scatter
+ * measured away from the edge, with neighbouring samples treated as independent over 1 mm. */
 int an_wedge_edge_measure(const an_image *im, const an_pose *pose, const an_insert *ins,
                           double sigma, const an_params *par, an_strip *out)
 {
@@ -764,7 +797,8 @@ int an_wedge_edge_measure(const an_image *im, const an_pose *pose, const an_inse
     an_pose_to_px(pose, l.u0, l.v0, &out->line0.x, &out->line0.y);
     an_pose_to_px(pose, l.u0 + (n - 1) * step, l.v0, &out->line1.x, &out->line1.y);
     if (an_line_sample(&l, p)) {
-        sw_strlcpy(out->reason, "wedge not measurable: its line leaves the image", sizeof out->reason);
+        sw_strlcpy(out->reason, "wedge not measurable: its line leaves the image",
+                   sizeof out->reason);
         goto out;
     }
     out->profile.n = n;
@@ -783,7 +817,8 @@ int an_wedge_edge_measure(const an_image *im, const an_pose *pose, const an_inse
     /* The edge may rise either way along u; use the derivative's sign at its largest magnitude. */
     int edge = (int)ceil(2.5 / step); /* clear of the insert's ends */
     if (n < 4 * edge) {
-        sw_strlcpy(out->reason, "wedge not measurable: the insert is too short", sizeof out->reason);
+        sw_strlcpy(out->reason, "wedge not measurable: the insert is too short",
+                   sizeof out->reason);
         goto out;
     }
     int ip = edge;
@@ -795,7 +830,8 @@ int an_wedge_edge_measure(const an_image *im, const an_pose *pose, const an_inse
         dp[i] *= sgn;
     an_smooth(dp, n, (int)(1.0 / step) | 1, ds);
     double pk = ds[ip];
-    double lo0 = an_walk_cross(ds, n, ip, -1, 0.5 * pk, 1), hi0 = an_walk_cross(ds, n, ip, +1, 0.5 * pk, 1);
+    double lo0 = an_walk_cross(ds, n, ip, -1, 0.5 * pk, 1),
+           hi0 = an_walk_cross(ds, n, ip, +1, 0.5 * pk, 1);
     if (!isfinite(lo0) || !isfinite(hi0) || lo0 < edge || hi0 > n - 1 - edge) {
         sw_strlcpy(out->reason, "wedge edge runs into the end of the insert", sizeof out->reason);
         goto out;
@@ -803,7 +839,8 @@ int an_wedge_edge_measure(const an_image *im, const an_pose *pose, const an_inse
     double c0 = 0.5 * (lo0 + hi0), L0 = (hi0 - lo0) * step, cq[3];
     int a0 = (int)floor(c0 - 0.3 * L0 / step), a1 = (int)ceil(c0 + 0.3 * L0 / step);
     if (a1 - a0 < 4 || an_quad_fit(dp, a0, a1, c0, step, cq, 0, NULL) || !(cq[0] > 0)) {
-        sw_strlcpy(out->reason, "profile malformed: no peak in the wedge's derivative", sizeof out->reason);
+        sw_strlcpy(out->reason, "profile malformed: no peak in the wedge's derivative",
+                   sizeof out->reason);
         goto out;
     }
     double P = cq[0], lvl = 0.5 * P;
@@ -814,7 +851,8 @@ int an_wedge_edge_measure(const an_image *im, const an_pose *pose, const an_inse
     an_xing xl, xh;
     if (an_xing_find(NULL, dp, n, lo0, lvl, h / step, +1, &xl) ||
         an_xing_find(NULL, dp, n, hi0, lvl, h / step, -1, &xh) || !(xh.idx > xl.idx)) {
-        sw_strlcpy(out->reason, "profile malformed: no clean half-level crossing", sizeof out->reason);
+        sw_strlcpy(out->reason, "profile malformed: no clean half-level crossing",
+                   sizeof out->reason);
         goto out;
     }
     out->length_mm = (xh.idx - xl.idx) * step;
@@ -842,7 +880,8 @@ int an_wedge_edge_measure(const an_image *im, const an_pose *pose, const an_inse
         out->centre_unc_mm = 0.5 * sqrt(vlo + vhi);
         out->plateau_unc = sqrt(vp);
     }
-    double t0 = an_walk_cross(ds, n, ip, -1, 0.1 * P, 1), t1 = an_walk_cross(ds, n, ip, +1, 0.1 * P, 1);
+    double t0 = an_walk_cross(ds, n, ip, -1, 0.1 * P, 1),
+           t1 = an_walk_cross(ds, n, ip, +1, 0.1 * P, 1);
     if (isfinite(t0) && isfinite(t1))
         out->fwtm_mm = (t1 - t0) * step;
     out->measured = 1;

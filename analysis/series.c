@@ -167,7 +167,8 @@ static void measure_thickness(const an_image *im, const an_pose *pose, const an_
          * strip, the angle the strip's own (T / L); its widening of the FWHM is kappa k^2 with the
          * curvature term of the strip's two crossings (an_strip.slot_kappa_per_mm). Two passes, as
          * T depends on the corrected lengths. A flat-sided (trapezoidal) edge has no curvature at
-         * its half level and gets no correction; a Gaussian-like one gets its quadrature widening. */
+         * its half level and gets no correction; a Gaussian-like one gets its quadrature widening.
+         */
         double a0 = a, b0 = b;
         for (int pass = 0; pass < 2; pass++) {
             double T0 = crossed ? an_corrected_thickness(a, b, tphi) : a * tt;
@@ -186,12 +187,18 @@ static void measure_thickness(const an_image *im, const an_pose *pose, const an_
     t->corrected_mm = T;
     t->acr_mm = crossed ? an_acr_thickness(a, b, tt) : NAN;
     double ea = 1e-4 * a, eb = crossed ? 1e-4 * b : 0;
-    double dTa = (corrected(a + ea, b, tphi, crossed, tt) - corrected(a - ea, b, tphi, crossed, tt)) / (2 * ea);
-    double dTb = crossed ? (corrected(a, b + eb, tphi, crossed, tt) - corrected(a, b - eb, tphi, crossed, tt)) / (2 * eb) : 0;
+    double dTa =
+        (corrected(a + ea, b, tphi, crossed, tt) - corrected(a - ea, b, tphi, crossed, tt)) /
+        (2 * ea);
+    double dTb =
+        crossed
+            ? (corrected(a, b + eb, tphi, crossed, tt) - corrected(a, b - eb, tphi, crossed, tt)) /
+                  (2 * eb)
+            : 0;
     t->uncertainty_mm = sqrt(dTa * dTa * sa * sa + dTb * dTb * sbb * sbb);
     if (crossed) {
-        /* Tilt about v, signed as phantom-large.md defines it by its effect on the image: a positive
-         * tilt lowers the top ramp's angle to the slice, so the top strip gets longer. */
+        /* Tilt about v, signed as phantom-large.md defines it by its effect on the image: a
+         * positive tilt lowers the top ramp's angle to the slice, so the top strip gets longer. */
 #define TILT(A, B) ((th_t - atan(corrected((A), (B), tphi, 1, tt) / (A))) * AN_DEG)
         t->tilt_deg = TILT(a, b);
         double g1 = (TILT(a + ea, b) - TILT(a - ea, b)) / (2 * ea);
@@ -225,7 +232,8 @@ static void measure_thickness(const an_image *im, const an_pose *pose, const an_
             int c = 0;
             for (int i = 0; i < ns; i++) {
                 const an_strip *q = st[i];
-                double base = par->half_level == AN_HALF_BACKGROUND && isfinite(q->floor) ? q->floor : 0;
+                double base =
+                    par->half_level == AN_HALF_BACKGROUND && isfinite(q->floor) ? q->floor : 0;
                 double u = q->centre_u_mm + sg[i] * z / kk[i];
                 double f = (u - q->profile.start_mm) / q->profile.step_mm;
                 int i0 = (int)floor(f);
@@ -244,8 +252,8 @@ static void measure_thickness(const an_image *im, const an_pose *pose, const an_
 }
 
 sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
-                            const an_tolerance *tol, const an_params *params,
-                            an_series_result *out, sw_error *err)
+                            const an_tolerance *tol, const an_params *params, an_series_result *out,
+                            sw_error *err)
 {
     sw_status st = SW_OK;
     an_work wk = {0};
@@ -257,7 +265,8 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
     if (!imgs || !model || !tol || !params || !out || n < 1 || n > AN_MAX_IMAGES)
         return sw_error_set(err, SW_EINVAL, "analysis: bad arguments (%d images)", n);
     for (int i = 0; i < n; i++)
-        if (!imgs[i].px || imgs[i].width < 1 || imgs[i].height < 1 || imgs[i].stride < imgs[i].width)
+        if (!imgs[i].px || imgs[i].width < 1 || imgs[i].height < 1 ||
+            imgs[i].stride < imgs[i].width)
             return sw_error_set(err, SW_EINVAL, "analysis: image %d has no valid pixel view", i);
     st = an_model_check(model, err);
     if (st != SW_OK)
@@ -290,7 +299,8 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
     }
     if (has_geo)
         for (int i = 1; i < n; i++)
-            if (fabs(geo[i].n[0] * geo[0].n[0] + geo[i].n[1] * geo[0].n[1] + geo[i].n[2] * geo[0].n[2]) < 0.9998) {
+            if (fabs(geo[i].n[0] * geo[0].n[0] + geo[i].n[1] * geo[0].n[1] +
+                     geo[i].n[2] * geo[0].n[2]) < 0.9998) {
                 all_unmeasurable(out, "slice not found: the images are not parallel slices");
                 goto verdicts;
             }
@@ -338,19 +348,22 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
     }
     /* 4. The ramp slice: the end of the stack that holds the insert with its strips. The ends are
      * screened by the dark region near the centre (an elongated block of about the insert's area);
-     * the full insert search (edges, ends, strips) then runs in the final frame of the candidate. */
+     * the full insert search (edges, ends, strips) then runs in the final frame of the candidate.
+     */
     int ends[2] = {order[0], order[n - 1]}, nends = n > 1 ? 2 : 1, ramp = -1, other = -1, wsign = 1;
     int cand[2], ncand = 0;
     an_insert ins;
     memset(&ins, 0, sizeof ins);
     char why[AN_REASON_MAX] = "ramp slice not found: no insert at either end of the stack";
-    double area_model = (model->insert_u_max - model->insert_u_min) * (model->insert_v_max - model->insert_v_min);
+    double area_model =
+        (model->insert_u_max - model->insert_u_min) * (model->insert_v_max - model->insert_v_min);
     double elong[2] = {0, 0};
     for (int e = 0; e < nends; e++) {
         int i = ends[e];
         double ang, el, area, off;
         if (!disc[i].found || an_dark_axis(&imgs[i], &geo[i], &disc[i], &ang, &el, &area, &off) ||
-            el < 2.5 || area < 0.25 * area_model || area > 3 * area_model || off > 0.25 * disc[i].r_mm)
+            el < 2.5 || area < 0.25 * area_model || area > 3 * area_model ||
+            off > 0.25 * disc[i].r_mm)
             continue;
         elong[ncand] = el;
         cand[ncand++] = i;
@@ -367,8 +380,8 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
         wsign = oth >= 0 && has_geo && geo[i].z_n > geo[oth].z_n ? -1 : 1;
         for (int k = 0; k < n; k++)
             an_geom_make(&imgs[k], wsign, &geo[k]);
-        /* 6. Rotation: the insert's axis (modulo 180 degrees), the bridge telling up from down, then
-         * the long edges. */
+        /* 6. Rotation: the insert's axis (modulo 180 degrees), the bridge telling up from down,
+         * then the long edges. */
         double ang, el, area, off;
         if (an_dark_axis(&imgs[i], &geo[i], &disc[i], &ang, &el, &area, &off))
             ang = 0;
@@ -452,7 +465,8 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
         int uni = -1, best = 1 << 30, mid = (model->n_slices + 1) / 2;
         for (int i = 0; i < n; i++) {
             int o = out->ordinal[i];
-            if (!disc[i].found || i == ramp || o == model->wedge_slice[0] || o == model->wedge_slice[1] || o == 0)
+            if (!disc[i].found || i == ramp || o == model->wedge_slice[0] ||
+                o == model->wedge_slice[1] || o == 0)
                 continue;
             if (abs(o - mid) < best) {
                 best = abs(o - mid);
@@ -535,9 +549,10 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
             p->limit_mm = tol->bar_difference_fail;
             an_pose pose;
             an_pose_make(&geo[img], disc[img].xc, disc[img].yc, out->rotation_deg, &pose);
-            double nom = isfinite(imgs[img].nominal_thickness_mm) && imgs[img].nominal_thickness_mm > 0
-                             ? imgs[img].nominal_thickness_mm
-                             : model->nominal_thickness_mm;
+            double nom =
+                isfinite(imgs[img].nominal_thickness_mm) && imgs[img].nominal_thickness_mm > 0
+                    ? imgs[img].nominal_thickness_mm
+                    : model->nominal_thickness_mm;
             double vend;
             if (an_bars_measure(&imgs[img], &pose, model, out->noise_sd, nom, p, &vend)) {
                 st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
@@ -545,32 +560,38 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
             }
             if (p->measured) {
                 double a = fabs(p->bar_difference_mm);
-                p->verdict = a > tol->bar_difference_fail ? AN_FAIL
-                             : a > tol->bar_difference_warn ? AN_WARN : AN_PASS;
+                p->verdict = a > tol->bar_difference_fail   ? AN_FAIL
+                             : a > tol->bar_difference_warn ? AN_WARN
+                                                            : AN_PASS;
                 p->reason[0] = '\0';
             }
-            /* 10. On the ramp slice: displacement from the strip centres, and the pitch that explains
-             * a disagreement with the wedges (the bar ends sit at v_end, the strips near v = 0). */
+            /* 10. On the ramp slice: displacement from the strip centres, and the pitch that
+             * explains a disagreement with the wedges (the bar ends sit at v_end, the strips near v
+             * = 0). */
             const an_thickness *t = &out->thickness;
             if (img == ramp && t->measured && model->method == AN_METHOD_CROSSED_RAMPS) {
                 double s = t->top.centre_u_mm - t->bottom.centre_u_mm, a = t->top.length_mm;
                 double b = t->bottom.length_mm, T = t->corrected_mm;
                 double sg = model->ramp[0].slope >= 0 ? 1 : -1;
                 p->ramp_displacement_mm = sg * s * T / (a + b);
-                double vs = t->top.centre_unc_mm * t->top.centre_unc_mm + t->bottom.centre_unc_mm * t->bottom.centre_unc_mm;
+                double vs = t->top.centre_unc_mm * t->top.centre_unc_mm +
+                            t->bottom.centre_unc_mm * t->bottom.centre_unc_mm;
                 double k1 = T / (a + b), dT = t->uncertainty_mm;
-                p->ramp_displacement_unc_mm = sqrt(k1 * k1 * vs + pow(s / (a + b) * dT, 2) +
-                                                   pow(s * T / ((a + b) * (a + b)), 2) *
-                                                       (pow(t->top.length_unc_mm, 2) + pow(t->bottom.length_unc_mm, 2)));
+                p->ramp_displacement_unc_mm =
+                    sqrt(k1 * k1 * vs + pow(s / (a + b) * dT, 2) +
+                         pow(s * T / ((a + b) * (a + b)), 2) *
+                             (pow(t->top.length_unc_mm, 2) + pow(t->bottom.length_unc_mm, 2)));
                 /* A pitch p makes the slice meet the phantom at w = d - v tan p: the bar ends (at
                  * v_end) report d - v_end tan p; the strips (at +-h) report d + h tan p (b - a) /
-                 * (a + b) through the formula above, which is exact in d only without tilt about v. */
+                 * (a + b) through the formula above, which is exact in d only without tilt about v.
+                 */
                 double hs = 0.5 * (ins.strip_v[0] - ins.strip_v[1]);
                 double den = isfinite(vend) ? vend + hs * (b - a) / (a + b) : NAN;
                 if (p->measured && isfinite(den) && fabs(den) > 10) {
                     double dd = p->ramp_displacement_mm - p->displacement_mm;
                     out->pitch_deg = atan(dd / den) * AN_DEG;
-                    double sd = sqrt(pow(p->ramp_displacement_unc_mm, 2) + pow(0.5 * p->uncertainty_mm, 2));
+                    double sd =
+                        sqrt(pow(p->ramp_displacement_unc_mm, 2) + pow(0.5 * p->uncertainty_mm, 2));
                     out->pitch_unc_deg = sd / fabs(den) * AN_DEG;
                     out->pitch_measured = 1;
                 }
@@ -612,9 +633,10 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
 verdicts:
     out->verdict = out->thickness.verdict;
     if (model->has_wedges)
-        out->verdict = worst(out->verdict, worst(out->position[0].verdict, out->position[1].verdict));
+        out->verdict =
+            worst(out->verdict, worst(out->position[0].verdict, out->position[1].verdict));
     if (out->verdict == AN_UNMEASURABLE && !out->reason[0]) {
-        const char *r = out->thickness.verdict == AN_UNMEASURABLE ? out->thickness.reason
+        const char *r = out->thickness.verdict == AN_UNMEASURABLE     ? out->thickness.reason
                         : out->position[0].verdict == AN_UNMEASURABLE ? out->position[0].reason
                                                                       : out->position[1].reason;
         set_reason(out->reason, r);

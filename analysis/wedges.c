@@ -46,8 +46,8 @@ static double mean_ss(const an_line *l, int i0, int i1, double *g)
 
 #define NMAX 1024
 
-/* The bridge's lower edge at column u: walking up from the fluid under the bridge. Returns v or NAN;
- * *var its variance. */
+/* The bridge's lower edge at column u: walking up from the fluid under the bridge. Returns v or
+ * NAN; *var its variance. */
 static double bridge_edge(const an_image *im, const an_pose *pose, const an_model *m, double u,
                           double hw, double sigma, double *var, double *buf, double *g)
 {
@@ -63,7 +63,8 @@ static double bridge_edge(const an_image *im, const an_pose *pose, const an_mode
         return NAN;
     double sm[NMAX];
     an_smooth(buf, n, 11, sm);
-    double fl = an_mean_range(buf, n, 0, (int)(10 / step)), dk = an_mean_range(buf, n, n - (int)(3 / step), n - 1);
+    double fl = an_mean_range(buf, n, 0, (int)(10 / step)),
+           dk = an_mean_range(buf, n, n - (int)(3 / step), n - 1);
     if (!(fl - dk > 0.3 * fl))
         return NAN;
     double lev = 0.5 * (fl + dk);
@@ -104,7 +105,8 @@ static int bar_end(const an_image *im, const an_pose *pose, double u, double hw,
         b->profile.v[i] = (float)buf[i];
     double sm[NMAX];
     an_smooth(buf, n, (int)(1.0 / step) | 1, sm);
-    double dk = an_mean_range(buf, n, 0, (int)(4 / step)), fl = an_mean_range(buf, n, n - (int)(8 / step), n - 1);
+    double dk = an_mean_range(buf, n, 0, (int)(4 / step)),
+           fl = an_mean_range(buf, n, n - (int)(8 / step), n - 1);
     if (!(fl - dk > 0.3 * fl))
         return -1;
     double lev = 0.5 * (dk + fl);
@@ -164,7 +166,8 @@ int an_bars_measure(const an_image *im, const an_pose *pose, const an_model *m, 
         double hw = fmax(0.5, 0.25 * fabs(m->bridge_u_max - m->bar_u_max[1]));
         vt[s] = bridge_edge(im, pose, m, uo[s], hw, sigma, &vv[s], buf, g);
         if (!isfinite(vt[s])) {
-            sw_strlcpy(out->reason, "bridge not found: no lower edge beside the bars", sizeof out->reason);
+            sw_strlcpy(out->reason, "bridge not found: no lower edge beside the bars",
+                       sizeof out->reason);
             goto out;
         }
     }
@@ -185,7 +188,8 @@ int an_bars_measure(const an_image *im, const an_pose *pose, const an_model *m, 
     }
     double sm[NMAX];
     an_smooth(buf, n, 5, sm);
-    double fl = 0.5 * (an_mean_range(buf, n, 0, (int)(3 / step)) + an_mean_range(buf, n, n - 1 - (int)(3 / step), n - 1));
+    double fl = 0.5 * (an_mean_range(buf, n, 0, (int)(3 / step)) +
+                       an_mean_range(buf, n, n - 1 - (int)(3 / step), n - 1));
     double dk = INFINITY;
     for (int i = 0; i < n; i++)
         dk = fmin(dk, sm[i]);
@@ -230,7 +234,8 @@ int an_bars_measure(const an_image *im, const an_pose *pose, const an_model *m, 
         double hw = fmax(0.5, 0.3 * wid[s]);
         an_pose_to_px(pose, uc[s], top, &bars[s]->top.x, &bars[s]->top.y);
         if (bar_end(im, pose, uc[s], hw, top, reach, sigma, bars[s], buf, g, &var_end[s])) {
-            snprintf(out->reason, sizeof out->reason, "bar end not found: %s bar", s ? "right" : "left");
+            snprintf(out->reason, sizeof out->reason, "bar end not found: %s bar",
+                     s ? "right" : "left");
             goto out;
         }
         bars[s]->unc_mm = sqrt(var_end[s] + var_top[s]);
@@ -238,7 +243,8 @@ int an_bars_measure(const an_image *im, const an_pose *pose, const an_model *m, 
     }
     out->bar_difference_mm = out->right.length_mm - out->left.length_mm;
     out->displacement_mm = -0.5 * out->bar_difference_mm;
-    /* The two tops share the bridge line, so their noise enters the difference through the slope. */
+    /* The two tops share the bridge line, so their noise enters the difference through the slope.
+     */
     double ft = (uc[1] - uc[0]) / (uo[1] - uo[0]);
     out->uncertainty_mm = sqrt(var_end[0] + var_end[1] + ft * ft * (vv[0] + vv[1]));
     {

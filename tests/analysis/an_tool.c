@@ -1,8 +1,8 @@
 /* an_tool.c: a line-oriented front end to a few analysis functions, so that an external script can
  * cross-check them against reference libraries (see check_scipy.py). Reads commands on stdin:
- *   W level peak v0 v1 ... vN-1   full width at level: prints "lo hi" (fractional indices) or "fail"
- *   R a sigma                     Rician mean and SD of a signal a with per-channel noise sigma
- *   V m sigma                     the signal whose Rician mean is m */
+ *   W level peak v0 v1 ... vN-1   full width at level: prints "lo hi" (fractional indices) or
+ * "fail" R a sigma                     Rician mean and SD of a signal a with per-channel noise
+ * sigma V m sigma                     the signal whose Rician mean is m */
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>

@@ -29,7 +29,8 @@ static uint64_t next(uint64_t *s)
 
 double dr_gauss(uint64_t *s)
 {
-    double u1 = ((next(s) >> 11) + 0.5) / 9007199254740992.0, u2 = ((next(s) >> 11) + 0.5) / 9007199254740992.0;
+    double u1 = ((next(s) >> 11) + 0.5) / 9007199254740992.0,
+           u2 = ((next(s) >> 11) + 0.5) / 9007199254740992.0;
     return sqrt(-2 * log(u1)) * cos(2 * M_PI * u2);
 }
 
@@ -76,7 +77,8 @@ void dr_slice(const dr_params *p, int k, float *px, an_image *view)
 {
     int n = p->matrix;
     double dx = p->fov_mm / n, c = cos(p->rot_deg * M_PI / 180), s = sin(p->rot_deg * M_PI / 180);
-    double wc = 10.0 * (k - 1) + p->d_mm, w0 = wc - 0.5 * p->thickness_mm, w1 = wc + 0.5 * p->thickness_mm;
+    double wc = 10.0 * (k - 1) + p->d_mm, w0 = wc - 0.5 * p->thickness_mm,
+           w1 = wc + 0.5 * p->thickness_mm;
     uint64_t rng = p->seed * 1000003u + (uint64_t)k;
     const int ss = 4;
     for (int j = 0; j < n; j++)

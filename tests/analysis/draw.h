@@ -11,7 +11,7 @@
 typedef enum dr_insert { DR_CROSSED = 0, DR_NONE, DR_SINGLE_RAMP, DR_SINGLE_WEDGE } dr_insert;
 
 typedef struct dr_params {
-    int matrix;          /* square, pixels */
+    int matrix; /* square, pixels */
     double fov_mm;
     double thickness_mm; /* rectangular slice profile */
     double d_mm;         /* every slice's displacement toward slice 11 */
@@ -20,10 +20,10 @@ typedef struct dr_params {
     double sigma;        /* per-channel noise (0: none) */
     double fluid;        /* fluid signal */
     dr_insert insert;
-    double wedge_slope;  /* DR_SINGLE_WEDGE: dw/du of the face */
-    int wedges;          /* 1: bridge and bars on slices 1 and 11 */
-    int uniform;         /* 1: every slice a plain disc (no insert, no wedges) */
-    int noise_only;      /* 1: no phantom at all */
+    double wedge_slope; /* DR_SINGLE_WEDGE: dw/du of the face */
+    int wedges;         /* 1: bridge and bars on slices 1 and 11 */
+    int uniform;        /* 1: every slice a plain disc (no insert, no wedges) */
+    int noise_only;     /* 1: no phantom at all */
     uint64_t seed;
 } dr_params;
 

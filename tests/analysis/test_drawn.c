@@ -142,7 +142,8 @@ Test(drawn, series_truth)
     cr_assert(fabs(t->tilt_deg) < 0.1 + 3 * t->tilt_unc_deg);
     cr_assert(fabs(r->rotation_deg - 3.0) < 0.1, "rotation %f", r->rotation_deg);
     /* strips centred at +-10 d (phantom-large.md) */
-    cr_assert(fabs(t->top.centre_u_mm - 12.0) < 0.3 + 3 * t->top.centre_unc_mm, "%f", t->top.centre_u_mm);
+    cr_assert(fabs(t->top.centre_u_mm - 12.0) < 0.3 + 3 * t->top.centre_unc_mm, "%f",
+              t->top.centre_u_mm);
     cr_assert(fabs(t->bottom.centre_u_mm + 12.0) < 0.3 + 3 * t->bottom.centre_unc_mm);
     for (int k = 0; k < 2; k++) {
         const an_position *q = &r->position[k];
@@ -242,23 +243,28 @@ Test(drawn, orientation_variants_agree)
         /* The same physical image in the phantom frame: the same numbers (bilinear sampling is
          * symmetric under these index maps, so only rounding differs). */
         cr_assert(r->thickness.measured, "%s: %s", names[kind], r->thickness.reason);
-        cr_assert(fabs(r->thickness.corrected_mm - ref->thickness.corrected_mm) < 1e-3, "%s: %f vs %f",
-                  names[kind], r->thickness.corrected_mm, ref->thickness.corrected_mm);
+        cr_assert(fabs(r->thickness.corrected_mm - ref->thickness.corrected_mm) < 1e-3,
+                  "%s: %f vs %f", names[kind], r->thickness.corrected_mm,
+                  ref->thickness.corrected_mm);
         cr_assert(fabs(r->thickness.tilt_deg - ref->thickness.tilt_deg) < 1e-2, "%s", names[kind]);
-        cr_assert(fabs(r->rotation_deg - ref->rotation_deg) < 1e-3, "%s: rotation %f vs %f", names[kind],
-                  r->rotation_deg, ref->rotation_deg);
+        cr_assert(fabs(r->rotation_deg - ref->rotation_deg) < 1e-3, "%s: rotation %f vs %f",
+                  names[kind], r->rotation_deg, ref->rotation_deg);
         for (int q = 0; q < 2; q++) {
             cr_assert(r->position[q].measured, "%s: %s", names[kind], r->position[q].reason);
-            cr_assert(fabs(r->position[q].bar_difference_mm - ref->position[q].bar_difference_mm) < 1e-3,
+            cr_assert(fabs(r->position[q].bar_difference_mm - ref->position[q].bar_difference_mm) <
+                          1e-3,
                       "%s: BLD %f vs %f", names[kind], r->position[q].bar_difference_mm,
                       ref->position[q].bar_difference_mm);
-            cr_assert(fabs(r->position[q].z_mm - ref->position[q].z_mm) < 1e-6, "%s: z", names[kind]);
+            cr_assert(fabs(r->position[q].z_mm - ref->position[q].z_mm) < 1e-6, "%s: z",
+                      names[kind]);
         }
-        cr_assert(fabs(r->position[0].ramp_displacement_mm - ref->position[0].ramp_displacement_mm) < 1e-3);
+        cr_assert(fabs(r->position[0].ramp_displacement_mm -
+                       ref->position[0].ramp_displacement_mm) < 1e-3);
         for (int k = 0; k < NS; k++)
             cr_assert_eq(r->ordinal[k], ref->ordinal[k], "%s: ordinal of image %d", names[kind], k);
         /* and the truth: BLD = -2 d = +3 mm */
-        cr_assert(fabs(r->position[0].bar_difference_mm - 3.0) < 0.1 + 3 * r->position[0].uncertainty_mm);
+        cr_assert(fabs(r->position[0].bar_difference_mm - 3.0) <
+                  0.1 + 3 * r->position[0].uncertainty_mm);
         free(r);
         for (int k = 0; k < NS; k++)
             free(px[k]);
@@ -282,8 +288,8 @@ Test(drawn, nema_single_ramp)
     m.n_ramps = 1;
     an_series_result *r = run(s.v, NS, &m, NULL);
     cr_assert(r->thickness.measured, "%s", r->thickness.reason);
-    cr_assert(fabs(r->thickness.corrected_mm - 5.0) < 0.05 + 3 * r->thickness.uncertainty_mm, "T %f",
-              r->thickness.corrected_mm);
+    cr_assert(fabs(r->thickness.corrected_mm - 5.0) < 0.05 + 3 * r->thickness.uncertainty_mm,
+              "T %f", r->thickness.corrected_mm);
     cr_assert(isnan(r->thickness.acr_mm)); /* no second ramp: no combination */
     cr_assert(!r->thickness.bottom.measured);
     free(r);
@@ -348,7 +354,8 @@ static void expect_unmeasurable(const dr_params *p, const char *want)
     an_series_result *r = run(s.v, NS, &m, NULL);
     cr_assert_eq(r->verdict, AN_UNMEASURABLE);
     cr_assert(!r->thickness.measured && isnan(r->thickness.corrected_mm));
-    cr_assert(strstr(r->thickness.reason, want), "reason '%s' lacks '%s'", r->thickness.reason, want);
+    cr_assert(strstr(r->thickness.reason, want), "reason '%s' lacks '%s'", r->thickness.reason,
+              want);
     cr_assert(strstr(r->reason, want), "series reason '%s'", r->reason);
     for (int k = 0; k < 2; k++)
         cr_assert(!r->position[k].measured && isnan(r->position[k].bar_difference_mm));

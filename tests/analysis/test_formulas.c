@@ -25,7 +25,8 @@ Test(formulas, tilt_check_values)
     double tphi = tan(2 * atan(TAN_THETA));
     cr_assert(fabs(an_acr_thickness(36.929, 77.098, TAN_THETA) - 4.994) < 0.0005);
     cr_assert(fabs(an_corrected_thickness(36.929, 77.098, tphi) - 5.000) < 0.0005);
-    cr_assert(fabs(an_tilt_deg(an_corrected_thickness(36.929, 77.098, tphi), 36.929, TAN_THETA) - 2.00) < 0.005);
+    cr_assert(fabs(an_tilt_deg(an_corrected_thickness(36.929, 77.098, tphi), 36.929, TAN_THETA) -
+                   2.00) < 0.005);
     cr_assert(fabs(an_corrected_thickness(36.9, 77.1, tphi) - 4.997) < 0.0005);
 }
 

@@ -1,9 +1,9 @@
 /* test_sim.c: simulated series (sim/, a forward model with its own truth) analysed end to end at
  * SNR 50: rotation, tilt about both axes, off-centre, shuffled files, every stored orientation and
  * feet first, two echoes, a position error model; and the reported uncertainty against the scatter
- * over noise realisations. Tolerances are the accuracy goals of the analysis (thickness 0.05 mm, bar
- * length difference 0.1 mm) plus three reported standard uncertainties, so a single noisy case can
- * pass only when the uncertainty is honest too (checked separately below). */
+ * over noise realisations. Tolerances are the accuracy goals of the analysis (thickness 0.05 mm,
+ * bar length difference 0.1 mm) plus three reported standard uncertainties, so a single noisy case
+ * can pass only when the uncertainty is honest too (checked separately below). */
 #include <criterion/criterion.h>
 #include <math.h>
 #include <stdlib.h>
@@ -29,7 +29,8 @@ static sim_params base(void)
     return p;
 }
 
-/* Renders, splits by echo, analyses each echo; out->slice[i] is the true ordinal of echo 1's image i. */
+/* Renders, splits by echo, analyses each echo; out->slice[i] is the true ordinal of echo 1's image
+ * i. */
 static void render_and_analyse(const sim_params *p, run_out *o)
 {
     sim_series *s = NULL;
@@ -67,35 +68,41 @@ static void check_truth(const run_out *o, int echo, const sim_params *p, const c
     const an_thickness *t = &r->thickness;
     cr_assert(t->measured, "%s: %s", what, t->reason);
     double T = tr->thickness_mm[echo];
-    cr_assert(fabs(t->corrected_mm - T) < 0.05 + 3 * t->uncertainty_mm, "%s: T %.4f +- %.4f, truth %.4f",
-              what, t->corrected_mm, t->uncertainty_mm, T);
+    cr_assert(fabs(t->corrected_mm - T) < 0.05 + 3 * t->uncertainty_mm,
+              "%s: T %.4f +- %.4f, truth %.4f", what, t->corrected_mm, t->uncertainty_mm, T);
     /* strip lengths against the simulator's expected ramp lengths */
     cr_assert(fabs(t->top.length_mm - tr->ramp[echo].length_mm[0]) < 0.5 + 3 * t->top.length_unc_mm,
               "%s: top %.3f truth %.3f", what, t->top.length_mm, tr->ramp[echo].length_mm[0]);
-    cr_assert(fabs(t->bottom.length_mm - tr->ramp[echo].length_mm[1]) < 0.5 + 3 * t->bottom.length_unc_mm,
+    cr_assert(fabs(t->bottom.length_mm - tr->ramp[echo].length_mm[1]) <
+                  0.5 + 3 * t->bottom.length_unc_mm,
               "%s: bottom %.3f truth %.3f", what, t->bottom.length_mm, tr->ramp[echo].length_mm[1]);
     /* tilt about v, with phantom-large.md's sign (positive: top strip longer) */
-    cr_assert(fabs(t->tilt_deg - p->pose.tilt_v_deg) < 0.15 + 3 * t->tilt_unc_deg, "%s: tilt %.3f +- %.3f, pose %.3f",
-              what, t->tilt_deg, t->tilt_unc_deg, p->pose.tilt_v_deg);
+    cr_assert(fabs(t->tilt_deg - p->pose.tilt_v_deg) < 0.15 + 3 * t->tilt_unc_deg,
+              "%s: tilt %.3f +- %.3f, pose %.3f", what, t->tilt_deg, t->tilt_unc_deg,
+              p->pose.tilt_v_deg);
     cr_assert(fabs(r->rotation_deg - p->pose.rot_deg) < 0.1, "%s: rotation %.3f, pose %.3f", what,
               r->rotation_deg, p->pose.rot_deg);
     for (int k = 0; k < 2; k++) {
         const an_position *q = &r->position[k];
         cr_assert(q->measured, "%s: %s", what, q->reason);
         cr_assert_eq(q->slice, tr->wedge[k].ordinal);
-        cr_assert(fabs(q->bar_difference_mm - tr->wedge[k].difference_mm) < 0.1 + 3 * q->uncertainty_mm,
+        cr_assert(fabs(q->bar_difference_mm - tr->wedge[k].difference_mm) <
+                      0.1 + 3 * q->uncertainty_mm,
                   "%s: BLD slice %d %.3f +- %.3f, truth %.3f", what, q->slice, q->bar_difference_mm,
                   q->uncertainty_mm, tr->wedge[k].difference_mm);
     }
     /* the ramps see the displacement at the axis of slice 1 */
     const an_position *q = &r->position[0];
     int k1 = tr->ramp_ordinal - 1;
-    cr_assert(fabs(q->ramp_displacement_mm - tr->displacement_mm[k1]) < 0.05 + 3 * q->ramp_displacement_unc_mm + 0.02 * fabs(p->pose.tilt_v_deg * p->pose.tilt_u_deg),
-              "%s: ramp d %.3f +- %.3f, truth %.3f", what, q->ramp_displacement_mm, q->ramp_displacement_unc_mm,
-              tr->displacement_mm[k1]);
+    cr_assert(fabs(q->ramp_displacement_mm - tr->displacement_mm[k1]) <
+                  0.05 + 3 * q->ramp_displacement_unc_mm +
+                      0.02 * fabs(p->pose.tilt_v_deg * p->pose.tilt_u_deg),
+              "%s: ramp d %.3f +- %.3f, truth %.3f", what, q->ramp_displacement_mm,
+              q->ramp_displacement_unc_mm, tr->displacement_mm[k1]);
     if (r->pitch_measured)
-        cr_assert(fabs(r->pitch_deg - p->pose.tilt_u_deg) < 0.15 + 3 * r->pitch_unc_deg, "%s: pitch %.3f +- %.3f, pose %.3f",
-                  what, r->pitch_deg, r->pitch_unc_deg, p->pose.tilt_u_deg);
+        cr_assert(fabs(r->pitch_deg - p->pose.tilt_u_deg) < 0.15 + 3 * r->pitch_unc_deg,
+                  "%s: pitch %.3f +- %.3f, pose %.3f", what, r->pitch_deg, r->pitch_unc_deg,
+                  p->pose.tilt_u_deg);
     /* SNR: the simulator's is for the first echo; later echoes scale with their fluid signal */
     double snr = tr->snr * tr->fluid_signal[echo] / tr->fluid_signal[0];
     cr_assert(fabs(r->snr / snr - 1) < 0.1, "%s: SNR %.1f, truth %.1f", what, r->snr, snr);
@@ -153,8 +160,8 @@ Test(sim, pitch_sign)
 
 Test(sim, orientations)
 {
-    sim_orientation kinds[4] = {SIM_ORIENT_FLIP_ROWS, SIM_ORIENT_FLIP_COLUMNS, SIM_ORIENT_TRANSPOSED,
-                                SIM_ORIENT_FEET_FIRST};
+    sim_orientation kinds[4] = {SIM_ORIENT_FLIP_ROWS, SIM_ORIENT_FLIP_COLUMNS,
+                                SIM_ORIENT_TRANSPOSED, SIM_ORIENT_FEET_FIRST};
     const char *names[4] = {"rows flipped", "columns flipped", "transposed", "feet first"};
     for (int k = 0; k < 4; k++) {
         sim_params p = base();
@@ -185,8 +192,8 @@ Test(sim, double_echo)
     free(o);
 }
 
-/* e(z) = offset + scale z: the simulator's position error model, recovered from the two wedge slices
- * (z from ImagePositionPatient along the normal toward slice 11). */
+/* e(z) = offset + scale z: the simulator's position error model, recovered from the two wedge
+ * slices (z from ImagePositionPatient along the normal toward slice 11). */
 Test(sim, position_model)
 {
     sim_params p = base();
@@ -196,10 +203,10 @@ Test(sim, position_model)
     render_and_analyse(&p, o);
     const an_position_model *pm = &o->r[0].position_model;
     cr_assert(pm->measured);
-    cr_assert(fabs(pm->scale_percent - 1.0) < 0.01 + 3 * pm->scale_unc_percent, "scale %.4f +- %.4f",
-              pm->scale_percent, pm->scale_unc_percent);
-    cr_assert(fabs(pm->offset_mm - 1.0) < 0.05 + 3 * pm->offset_unc_mm, "offset %.4f +- %.4f", pm->offset_mm,
-              pm->offset_unc_mm);
+    cr_assert(fabs(pm->scale_percent - 1.0) < 0.01 + 3 * pm->scale_unc_percent,
+              "scale %.4f +- %.4f", pm->scale_percent, pm->scale_unc_percent);
+    cr_assert(fabs(pm->offset_mm - 1.0) < 0.05 + 3 * pm->offset_unc_mm, "offset %.4f +- %.4f",
+              pm->offset_mm, pm->offset_unc_mm);
     free(o);
 }
 
@@ -237,7 +244,8 @@ Test(sim, uncertainty_matches_scatter, .timeout = 240)
     }
     double rT = muT / sqrt(vT), rB = muB / sqrt(vB);
     cr_assert(rT > 0.7 && rT < 1.3, "thickness: reported %.4f, observed SD %.4f", muT, sqrt(vT));
-    cr_assert(rB > 0.7 && rB < 1.3, "bar length difference: reported %.4f, observed SD %.4f", muB, sqrt(vB));
+    cr_assert(rB > 0.7 && rB < 1.3, "bar length difference: reported %.4f, observed SD %.4f", muB,
+              sqrt(vB));
     /* and the accuracy goals at SNR 50 on the mean (thickness SD <= 0.05 mm, BLD SD <= 0.2 mm) */
     cr_assert(sqrt(vT) <= 0.05 * 1.3, "thickness SD %.4f", sqrt(vT));
     cr_assert(sqrt(vB) <= 0.2, "BLD SD %.4f", sqrt(vB));
@@ -276,11 +284,13 @@ Test(sim, slot_correction)
         cr_assert_eq(an_analyze_series(v, n, &m, &t, &pa, r, &e), SW_OK);
         double corr = r->thickness.corrected_mm, truth = s->truth.thickness_mm[0];
         if (k == 0) {
-            cr_assert(plain - truth > 0.03, "Gaussian: the slot should widen (%.4f vs %.4f)", plain, truth);
-            cr_assert(fabs(corr - truth) < 0.6 * fabs(plain - truth), "Gaussian: corrected %.4f, plain %.4f, truth %.4f",
-                      corr, plain, truth);
+            cr_assert(plain - truth > 0.03, "Gaussian: the slot should widen (%.4f vs %.4f)", plain,
+                      truth);
+            cr_assert(fabs(corr - truth) < 0.6 * fabs(plain - truth),
+                      "Gaussian: corrected %.4f, plain %.4f, truth %.4f", corr, plain, truth);
         } else {
-            cr_assert(fabs(corr - plain) < 0.01, "rectangle: corrected %.4f, plain %.4f", corr, plain);
+            cr_assert(fabs(corr - plain) < 0.01, "rectangle: corrected %.4f, plain %.4f", corr,
+                      plain);
         }
         free(r);
         sim_series_free(s);
