@@ -110,6 +110,7 @@ static void job_params(const demo_job *j, sim_params *p)
     p->snr = s->snr_t1 * (j->kind == SIM_SERIES_T2 ? 1.3 : 1.0);
     p->seed = mix(&rng) ^ (uint64_t)j->kind;
     p->shuffle = 1;
+    p->scratch = 1; /* staging copies; the watch folder gets them by rename */
     sw_strlcpy(p->id.station_name, s->station, sizeof p->id.station_name);
     sw_strlcpy(p->id.model, s->model, sizeof p->id.model);
     sw_strlcpy(p->id.device_serial, s->serial, sizeof p->id.device_serial);

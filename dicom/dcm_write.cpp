@@ -75,6 +75,7 @@ struct W {
     const char *name;
     sw_error *err;
     sw_status st;
+    unsigned flags; /* DCM_WRITE_* */
 
     bool ok() const
     {
@@ -465,16 +466,18 @@ sw_status save_atomic(W &w, DcmFileFormat &ff, const char *path)
         st = w.fail(SW_EIO, "cannot write: %s", c.text());
         goto out;
     }
-    fd = open(tbuf.data(), O_RDONLY | O_CLOEXEC);
-    if (fd < 0 || fsync(fd) != 0) {
-        st = w.fail(SW_EIO, "cannot sync the temporary file: %s", strerror(errno));
-        goto out;
+    if (!(w.flags & DCM_WRITE_NOSYNC)) {
+        fd = open(tbuf.data(), O_RDONLY | O_CLOEXEC);
+        if (fd < 0 || fsync(fd) != 0) {
+            st = w.fail(SW_EIO, "cannot sync the temporary file: %s", strerror(errno));
+            goto out;
+        }
     }
     if (rename(tbuf.data(), path) != 0) {
         st = w.fail(SW_EIO, "cannot rename the temporary file into place: %s", strerror(errno));
         goto out;
     }
-    {
+    if (!(w.flags & DCM_WRITE_NOSYNC)) {
         int dfd = open(dir.c_str(), O_RDONLY | O_DIRECTORY | O_CLOEXEC);
         if (dfd >= 0) {
             (void)fsync(dfd); /* best effort: the data itself is synced */
@@ -972,7 +975,19 @@ sw_status write_enhanced(W &w, const char *path, const dcm_image *f, int n)
 
 extern "C" sw_status dcm_write_mr(const char *path, const dcm_image *img, sw_error *err)
 {
-    W w = {path ? path : "(null)", err, SW_OK};
+    return dcm_write_mr_flags(path, img, 0, err);
+}
+
+extern "C" sw_status dcm_write_enhanced_mr(const char *path, const dcm_image *frames, int n,
+                                           sw_error *err)
+{
+    return dcm_write_enhanced_mr_flags(path, frames, n, 0, err);
+}
+
+extern "C" sw_status dcm_write_mr_flags(const char *path, const dcm_image *img, unsigned flags,
+                                        sw_error *err)
+{
+    W w = {path ? path : "(null)", err, SW_OK, flags};
     if (!path || !img)
         return w.fail(SW_EINVAL, "no path or image given");
     if (!dcm_is_initialised())
@@ -986,10 +1001,10 @@ extern "C" sw_status dcm_write_mr(const char *path, const dcm_image *img, sw_err
     }
 }
 
-extern "C" sw_status dcm_write_enhanced_mr(const char *path, const dcm_image *frames, int n,
-                                           sw_error *err)
+extern "C" sw_status dcm_write_enhanced_mr_flags(const char *path, const dcm_image *frames, int n,
+                                                 unsigned flags, sw_error *err)
 {
-    W w = {path ? path : "(null)", err, SW_OK};
+    W w = {path ? path : "(null)", err, SW_OK, flags};
     if (!path || !frames || n < 1)
         return w.fail(SW_EINVAL, "no path or frames given");
     if (n > DCM_MAX_FRAMES)

@@ -157,6 +157,13 @@ sw_status dcm_write_mr(const char *path, const dcm_image *img, sw_error *err);
  * echo_time_ms, repetition_time_ms, slice_thickness_mm, magnetic_field_t, imaging_frequency_mhz,
  * pixel_bandwidth_hz (> 0) and echo_number 1..65535. */
 sw_status dcm_write_enhanced_mr(const char *path, const dcm_image *frames, int n, sw_error *err);
+/* The same with flags. DCM_WRITE_NOSYNC leaves out the fsync of the file and its folder (the file
+ * still appears whole under its name, by rename): for scratch data such as simulated series, where
+ * a crash may lose the file but never leaves a partial one. */
+enum { DCM_WRITE_NOSYNC = 1u };
+sw_status dcm_write_mr_flags(const char *path, const dcm_image *img, unsigned flags, sw_error *err);
+sw_status dcm_write_enhanced_mr_flags(const char *path, const dcm_image *frames, int n,
+                                      unsigned flags, sw_error *err);
 
 /* A new UID in the 2.25 scheme (DICOM PS3.5 B.2: "2.25." and the decimal value of a random
  * version 4 UUID from getrandom), valid without a registered root and at most 44 characters.

@@ -176,6 +176,7 @@ typedef struct sim_params {
     int shuffle;           /* 1: files written in random order with random names */
     int reverse_instances; /* 1: InstanceNumber runs from the last slice to the first */
     int enhanced;          /* 1: one Enhanced MR multi-frame file instead of one file per image */
+    int scratch;           /* 1: files are scratch data, written without fsync (still whole by rename) */
     sim_identity id;
 } sim_params;
 

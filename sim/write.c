@@ -264,10 +264,11 @@ sw_status sim_series_write(const sim_series *s, const char *dir, sw_error *err)
         return sw_error_set(err, SW_EINVAL, "simulator: %s: path too long", dir);
     if (access(path, F_OK) == 0)
         return sw_error_set(err, SW_EINVAL, "simulator: %s already holds a simulated series", dir);
+    unsigned flags = s->params.scratch ? DCM_WRITE_NOSYNC : 0;
     if (s->params.enhanced) {
         if (snprintf(path, sizeof path, "%s/%s", dir, s->file_name[0]) >= (int)sizeof path)
             return sw_error_set(err, SW_EINVAL, "simulator: %s: path too long", dir);
-        st = dcm_write_enhanced_mr(path, s->images, s->n_images, err);
+        st = dcm_write_enhanced_mr_flags(path, s->images, s->n_images, flags, err);
         if (st != SW_OK)
             goto out;
     } else {
@@ -276,7 +277,7 @@ sw_status sim_series_write(const sim_series *s, const char *dir, sw_error *err)
                 st = sw_error_set(err, SW_EINVAL, "simulator: %s: path too long", dir);
                 goto out;
             }
-            st = dcm_write_mr(path, &s->images[i], err);
+            st = dcm_write_mr_flags(path, &s->images[i], flags, err);
             if (st != SW_OK)
                 goto out;
         }
