@@ -13,7 +13,10 @@ int an_dark_axis(const an_image *im, const an_geom *g, const an_disc *d, double 
         return -1;
     double col = im->col_mm > 0 ? im->col_mm : 1, row = im->row_mm > 0 ? im->row_mm : 1;
     double R = d->r_mm, lim = 0.5 * d->fluid;
-    double s0 = 0, sa = 0, sb = 0, saa = 0, sbb = 0, sab = 0;
+    /* Two bands through the centre, one along each display axis (|b| < R / 2 and |a| < R / 2),
+     * so that the wedges' bridge and bars near the rim stay out whatever the rotation; the band
+     * holding the more elongated dark region wins. */
+    double m[2][6] = {{0}};
     int x0 = (int)fmax(0, d->xc - R / col), x1 = (int)fmin(im->width - 1, d->xc + R / col);
     int y0 = (int)fmax(0, d->yc - R / row), y1 = (int)fmin(im->height - 1, d->yc + R / row);
     /* every other pixel each way: the moments need no more */
@@ -25,33 +28,40 @@ int an_dark_axis(const an_image *im, const an_geom *g, const an_disc *d, double 
                 continue;
             double dx = x - d->xc;
             double a = g->d[0] * dx + g->d[1] * dy, b = g->d[2] * dx + g->d[3] * dy;
-            if (a * a + b * b > 0.64 * R * R || fabs(b) > 0.5 * R)
+            if (a * a + b * b > 0.64 * R * R)
                 continue;
-            s0 += 1;
-            sa += a;
-            sb += b;
-            saa += a * a;
-            sbb += b * b;
-            sab += a * b;
+            for (int k = 0; k < 2; k++) {
+                if (fabs(k ? a : b) > 0.5 * R)
+                    continue;
+                double *q = m[k];
+                q[0] += 1;
+                q[1] += a;
+                q[2] += b;
+                q[3] += a * a;
+                q[4] += b * b;
+                q[5] += a * b;
+            }
         }
     }
-    if (s0 < 10)
-        return -1;
-    s0 *= 4; /* each sample stands for four pixels */
-    sa *= 4;
-    sb *= 4;
-    saa *= 4;
-    sbb *= 4;
-    sab *= 4;
-    double ma = sa / s0, mb = sb / s0;
-    double caa = saa / s0 - ma * ma, cbb = sbb / s0 - mb * mb, cab = sab / s0 - ma * mb;
-    double tr = caa + cbb, det = caa * cbb - cab * cab, disc = sqrt(fmax(0, tr * tr / 4 - det));
-    double l1 = tr / 2 + disc, l2 = tr / 2 - disc;
-    *angle_deg = 0.5 * atan2(2 * cab, caa - cbb) * AN_DEG;
-    *elong = l2 > 1e-9 ? sqrt(l1 / l2) : 1e9;
-    *area_mm2 = s0 * col * row;
-    *off_mm = hypot(ma, mb);
-    return 0;
+    int found = 0;
+    for (int k = 0; k < 2; k++) {
+        double *q = m[k], s0 = q[0];
+        if (s0 < 10)
+            continue;
+        double ma = q[1] / s0, mb = q[2] / s0;
+        double caa = q[3] / s0 - ma * ma, cbb = q[4] / s0 - mb * mb, cab = q[5] / s0 - ma * mb;
+        double tr = caa + cbb, det = caa * cbb - cab * cab, disc = sqrt(fmax(0, tr * tr / 4 - det));
+        double l1 = tr / 2 + disc, l2 = tr / 2 - disc;
+        double el = l2 > 1e-9 ? sqrt(l1 / l2) : 1e9;
+        if (found && el <= *elong)
+            continue;
+        *angle_deg = 0.5 * atan2(2 * cab, caa - cbb) * AN_DEG;
+        *elong = el;
+        *area_mm2 = 4 * s0 * col * row; /* each sample stands for four pixels */
+        *off_mm = hypot(ma, mb);
+        found = 1;
+    }
+    return found ? 0 : -1;
 }
 
 /* Robust straight-line fit y = a + b x (two rounds of rejecting residuals above 3 MADs). */
