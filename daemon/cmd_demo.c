@@ -342,13 +342,15 @@ typedef struct scanner_sum {
     int series, counts[DB_NVERDICTS];
     double last_thickness, last_bld_max;
     char last_date[32];
-    char first_fail[32], first_drift[32], first_warn[32];
+    int alerts[3];               /* by db_alert_kind */
+    char first_alert[3][11];     /* acquisition date of the first alert of each kind */
+    char first_metric[3][40];
+    char first_fail[11], first_drift[11]; /* slice thickness only */
 } scanner_sum;
 
 typedef struct alert_ctx {
     db *d;
     scanner_sum *s;
-    FILE *out;
 } alert_ctx;
 
 typedef struct acq_ctx {
@@ -357,13 +359,14 @@ typedef struct acq_ctx {
 
 static int acq_cb(void *ctx, const db_series_rec *r)
 {
-    sw_strlcpy(((acq_ctx *)ctx)->at, r->acquired_at, sizeof ((acq_ctx *)ctx)->at);
+    sw_strlcpy(((acq_ctx *)ctx)->at, r->acquired_at, sizeof((acq_ctx *)ctx)->at);
     return 0;
 }
 
 static int alert_cb(void *vctx, const db_alert_rec *r)
 {
     alert_ctx *c = vctx;
+    scanner_sum *s = c->s;
     acq_ctx a = {""};
     sw_error err;
     sw_error_clear(&err);
@@ -371,15 +374,18 @@ static int alert_cb(void *vctx, const db_alert_rec *r)
         db_series_get(c->d, r->info.series_id, acq_cb, &a, &err);
     char day[11];
     sw_strlcpy(day, a.at[0] ? a.at : r->created_at, sizeof day);
-    fprintf(c->out, "    %s  %-6s %-24s %s\n", day, db_alert_kind_name(r->info.kind), r->info.metric,
-            r->info.message);
-    int is_thickness = !strcmp(r->info.metric, "slice_thickness");
-    if (is_thickness && r->info.kind == DB_ALERT_DRIFT && !c->s->first_drift[0])
-        sw_strlcpy(c->s->first_drift, day, sizeof c->s->first_drift);
-    if (is_thickness && r->info.kind == DB_ALERT_BREACH && !c->s->first_fail[0])
-        sw_strlcpy(c->s->first_fail, day, sizeof c->s->first_fail);
-    if (is_thickness && r->info.kind == DB_ALERT_WARN && !c->s->first_warn[0])
-        sw_strlcpy(c->s->first_warn, day, sizeof c->s->first_warn);
+    int k = (int)r->info.kind;
+    if (k < 0 || k > 2)
+        return 0;
+    if (s->alerts[k]++ == 0) {
+        sw_strlcpy(s->first_alert[k], day, sizeof s->first_alert[k]);
+        sw_strlcpy(s->first_metric[k], r->info.metric, sizeof s->first_metric[k]);
+    }
+    int thickness = !strcmp(r->info.metric, "slice_thickness");
+    if (thickness && r->info.kind == DB_ALERT_DRIFT && !s->first_drift[0])
+        sw_strlcpy(s->first_drift, day, sizeof s->first_drift);
+    if (thickness && r->info.kind == DB_ALERT_BREACH && !s->first_fail[0])
+        sw_strlcpy(s->first_fail, day, sizeof s->first_fail);
     return 0;
 }
 
@@ -451,17 +457,28 @@ static int summarise(const char *root, FILE *out)
     }
     fprintf(out, "  (thickness and |BLD|: the latest T1 series; |BLD| the larger of its two wedge "
                  "slices)\n");
+    fprintf(out, "\n  alarms raised (alerts, first of each kind by acquisition date):\n");
     for (int k = 0; k < DEMO_SCANNERS; k++) {
-        fprintf(out, "\n  alerts for %s (%s):\n", scanners[k].station, scanners[k].alias);
-        alert_ctx c = {d, &sum[k], out};
-        if (!sum[k].id || db_alerts_each(d, sum[k].id, NULL, NULL, alert_cb, &c, &err) != SW_OK)
-            fprintf(out, "    none\n");
+        alert_ctx c = {d, &sum[k]};
+        if (sum[k].id && db_alerts_each(d, sum[k].id, NULL, NULL, alert_cb, &c, &err) != SW_OK)
+            goto out;
+        fprintf(out, "  %-8s", scanners[k].station);
+        int any = 0;
+        for (int kind = 0; kind < 3; kind++) {
+            if (!sum[k].alerts[kind])
+                continue;
+            fprintf(out, "%s%d %s (from %s, %s)", any ? "; " : " ", sum[k].alerts[kind],
+                    db_alert_kind_name((db_alert_kind)kind), sum[k].first_alert[kind],
+                    sum[k].first_metric[kind]);
+            any = 1;
+        }
+        fprintf(out, "%s\n", any ? "" : " none");
     }
     const scanner_sum *s = &sum[0];
     if (s->first_drift[0] && s->first_fail[0]) {
         double days = days_between(s->first_drift, s->first_fail);
-        fprintf(out, "\n  %s: the drift alarm on slice thickness (%s) came %.0f weeks before the "
-                     "first tolerance breach (%s).\n",
+        fprintf(out, "\n  %s: the EWMA/CUSUM drift alarm on slice thickness (%s) came %.0f weeks "
+                     "before the first tolerance breach (%s).\n",
                 scanners[0].station, s->first_drift, days / 7.0, s->first_fail);
     } else {
         fprintf(out, "\n  %s: drift alarm %s, first breach %s.\n", scanners[0].station,
