@@ -139,7 +139,9 @@ typedef struct an_disc {
     char reason[AN_REASON_MAX];
 } an_disc;
 
-/* Work buffers for the (block-averaged) mask, reused across images. */
+/* Work buffers for the (block-averaged) mask, reused across images. Start zeroed; the holder owns
+ * them and releases them with an_work_free. an_work_reserve grows them to hold npx entries; on
+ * failure (-1) the old buffers stay valid and owned. */
 typedef struct an_work {
     size_t cap;
     unsigned char *mask;
