@@ -351,31 +351,58 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
      * the full insert search (edges, ends, strips) then runs in the final frame of the candidate.
      */
     int ends[2] = {order[0], order[n - 1]}, nends = n > 1 ? 2 : 1, ramp = -1, other = -1, wsign = 1;
-    int cand[2], ncand = 0;
+    int cand[AN_MAX_IMAGES], ncand = 0;
     an_insert ins;
     memset(&ins, 0, sizeof ins);
     char why[AN_REASON_MAX] = "ramp slice not found: no insert at either end of the stack";
     double area_model =
         (model->insert_u_max - model->insert_u_min) * (model->insert_v_max - model->insert_v_min);
-    double elong[2] = {0, 0};
-    for (int e = 0; e < nends; e++) {
-        int i = ends[e];
-        double ang, el, area, off;
-        if (!disc[i].found || an_dark_axis(&imgs[i], &geo[i], &disc[i], &ang, &el, &area, &off) ||
-            el < 2.5 || area < 0.25 * area_model || area > 3 * area_model ||
-            off > 0.25 * disc[i].r_mm)
-            continue;
-        elong[ncand] = el;
-        cand[ncand++] = i;
-    }
-    if (ncand == 2 && elong[1] > elong[0]) {
-        int t = cand[0];
-        cand[0] = cand[1];
-        cand[1] = t;
+    double elong[AN_MAX_IMAGES];
+    /* The ends first (the standard series), then, should neither hold the insert, any slice (a
+     * stack that runs past the wedges); within each group the most elongated dark region first. */
+    for (int pass = 0; pass < 2; pass++) {
+        int first = ncand;
+        for (int k = 0; k < n; k++) {
+            int i = order[k], is_end = i == ends[0] || i == ends[nends - 1];
+            if (pass == 0 ? !is_end : is_end)
+                continue;
+            double ang, el, area, off;
+            if (!disc[i].found ||
+                an_dark_axis(&imgs[i], &geo[i], &disc[i], &ang, &el, &area, &off) || el < 2.5 ||
+                area < 0.25 * area_model || area > 3 * area_model || off > 0.25 * disc[i].r_mm)
+                continue;
+            int j = ncand++;
+            for (; j > first && elong[j - 1] < el; j--) {
+                elong[j] = elong[j - 1];
+                cand[j] = cand[j - 1];
+            }
+            elong[j] = el;
+            cand[j] = i;
+        }
     }
     for (int c = 0; c < ncand && ramp < 0; c++) {
         int i = cand[c];
-        int oth = nends == 2 ? (i == ends[0] ? ends[1] : ends[0]) : -1;
+        /* the other wedge slice lies toward the far end of the stack */
+        int oth = -1;
+        if (nends == 2)
+            oth = i == ends[0]   ? ends[1]
+                  : i == ends[1] ? ends[0]
+                  : !has_geo     ? ends[1]
+                  : fabs(geo[ends[1]].z_n - geo[i].z_n) >= fabs(geo[ends[0]].z_n - geo[i].z_n)
+                      ? ends[1]
+                      : ends[0];
+        /* an interior candidate gets the full circle fit too */
+        if (i != ends[0] && i != ends[nends - 1]) {
+            if (an_find_disc(&imgs[i], model, 1, &wk, &disc[i])) {
+                st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
+                goto out;
+            }
+            if (!disc[i].found)
+                continue;
+            out->phantom[i].centre.x = disc[i].xc;
+            out->phantom[i].centre.y = disc[i].yc;
+            out->phantom[i].radius_mm = disc[i].r_mm;
+        }
         /* 5. w toward slice 11: the ramp slice is slice 1 whatever the patient orientation. */
         wsign = oth >= 0 && has_geo && geo[i].z_n > geo[oth].z_n ? -1 : 1;
         for (int k = 0; k < n; k++)
@@ -437,14 +464,21 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
         for (int k = 0; k < ng; k++)
             gf[k] = (float)gaps[k];
         double gap = ng ? an_median(gf, (size_t)ng) : 0;
-        int rank_of_ramp = ramp == order[0] ? 0 : n - 1;
+        int rank_of_ramp = 0, rank_of_other = n - 1;
+        for (int k = 0; k < n; k++) {
+            if (order[k] == ramp)
+                rank_of_ramp = k;
+            if (order[k] == other)
+                rank_of_other = k;
+        }
+        int dir = rank_of_other >= rank_of_ramp ? 1 : -1;
         for (int k = 0; k < n; k++) {
             int i = order[k], ord;
             if (gap > 0)
-                ord = 1 + (int)lround(fabs(geo[i].z_n - geo[ramp].z_n) / gap);
+                ord = 1 + (int)lround(wsign * (geo[i].z_n - geo[ramp].z_n) / gap);
             else
-                ord = 1 + abs(k - rank_of_ramp);
-            out->ordinal[i] = ord <= model->n_slices ? ord : 0;
+                ord = 1 + dir * (k - rank_of_ramp);
+            out->ordinal[i] = ord >= 1 && ord <= model->n_slices ? ord : 0;
         }
         /* The ramp slice is the model's ramp ordinal; shift the count when the model says so. */
         if (model->ramp_slice != 1)

@@ -509,3 +509,33 @@ Test(drawn, masked_background)
     free(r);
     free_series(&s);
 }
+
+/* A stack that runs past the wedges (13 slices, one beyond each wedge slice): the ramp slice is
+ * found inside the stack by content, slices 1..11 are counted from it, and the extra slices are
+ * left unplaced (ordinal 0). */
+Test(drawn, stack_beyond_the_wedges)
+{
+    dr_params p;
+    dr_defaults(&p);
+    p.d_mm = -0.6;
+    p.sigma = p.fluid / 100;
+    an_image v[13];
+    float *px[13];
+    for (int k = 0; k < 13; k++) {
+        px[k] = malloc(sizeof(float) * 256 * 256);
+        dr_slice(&p, k, px[k], &v[k]); /* slice k = 0 lies 10 mm before slice 1 */
+    }
+    an_model m;
+    an_model_large(&m);
+    an_series_result *r = run(v, 13, &m, NULL);
+    for (int k = 0; k < 13; k++)
+        cr_assert_eq(r->ordinal[k], k >= 1 && k <= 11 ? k : 0, "image %d: ordinal %d", k,
+                     r->ordinal[k]);
+    cr_assert(r->thickness.measured, "%s", r->thickness.reason);
+    cr_assert(r->position[0].measured && r->position[1].measured);
+    cr_assert(fabs(r->position[1].bar_difference_mm - 1.2) <
+              0.1 + 3 * r->position[1].uncertainty_mm);
+    free(r);
+    for (int k = 0; k < 13; k++)
+        free(px[k]);
+}
