@@ -408,8 +408,25 @@ typedef struct watcher {
     int stop, reload;
     double started, last_draw, watchdog_every, last_ping, last_status, next_rescan;
     long files_total; /* --once progress: files found at the start */
-    long scanner_cache_n;
+    /* Moves wait until the database says where each file goes (jobs, run_jobs). Within one of
+     * take_file's transactions, what changed in memory is noted so that a rollback undoes it. */
+    struct job *jobs;
+    size_t njobs, capjobs, jobs_mark;
+    int in_txn;
+    struct undo *undo;
+    size_t nundo, capundo;
 } watcher;
+
+typedef struct job {
+    int64_t id, series_id;
+    char *path, *reason, *location;
+    char hash[WD_HASH_MAX];
+    db_file_state state;
+} job;
+
+typedef struct undo {
+    int64_t series_id, file_id; /* file_id 0: the series itself was added */
+} undo;
 
 static void notify(const char *what)
 {
@@ -916,7 +933,84 @@ static int move_or_report(watcher *w, const fmove *m)
     return -1;
 }
 
-/* Moves a file to a final state with a reason, then out of the folder. */
+/* A move for later (when no transaction is open); strings are copied. */
+static void push_job(watcher *w, const fmove *m)
+{
+    if (w->njobs == w->capjobs) {
+        size_t c = w->capjobs ? w->capjobs * 2 : 64;
+        job *v = realloc(w->jobs, c * sizeof *v);
+        if (!v)
+            goto lost;
+        w->jobs = v;
+        w->capjobs = c;
+    }
+    job *j = &w->jobs[w->njobs];
+    memset(j, 0, sizeof *j);
+    j->id = m->id;
+    j->series_id = m->series_id;
+    j->state = m->state;
+    sw_strlcpy(j->hash, m->hash, sizeof j->hash);
+    j->path = strdup(m->path);
+    j->reason = strdup(m->reason ? m->reason : "");
+    j->location = strdup(m->location ? m->location : "");
+    if (!j->path || !j->reason || !j->location) {
+        free(j->path);
+        free(j->reason);
+        free(j->location);
+        goto lost;
+    }
+    w->njobs++;
+    return;
+lost:
+    /* Out of memory: the file stays in the folder in its final state; the next listing moves it. */
+    wd_error("%s: out of memory; moved at the next start", m->path);
+}
+
+static void job_free(job *j)
+{
+    free(j->path);
+    free(j->reason);
+    free(j->location);
+}
+
+static int move_or_report(watcher *w, const fmove *m);
+
+static void run_jobs(watcher *w)
+{
+    if (w->in_txn)
+        return;
+    /* Taken one by one from the front: a move may queue nothing here, but keep it simple. */
+    for (size_t i = 0; i < w->njobs; i++) {
+        job *j = &w->jobs[i];
+        fmove m = {.id = j->id, .path = j->path, .hash = j->hash, .state = j->state,
+                   .reason = j->reason, .location = j->location, .series_id = j->series_id};
+        (void)move_or_report(w, &m);
+        job_free(j);
+    }
+    w->njobs = 0;
+}
+
+/* Picks the target of a file in a final state and records it, in the caller's transaction, so
+ * that the move after the commit is already known to the store. Best effort: when no target can
+ * be picked now (a folder not writable), the move picks again and reports. */
+static void reserve(watcher *w, fmove *m, char *target, size_t n)
+{
+    char dir[PATH_MAX];
+    sw_error err;
+    sw_error_clear(&err);
+    target[0] = '\0';
+    m->location = target;
+    if (!w->s->cfg.move_files)
+        return;
+    if (target_dir(w, m, dir, sizeof dir, &err) != SW_OK ||
+        wd_pick_target(dir, base_name(m->path), target, n, &err) != SW_OK ||
+        db_file_set_location(w->d, m->id, target, &err) != SW_OK) {
+        wd_debug("%s: no target yet: %s", m->path, err.msg);
+        target[0] = '\0';
+    }
+}
+
+/* Moves a file to a final state with a reason; its move follows when no transaction is open. */
 static sw_status to_final(watcher *w, int64_t id, const char *path, const char *hash,
                           db_file_state from, db_file_state to, const char *reason,
                           int64_t series_id, sw_error *err)
@@ -929,9 +1023,82 @@ static sw_status to_final(watcher *w, int64_t id, const char *path, const char *
     else
         wd_info("%s: ignored: %s", path, reason);
     count_final(w, to);
+    char target[PATH_MAX];
     fmove m = {.id = id, .path = path, .hash = hash, .state = to, .reason = reason,
                .location = "", .series_id = series_id};
-    (void)move_or_report(w, &m);
+    reserve(w, &m, target, sizeof target);
+    push_job(w, &m);
+    return SW_OK;
+}
+
+/* ---- take_file's transaction: the store's changes and their mirror in memory ---- */
+
+static void note_undo(watcher *w, int64_t series_id, int64_t file_id)
+{
+    if (!w->in_txn)
+        return;
+    if (w->nundo == w->capundo) {
+        size_t c = w->capundo ? w->capundo * 2 : 16;
+        undo *v = realloc(w->undo, c * sizeof *v);
+        if (!v)
+            return;
+        w->undo = v;
+        w->capundo = c;
+    }
+    w->undo[w->nundo].series_id = series_id;
+    w->undo[w->nundo].file_id = file_id;
+    w->nundo++;
+}
+
+static sw_status txn_begin(watcher *w, sw_error *err)
+{
+    sw_status rc = db_begin(w->d, err);
+    if (rc == SW_OK) {
+        w->in_txn = 1;
+        w->nundo = 0;
+        w->jobs_mark = w->njobs;
+    }
+    return rc;
+}
+
+static void series_remove(watcher *w, struct wseries *s);
+static struct wseries *series_find(watcher *w, int64_t id);
+
+/* Rolls back, and takes back what the transaction did in memory and queued. */
+static void txn_rollback(watcher *w)
+{
+    (void)db_rollback(w->d, NULL);
+    w->in_txn = 0;
+    for (size_t i = w->nundo; i-- > 0;) {
+        struct wseries *s = series_find(w, w->undo[i].series_id);
+        if (!s)
+            continue;
+        if (!w->undo[i].file_id) {
+            series_remove(w, s);
+            continue;
+        }
+        for (int k = 0; k < s->nfiles; k++)
+            if (s->files[k].id == w->undo[i].file_id) {
+                free(s->files[k].path);
+                s->files[k] = s->files[--s->nfiles];
+                break;
+            }
+    }
+    w->nundo = 0;
+    while (w->njobs > w->jobs_mark)
+        job_free(&w->jobs[--w->njobs]);
+}
+
+static sw_status txn_commit(watcher *w, sw_error *err)
+{
+    sw_status rc = db_commit(w->d, err);
+    if (rc != SW_OK) {
+        w->in_txn = 1; /* db_commit rolled the store back; take back memory as well */
+        txn_rollback(w);
+        return rc;
+    }
+    w->in_txn = 0;
+    w->nundo = 0;
     return SW_OK;
 }
 
@@ -1025,6 +1192,7 @@ static wseries *series_add(watcher *w, int64_t id)
     s->id = id;
     s->state = DB_SERIES_COLLECTING;
     w->series[w->nseries++] = s;
+    note_undo(w, id, 0);
     return s;
 }
 
@@ -1073,6 +1241,7 @@ static int attach(watcher *w, wseries *s, int64_t id, const char *path, const ch
     sw_strlcpy(wf->hash, hash, sizeof wf->hash);
     file_counts(f, wf);
     s->nfiles++;
+    note_undo(w, s->id, id);
     int me = max_echo(wf);
     if (s->echoes_expected > 0 && me > s->echoes_expected)
         s->echoes_expected = me > WD_MAX_ECHOES ? WD_MAX_ECHOES : me;
@@ -1164,7 +1333,7 @@ static sw_status follow_rename(watcher *w, int64_t id, const char *path, const c
         /* Measured and stored, but its move had not happened: it happens from here. */
         fmove m = {.id = holder, .path = path, .hash = hash, .state = DB_FILE_STORED,
                    .reason = "", .location = "", .series_id = hl->series_id};
-        (void)move_or_report(w, &m);
+        push_job(w, &m);
     }
     return SW_OK;
 }
@@ -1430,7 +1599,10 @@ static int take_file(watcher *w, const char *path, int scanned)
                        .size = unreadable ? (int64_t)st.st_size : (int64_t)b.len};
     int64_t id = 0;
     db_file_outcome how;
-    sw_status s2 = db_file_add(w->d, &fi, &id, &how, NULL, &err);
+    /* One transaction for what the store learns of this file: one commit, one fsync. */
+    sw_status s2 = txn_begin(w, &err);
+    if (s2 == SW_OK)
+        s2 = db_file_add(w->d, &fi, &id, &how, NULL, &err);
     if (s2 != SW_OK) {
         if (s2 != SW_EBUSY)
             wd_error("%s: %s; tried again later", path, err.msg);
@@ -1452,6 +1624,7 @@ static int take_file(watcher *w, const char *path, int scanned)
         goto out;
     }
     if (db_file_state_final(fl.state)) {
+        txn_rollback(w); /* nothing was written: the file is known */
         fmove m = {.id = id, .path = path, .hash = hash, .state = fl.state, .reason = fl.reason,
                    .location = fl.location, .series_id = fl.series_id};
         result = move_or_report(w, &m) == 0 ? TAKEN : SKIPPED; /* a retry is queued */
@@ -1475,6 +1648,15 @@ static int take_file(watcher *w, const char *path, int scanned)
         wd_debug("%s: file %lld is %s; its series finishes it", path, (long long)id,
                  db_file_state_name(fl.state));
 out:
+    if (w->in_txn) {
+        if (result == RETRY) {
+            txn_rollback(w);
+        } else if (txn_commit(w, &err) != SW_OK) {
+            wd_error("%s: %s; tried again later", path, err.msg);
+            result = RETRY;
+        }
+    }
+    run_jobs(w);
     wd_blob_free(&b);
     return result;
 }
@@ -1486,6 +1668,17 @@ typedef struct loaded {
     db_file_state fate; /* DB_FILE_STORED when measured, else quarantined or ignored */
     char why[SW_ERROR_MAX + 64];
 } loaded;
+
+/* Whether a file leaves the folder after its series: not when it vanished, nor when the bytes at
+ * its path are a newer file's now. */
+static int needs_move(const loaded *l)
+{
+    if (l->fate == DB_FILE_IGNORED && strstr(l->why, "content changed"))
+        return 0;
+    if (l->fate == DB_FILE_QUARANTINED && !l->f && strstr(l->why, "vanished"))
+        return 0;
+    return 1;
+}
 
 static void log_series(watcher *w, const wseries *s, const char *how, const wd_store_result *r,
                        int n_images)
@@ -1507,6 +1700,7 @@ static int measure_series(watcher *w, wseries *s, int quiet)
     sw_status st = SW_OK;
     int result = TAKEN, began = 0, n_img = 0;
     loaded *ld = NULL;
+    char (*targets)[PATH_MAX] = NULL;
     const dcm_image **imgs = NULL;
     wd_measured m;
     memset(&m, 0, sizeof m);
@@ -1654,6 +1848,17 @@ static int measure_series(watcher *w, wseries *s, int quiet)
                 goto out;
         }
     }
+    /* Where each file goes, recorded in the same transaction: the moves after it are known. */
+    if (!(targets = calloc((size_t)nfiles + 1, sizeof *targets))) {
+        st = sw_error_set(&err, SW_ENOMEM, "out of memory");
+        goto out;
+    }
+    for (int i = 0; i < nfiles; i++)
+        if (needs_move(&ld[i])) {
+            fmove mv = {.id = s->files[i].id, .path = s->files[i].path,
+                        .hash = s->files[i].hash, .state = ld[i].fate, .series_id = s->id};
+            reserve(w, &mv, targets[i], sizeof targets[i]);
+        }
     if ((st = db_commit(w->d, &err)) != SW_OK)
         goto out;
     began = 0;
@@ -1682,15 +1887,14 @@ static int measure_series(watcher *w, wseries *s, int quiet)
         if (ld[i].fate != DB_FILE_STORED)
             wd_warn("%s: %s: %s", s->files[i].path, db_file_state_name(ld[i].fate), ld[i].why);
         count_final(w, ld[i].fate);
-        if (ld[i].fate == DB_FILE_IGNORED && strstr(ld[i].why, "content changed"))
-            continue; /* the bytes at the path belong to a newer file now */
-        if (ld[i].fate == DB_FILE_QUARANTINED && !ld[i].f && strstr(ld[i].why, "vanished"))
+        if (!needs_move(&ld[i]))
             continue;
         fmove mv = {.id = s->files[i].id, .path = s->files[i].path, .hash = s->files[i].hash,
-                    .state = ld[i].fate, .reason = ld[i].why, .location = "",
+                    .state = ld[i].fate, .reason = ld[i].why, .location = targets[i],
                     .series_id = s->id};
-        (void)move_or_report(w, &mv);
+        push_job(w, &mv);
     }
+    run_jobs(w);
     series_remove(w, s);
     s = NULL;
 out:
@@ -1708,6 +1912,7 @@ out:
         for (int i = 0; i < nfiles; i++)
             dcm_file_free(ld[i].f);
     free(ld);
+    free(targets);
     free(imgs);
     return result;
 }
@@ -1903,6 +2108,7 @@ static sw_status rebuild(watcher *w, sw_error *err)
 out:
     pend_files_free(&pf);
     free(pl.v);
+    run_jobs(w);
     return rc;
 }
 
@@ -2359,6 +2565,10 @@ out:
         free(w->dirs[i]);
     free(w->dirs);
     queue_free(&w->q);
+    for (size_t i = 0; i < w->njobs; i++)
+        job_free(&w->jobs[i]);
+    free(w->jobs);
+    free(w->undo);
     free(w->s);
     free(w);
     return rc;

@@ -88,9 +88,11 @@ extern int wd_move_force_copy;
  * Reservation is advisory: wd_move_noreplace refuses to overwrite in any case. */
 sw_status wd_pick_target(const char *dir, const char *base, char *out, size_t n, sw_error *err);
 /* Moves src to dst without ever replacing dst: renameat2(RENAME_NOREPLACE) on one file system
- * (link and unlink where that flag is unsupported); across file systems a copy into a temporary
- * name in dst's folder, fsync, a no-replace link to dst, fsync of the folder, and only then the
- * unlink of src. SW_EBUSY when dst exists (pick another name); src is intact on any failure. */
+ * (link and unlink where that flag is unsupported), not followed by an fsync (a rename lost to a
+ * power cut leaves src in place; the caller records the target first and moves again); across file
+ * systems a copy into a temporary name in dst's folder, fsync, a no-replace link to dst, fsync of
+ * the folder, and only then the unlink of src. SW_EBUSY when dst exists (pick another name); src is
+ * intact on any failure. */
 sw_status wd_move_noreplace(const char *src, const char *dst, sw_error *err);
 /* Writes text atomically to path (temporary file, fsync, rename, fsync of the folder). */
 sw_status wd_write_text_atomic(const char *path, const char *text, sw_error *err);

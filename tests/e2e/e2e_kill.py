@@ -45,9 +45,14 @@ conf = write_config(os.path.join(base, "slicewarden.conf"),
 specs = [("t1", 21, "ALDMR1", []), ("t1", 22, "ALDMR2", ["--thickness", "6.5", "--prescribed", "5"]),
          ("t2", 23, "ALDMR3", ["--shuffle"]), ("t1", 24, "ALDMR1", ["--enhanced"]),
          ("t1", 25, "ALDMR2", []), ("t2", 26, "ALDMR1", [])]
+# A reserve of series fed in whenever the backlog runs dry before enough kills have landed.
+reserve = [("t1", 27 + k, "ALDMR%d" % (k % 3 + 1), []) for k in range(6)]
 originals = []
-uids = set()
-for i, (kind, seed, station, extra) in enumerate(specs):
+delivered = []
+
+
+def deliver(i, spec):
+    kind, seed, station, extra = spec
     files, truth = simulate(os.path.join(src, "s%d" % i), *extra, series=kind, seed=seed,
                             station=station)
     for f in files:
@@ -55,6 +60,14 @@ for i, (kind, seed, station, extra) in enumerate(specs):
         os.makedirs(os.path.dirname(dst), exist_ok=True)
         shutil.copyfile(f, dst)
         originals.append(dst)
+        want.setdefault(sha256(dst), 0)
+        want[sha256(dst)] += 1
+    delivered.append(spec)
+
+
+want = {}
+for i, spec in enumerate(specs):
+    deliver(i, spec)
 with open(originals[3], "rb") as f:
     head = f.read()
 bad = {os.path.join(inbox, "cut.dcm"): head[:len(head) // 3],
@@ -62,12 +75,10 @@ bad = {os.path.join(inbox, "cut.dcm"): head[:len(head) // 3],
 for p, data in bad.items():
     with open(p, "wb") as f:
         f.write(data)
-    originals.append(p)
 dup = os.path.join(inbox, "s0", "second-copy")
 shutil.copyfile(originals[0], dup)
-originals.append(dup)
-want = {}
-for p in originals:
+for p in list(bad) + [dup]:
+    originals.append(p)
     want.setdefault(sha256(p), 0)
     want[sha256(p)] += 1
 
@@ -81,7 +92,10 @@ kills = 0
 starts = 0
 while kills < 24:
     if not remaining():
-        break
+        if not reserve:
+            break
+        deliver(len(delivered), reserve.pop(0))
+        time.sleep(1.2)
     d = Daemon(inbox, db, "-c", conf)
     starts += 1
     time.sleep(random.uniform(0.01, 0.12) if kills % 4 else random.uniform(0.12, 0.3))
@@ -91,7 +105,7 @@ while kills < 24:
     d.log.close()
     if left:
         kills += 1
-print("%d kills with work left, %d starts" % (kills, starts))
+print("%d kills with work left, %d starts, %d series" % (kills, starts, len(delivered)))
 check(kills >= 20, "at least 20 kills landed while the backlog was ingested (%d)" % kills)
 
 # The restart that finishes the work.
@@ -101,7 +115,7 @@ check(not remaining(), "the watch folder is empty: %s" % remaining()[:3])
 
 # ---- the database: each series once, one run each, no duplicate result ----
 series = query(db, "SELECT id, series_instance_uid, state FROM series")
-check(len(series) == len(specs), "%d series known (%d)" % (len(specs), len(series)))
+check(len(series) == len(delivered), "%d series known (%d)" % (len(delivered), len(series)))
 for sid, uid, state in series:
     check(state == "stored", "series %s stored (%s)" % (uid, state))
     runs = query(db, "SELECT id, status FROM runs WHERE series_id = ?", (sid,))
@@ -111,7 +125,7 @@ dups = query(db, """SELECT run_id, metric, slice, echo, count(*) FROM measuremen
                     GROUP BY run_id, metric, slice, echo HAVING count(*) > 1""")
 check(not dups, "no measurement row twice: %s" % dups[:3])
 per_run = query(db, "SELECT run_id, count(*) FROM measurements GROUP BY run_id")
-check(len(per_run) == len(specs), "rows for every run")
+check(len(per_run) == len(delivered), "rows for every run")
 open_files = query(db, "SELECT path, state FROM files WHERE state IN ('seen','parsed','measured')")
 check(not open_files, "no file left in an open state: %s" % open_files[:3])
 alert_rows = query(db, "SELECT metric FROM alerts")
