@@ -46,7 +46,7 @@ specs = [("t1", 21, "ALDMR1", []), ("t1", 22, "ALDMR2", ["--thickness", "6.5", "
          ("t2", 23, "ALDMR3", ["--shuffle"]), ("t1", 24, "ALDMR1", ["--enhanced"]),
          ("t1", 25, "ALDMR2", []), ("t2", 26, "ALDMR1", [])]
 # A reserve of series fed in whenever the backlog runs dry before enough kills have landed.
-reserve = [("t1", 27 + k, "ALDMR%d" % (k % 3 + 1), []) for k in range(6)]
+reserve = [("t1", 27 + k, "ALDMR%d" % (k % 3 + 1), []) for k in range(9)]
 originals = []
 delivered = []
 
@@ -94,11 +94,12 @@ while kills < 24:
     if not remaining():
         if not reserve:
             break
-        deliver(len(delivered), reserve.pop(0))
+        for _ in range(3):
+            deliver(len(delivered), reserve.pop(0))
         time.sleep(1.2)
     d = Daemon(inbox, db, "-c", conf)
     starts += 1
-    time.sleep(random.uniform(0.01, 0.12) if kills % 4 else random.uniform(0.12, 0.3))
+    time.sleep(random.uniform(0.005, 0.08) if kills % 5 else random.uniform(0.08, 0.2))
     left = remaining()
     d.p.send_signal(signal.SIGKILL)
     d.p.wait()
@@ -107,6 +108,10 @@ while kills < 24:
         kills += 1
 print("%d kills with work left, %d starts, %d series" % (kills, starts, len(delivered)))
 check(kills >= 20, "at least 20 kills landed while the backlog was ingested (%d)" % kills)
+
+mid = query(db, "SELECT count(*) FROM series WHERE state = 'stored'")[0][0]
+print("%d of %d series stored during the kills" % (mid, len(delivered)))
+check(mid >= 1, "the kills reached the measuring and storing (a series stored meanwhile)")
 
 # The restart that finishes the work.
 r = run_once(inbox, db, "-c", conf)
