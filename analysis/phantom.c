@@ -442,9 +442,10 @@ double an_noise_air(const an_image *im, const an_disc *d, float *scratch)
     double col = im->col_mm > 0 ? im->col_mm : 1, row = im->row_mm > 0 ? im->row_mm : 1;
     double rmin = d->r_mm + fmax(10.0, 0.1 * d->r_mm);
     size_t quarter = (size_t)w * h / 4, cnt[4] = {0}, zeros = 0, total = 0;
-    /* Every other pixel in each direction: thousands per band are plenty for a median. */
-    for (int y = 2; y < h - 2; y += 2)
-        for (int x = 2; x < w - 2; x += 2) {
+    /* Every pixel of a border-trimmed range that is symmetric under flips and transposition, so the
+     * estimate does not depend on how the image happens to be stored. */
+    for (int y = 2; y < h - 2; y++)
+        for (int x = 2; x < w - 2; x++) {
             double dx = (x - d->xc) * col, dy = (y - d->yc) * row;
             if (dx * dx + dy * dy < rmin * rmin)
                 continue;

@@ -46,6 +46,30 @@ static int find_series(series_ref *s, int n, const char *uid)
     return -1;
 }
 
+/* Says on stderr, naming a file of the series, what could not be measured and why. */
+static void report_unmeasurable(const wd_measured *m, const char *path)
+{
+    for (int i = 0; i < m->n_echoes; i++) {
+        const an_series_result *r = m->echo[i].res;
+        const char *uid = m->first->series_instance_uid;
+        int echo = m->echo[i].echo_number;
+        if (r->reason[0])
+            fprintf(stderr, "slicewarden: %s: series %s echo %d: unmeasurable: %s\n", path, uid,
+                    echo, r->reason);
+        if (r->thickness.verdict == AN_UNMEASURABLE && strcmp(r->thickness.reason, r->reason))
+            fprintf(stderr, "slicewarden: %s: series %s echo %d: slice thickness unmeasurable: %s\n",
+                    path, uid, echo, r->thickness.reason);
+        for (int k = 0; k < 2; k++) {
+            const an_position *p = &r->position[k];
+            if (p->verdict == AN_UNMEASURABLE && p->reason[0] && strcmp(p->reason, r->reason))
+                fprintf(stderr,
+                        "slicewarden: %s: series %s echo %d: slice position (slice %d) "
+                        "unmeasurable: %s\n",
+                        path, uid, echo, p->slice, p->reason);
+        }
+    }
+}
+
 /* Reads the pixels of every file of series k and measures it; prints or appends the results. */
 static int measure_series(entry *e, int ne, int k, const wd_method *method, json_t *out_json,
                           const char *png_dir, an_verdict *worst)
@@ -55,6 +79,10 @@ static int measure_series(entry *e, int ne, int k, const wd_method *method, json
     const dcm_image **imgs = NULL;
     wd_measured m;
     memset(&m, 0, sizeof m);
+    int first = -1;
+    for (int i = 0; i < ne && first < 0; i++)
+        if (e[i].series == k)
+            first = i;
     if (!files)
         goto oom;
     for (int i = 0; i < ne; i++) {
@@ -88,6 +116,7 @@ static int measure_series(entry *e, int ne, int k, const wd_method *method, json
         wd_measured_json(&m, json_object_get(out_json, "series"));
     else
         wd_measured_text(&m, stdout);
+    report_unmeasurable(&m, e[first].path);
     if (png_dir) {
         sw_error_clear(&err);
         if (wd_measured_pngs(&m, png_dir, NULL, NULL, 0, &err) != SW_OK) {

@@ -73,7 +73,8 @@ sw_status wd_paths_collect(wd_paths *p, const char *path, sw_error *err)
         return sw_error_set(err, SW_ENOMEM, "%s: out of memory", path);
     if (rc != 0)
         return sw_error_set(err, SW_EIO, "%s: %s", path, strerror(errno));
-    qsort(p->v + first, p->n - first, sizeof *p->v, cmp_str); /* named[] is all 0 there */
+    if (p->n > first) /* named[] is all 0 there */
+        qsort(p->v + first, p->n - first, sizeof *p->v, cmp_str);
     return SW_OK;
 }
 
