@@ -392,7 +392,7 @@ typedef struct watcher {
     settings *s;
     const char *config_path;
     overrides ov;
-    int once, progress, tty;
+    int once, progress, tty, no_png;
     db *d;
     int ifd, sfd, lockfd;
     wmap *map;
@@ -1808,7 +1808,8 @@ static int measure_series(watcher *w, wseries *s, int quiet)
     } else {
         wd_series_ctx ctx = {.series_id = s->id, .scanner_id = s->scanner_id,
                              .scanner_label = s->label, .station = s->station,
-                             .images_dir = w->s->cfg.images, .config_hash = w->s->hash,
+                             .images_dir = w->no_png ? NULL : w->s->cfg.images,
+                             .config_hash = w->s->hash,
                              .tolerance_key = wd_tolerance_key(s->match, first), .alerts = 1};
         if ((st = wd_store_run(w->d, &ctx, &method, measured ? &m : NULL, fail_why, &res, &err)) !=
             SW_OK)
@@ -2342,7 +2343,7 @@ static void usage(FILE *f)
 {
     fprintf(f,
             "usage: slicewarden watch [-c FILE] [--folder DIR] [--db FILE] [--once] [--quiet SECONDS]\n"
-            "                         [--no-progress] [-v]\n"
+            "                         [--no-progress] [--no-png] [-v]\n"
             "Watches the folder where phantom series arrive, measures each series when it is\n"
             "complete or quiet, stores the results and moves the files on.\n"
             "  -c, --config FILE  configuration (default %s when it exists, else built-in defaults)\n"
@@ -2351,6 +2352,7 @@ static void usage(FILE *f)
             "  --once             process what is in the folder now and exit\n"
             "  --quiet SECONDS    quiet period (overrides [watch] quiet_seconds; 0 allowed)\n"
             "  --no-progress      no progress bar with --once (it shows only on a terminal)\n"
+            "  --no-png           no annotated PNGs (a backfill: they take half the time)\n"
             "  -v, --verbose      debug log\n"
             "Signals: SIGTERM finishes the series in hand and exits 0; SIGHUP reloads the\n"
             "configuration (a bad one is refused and the running one kept).\n"
@@ -2400,7 +2402,7 @@ int wd_cmd_watch(int argc, char **argv)
         {"db", required_argument, NULL, 'D'},     {"once", no_argument, NULL, 'o'},
         {"quiet", required_argument, NULL, 'q'},  {"no-progress", no_argument, NULL, 'P'},
         {"verbose", no_argument, NULL, 'v'},      {"help", no_argument, NULL, 'h'},
-        {NULL, 0, NULL, 0},
+        {"no-png", no_argument, NULL, 'N'},       {NULL, 0, NULL, 0},
     };
     int rc = 1, c, verbose = 0, no_progress = 0, dcm_ready = 0;
     watcher *w = calloc(1, sizeof *w);
@@ -2430,6 +2432,7 @@ int wd_cmd_watch(int argc, char **argv)
             break;
         }
         case 'P': no_progress = 1; break;
+        case 'N': w->no_png = 1; break;
         case 'v': verbose = 1; break;
         case 'h': usage(stdout); rc = 0; goto out;
         default: usage(stderr); rc = 2; goto out;
