@@ -14,8 +14,11 @@
  *                        ignored (reason)     <--- parse: not MR, not a phantom series, duplicate
  *                                                  SOP instance, late for a measured series;
  *                                                  measure_series: content check failed
- *   then, for every final state: finish_move records the target (db_file_set_location), writes
- *   NAME.reason.txt beside quarantined and ignored files, and moves the file (never overwriting).
+ *   The transaction that makes a state final also records the file's target (reserve:
+ *   db_file_set_location); after the commit, finish_move writes NAME.reason.txt beside quarantined
+ *   and ignored files and moves the file (never overwriting). What take_file learns of one file is
+ *   one transaction (txn_begin .. txn_commit, with its mirror in memory undone on a rollback); a
+ *   series' measurement is another.
  *
  * Resumption: the start-up scan meets every file still in the folder again; db_file_add knows it
  * by path and content and take_file continues from its state (a final file still in the folder is
@@ -896,8 +899,11 @@ static sw_status finish_move(watcher *w, const fmove *m, sw_error *err)
             target[0] = '\0';
             continue;
         }
-        if (rc == SW_ENOTFOUND)
+        if (rc == SW_ENOTFOUND) {
+            if (m->state != DB_FILE_STORED)
+                (void)unlink(reason_path);
             return SW_OK; /* already gone: nothing left to move */
+        }
         if (rc != SW_OK) {
             if (m->state != DB_FILE_STORED)
                 (void)unlink(reason_path);
@@ -1254,6 +1260,113 @@ static int attach(watcher *w, wseries *s, int64_t id, const char *path, const ch
     return 0;
 }
 
+/* ---- a crash while reading a file or measuring a series ----
+ * A file or series that makes the program crash (a decoder or analysis fault on odd input) would
+ * crash it again at every restart and stop the QA of every scanner. So, while such work is in
+ * hand, a note names it; a handler for the fatal signals writes the note beside the database
+ * (DATABASE.crash) and lets the signal take its course. The next start quarantines that file, or
+ * fails that series, with the reason. kill -9 cannot be caught and leaves no note: an interrupted
+ * series is simply measured again. */
+
+static char crash_note[PATH_MAX + 160];
+static char crash_file[PATH_MAX + 8];
+static struct sigaction crash_old[NSIG];
+static const int crash_sigs[] = {SIGSEGV, SIGBUS, SIGFPE, SIGILL, SIGABRT};
+
+static void on_crash(int sig)
+{
+    if (crash_note[0] && crash_file[0]) {
+        int fd = open(crash_file, O_WRONLY | O_CREAT | O_TRUNC | O_CLOEXEC, 0640);
+        if (fd >= 0) {
+            char num[16];
+            int k = (int)sizeof num;
+            unsigned v = (unsigned)sig;
+            num[--k] = '\n';
+            do
+                num[--k] = (char)('0' + v % 10);
+            while ((v /= 10) && k > 0);
+            (void)!write(fd, num + k, sizeof num - (size_t)k);
+            (void)!write(fd, crash_note, strlen(crash_note));
+            (void)fsync(fd);
+            close(fd);
+        }
+    }
+    /* Whoever handled it before (the default, or a sanitizer) takes it from here. */
+    sigaction(sig, &crash_old[sig], NULL);
+    raise(sig);
+}
+
+static void crash_guard(const char *database)
+{
+    snprintf(crash_file, sizeof crash_file, "%s.crash", database);
+    struct sigaction sa;
+    memset(&sa, 0, sizeof sa);
+    sa.sa_handler = on_crash;
+    sigemptyset(&sa.sa_mask);
+    for (size_t i = 0; i < sizeof crash_sigs / sizeof crash_sigs[0]; i++)
+        sigaction(crash_sigs[i], &sa, &crash_old[crash_sigs[i]]);
+}
+
+/* Test hook (fault injection for tests/e2e/e2e_crash.py): a crash on purpose where a faulty
+ * decoder or analysis would crash, when the environment names the file or the series. */
+static void crash_test_hook(const char *what, const char *name)
+{
+    const char *want = getenv(!strcmp(what, "series") ? "SLICEWARDEN_TEST_CRASH_SERIES"
+                                                      : "SLICEWARDEN_TEST_CRASH_FILE");
+    if (want && *want && name && strstr(name, want))
+        raise(SIGSEGV);
+}
+
+static void note_file(const char *path, const char *hash)
+{
+    snprintf(crash_note, sizeof crash_note, "file %s %s\n", hash, path);
+}
+
+static void note_series(int64_t id)
+{
+    snprintf(crash_note, sizeof crash_note, "series %lld\n", (long long)id);
+}
+
+static void note_clear(void) { crash_note[0] = '\0'; }
+
+typedef struct crash_info {
+    int sig;
+    int64_t series_id;
+    char hash[WD_HASH_MAX];
+    char path[PATH_MAX];
+    int have;
+} crash_info;
+
+/* Reads and removes the note a crash left. */
+static void crash_read(crash_info *ci)
+{
+    memset(ci, 0, sizeof *ci);
+    FILE *f = fopen(crash_file, "r");
+    if (!f)
+        return;
+    char line[PATH_MAX + 200];
+    if (fgets(line, sizeof line, f))
+        ci->sig = atoi(line);
+    if (fgets(line, sizeof line, f)) {
+        line[strcspn(line, "\n")] = '\0';
+        long long id = 0;
+        if (sscanf(line, "series %lld", &id) == 1 && id > 0) {
+            ci->series_id = id;
+            ci->have = 1;
+        } else if (!strncmp(line, "file ", 5)) {
+            char *sp = strchr(line + 5, ' ');
+            if (sp) {
+                *sp = '\0';
+                sw_strlcpy(ci->hash, line + 5, sizeof ci->hash);
+                sw_strlcpy(ci->path, sp + 1, sizeof ci->path);
+                ci->have = 1;
+            }
+        }
+    }
+    fclose(f);
+    (void)unlink(crash_file);
+}
+
 /* ---- taking one file ---- */
 
 enum { TAKEN = 0, RETRY, SKIPPED, SETTLE };
@@ -1403,9 +1516,11 @@ static int parse(watcher *w, int64_t id, const char *path, const wd_blob *b)
         struct stat gone;
         int live = hl.state == DB_FILE_PARSED || hl.state == DB_FILE_MEASURED ||
                    hl.state == DB_FILE_STORED;
-        /* The same bytes, and the holder's file is no longer where it was in the folder. */
-        if (live && !strcmp(hl.hash, hash) && lstat(was, &gone) != 0 && errno == ENOENT &&
-            wd_path_inside(was, w->s->cfg.folder)) {
+        /* The same bytes, and the holder's file is neither where it was found nor where it was
+         * recorded to be: it is this one, under a new name. */
+        int missing = lstat(hl.path, &gone) != 0 && errno == ENOENT &&
+                      (!hl.location[0] || (lstat(hl.location, &gone) != 0 && errno == ENOENT));
+        if (live && !strcmp(hl.hash, hash) && missing) {
             st = follow_rename(w, id, path, hash, holder, &hl, was, &err);
             goto out;
         }
@@ -1640,6 +1755,8 @@ static int take_file(watcher *w, const char *path, int scanned)
             result = RETRY;
         goto out;
     }
+    note_file(path, hash);
+    crash_test_hook("file", path);
     if (fl.state == DB_FILE_SEEN)
         result = parse(w, id, path, &b);
     else if (fl.state == DB_FILE_PARSED)
@@ -1647,6 +1764,7 @@ static int take_file(watcher *w, const char *path, int scanned)
     else
         wd_debug("%s: file %lld is %s; its series finishes it", path, (long long)id,
                  db_file_state_name(fl.state));
+    note_clear();
 out:
     if (w->in_txn) {
         if (result == RETRY) {
@@ -1724,6 +1842,8 @@ static int measure_series(watcher *w, wseries *s, int quiet)
     int not_phantom = s->match == WD_MATCH_CONTENT && !content_fits(w, s, fail_why, sizeof fail_why);
 
     /* 3. Pixels, checked against the content seen at arrival. */
+    note_series(s->id);
+    crash_test_hook("series", s->uid);
     if (!(ld = calloc((size_t)s->nfiles + 1, sizeof *ld))) {
         st = sw_error_set(&err, SW_ENOMEM, "out of memory");
         goto out;
@@ -1787,6 +1907,7 @@ static int measure_series(watcher *w, wseries *s, int quiet)
             snprintf(fail_why, sizeof fail_why, "not measurable: %s", e3.msg);
     }
 
+    note_clear();
     /* 5. One transaction: file fates, the run and its rows, alerts, the series' final state. */
     if ((st = db_begin(w->d, &err)) != SW_OK)
         goto out;
@@ -1899,6 +2020,7 @@ static int measure_series(watcher *w, wseries *s, int quiet)
     series_remove(w, s);
     s = NULL;
 out:
+    note_clear();
     if (began)
         (void)db_rollback(w->d, NULL);
     if (st != SW_OK) {
@@ -2060,7 +2182,10 @@ static sw_status rebuild(watcher *w, sw_error *err)
                 continue;
             }
             dcm_file *df = NULL;
-            if (rs != SW_OK || dcm_read_buffer(b.data, b.len, f->path, NULL, &df, &e2) != SW_OK) {
+            note_file(f->path, f->hash);
+            int bad = rs != SW_OK || dcm_read_buffer(b.data, b.len, f->path, NULL, &df, &e2) != SW_OK;
+            note_clear();
+            if (bad) {
                 char why[SW_ERROR_MAX];
                 sw_strlcpy(why, e2.msg, sizeof why);
                 sw_status r2 = to_final(w, f->id, f->path, f->hash, f->state, DB_FILE_QUARANTINED,
@@ -2110,6 +2235,80 @@ out:
     pend_files_free(&pf);
     free(pl.v);
     run_jobs(w);
+    return rc;
+}
+
+/* ---- after a crash: the note's file or series is taken out of the way ---- */
+
+static sw_status quarantine_crashed_file(watcher *w, const crash_info *ci, sw_error *err)
+{
+    char why[160], hash[WD_HASH_MAX];
+    snprintf(why, sizeof why,
+             "the program stopped with signal %d while reading this file; quarantined so that "
+             "it cannot stop the service again",
+             ci->sig);
+    if (wd_file_hash(ci->path, hash, err) != SW_OK || strcmp(hash, ci->hash) != 0) {
+        sw_error_clear(err); /* gone or changed: nothing to hold back */
+        return SW_OK;
+    }
+    wd_error("%s: %s", ci->path, why);
+    db_file_info fi = {.path = ci->path, .content_hash = hash, .size = 0};
+    struct stat st;
+    if (stat(ci->path, &st) == 0)
+        fi.size = st.st_size;
+    int64_t id = 0;
+    db_file_outcome how;
+    file_look fl;
+    memset(&fl, 0, sizeof fl);
+    fl.state = DB_FILE_SEEN;
+    sw_status rc = txn_begin(w, err);
+    if (rc == SW_OK)
+        rc = db_file_add(w->d, &fi, &id, &how, NULL, err);
+    if (rc == SW_OK && how == DB_FILE_KNOWN)
+        rc = db_file_get(w->d, id, file_cb, &fl, err);
+    if (rc == SW_OK && (fl.state == DB_FILE_SEEN || fl.state == DB_FILE_PARSED))
+        rc = to_final(w, id, ci->path, hash, fl.state, DB_FILE_QUARANTINED, why, fl.series_id,
+                      err);
+    if (rc == SW_OK)
+        rc = txn_commit(w, err);
+    else if (w->in_txn)
+        txn_rollback(w);
+    run_jobs(w);
+    return rc;
+}
+
+static sw_status fail_crashed_series(watcher *w, const crash_info *ci, sw_error *err)
+{
+    char why[200];
+    snprintf(why, sizeof why,
+             "the program stopped with signal %d while measuring this series; its files are "
+             "quarantined so that they cannot stop the service again",
+             ci->sig);
+    series_look sl;
+    memset(&sl, 0, sizeof sl);
+    pend_files pf = {0};
+    sw_status rc = db_series_get(w->d, ci->series_id, series_look_cb, &sl, err);
+    if (rc != SW_OK || sl.state == DB_SERIES_STORED || sl.state == DB_SERIES_FAILED) {
+        sw_error_clear(err);
+        return SW_OK;
+    }
+    wd_error("series %s: %s", sl.uid, why);
+    if ((rc = db_series_files(w->d, ci->series_id, pend_file_cb, &pf, err)) != SW_OK)
+        goto out;
+    if ((rc = txn_begin(w, err)) != SW_OK)
+        goto out;
+    for (int i = 0; i < pf.n && rc == SW_OK; i++)
+        rc = to_final(w, pf.v[i].id, pf.v[i].path, pf.v[i].hash, pf.v[i].state,
+                      DB_FILE_QUARANTINED, why, ci->series_id, err);
+    if (rc == SW_OK)
+        rc = db_series_set_state(w->d, ci->series_id, sl.state, DB_SERIES_FAILED, why, err);
+    if (rc == SW_OK)
+        rc = txn_commit(w, err);
+    else
+        txn_rollback(w);
+    run_jobs(w);
+out:
+    pend_files_free(&pf);
     return rc;
 }
 
@@ -2512,6 +2711,19 @@ int wd_cmd_watch(int argc, char **argv)
     if (!w->once && sd_watchdog_enabled(0, &usec) > 0)
         w->watchdog_every = (double)usec / 2e6;
 #endif
+    /* A crash last time? Take what it was working on out of the way first. */
+    crash_guard(w->s->cfg.database);
+    crash_info ci;
+    crash_read(&ci);
+    if (ci.have) {
+        sw_error_clear(&err);
+        sw_status rs = ci.series_id ? fail_crashed_series(w, &ci, &err)
+                                    : quarantine_crashed_file(w, &ci, &err);
+        if (rs != SW_OK) {
+            wd_error("after a crash: %s", err.msg);
+            goto out;
+        }
+    }
     /* Another writer may hold the store for a while (a re-analysis, a merge): wait for it. */
     for (double until = wd_now_mono() + 120;;) {
         sw_error_clear(&err);
