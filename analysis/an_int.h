@@ -42,6 +42,20 @@ void an_pose_make(const an_geom *g, double xc, double yc, double rot_deg, an_pos
 void an_pose_to_px(const an_pose *p, double u, double v, double *x, double *y);
 void an_pose_to_ph(const an_pose *p, double x, double y, double *u, double *v);
 
+/* A sampling lattice along an image axis of n pixels that a reversal of the axis maps onto itself:
+ * points t_j = (n - 1) / 2 + j s for j = -k..k, k = an_lattice_k(n, s) the largest with t_-k >= 0.
+ * A point is read as the mean of pixels floor(t_j) and ceil(t_j) (one pixel when t_j is whole), so
+ * an image stored with its rows or columns reversed, or transposed, reads the same values at the
+ * mirrored points: what is computed from them does not depend on the storage order. */
+static inline int an_lattice_k(int n, double s)
+{
+    return n > 0 && s > 0 ? (int)floor(0.5 * (n - 1) / s) : 0;
+}
+static inline double an_lattice_t(int n, double s, int j)
+{
+    return 0.5 * (n - 1) + j * s;
+}
+
 /* Bilinear value at stored pixel (x, y); NAN outside the image. */
 double an_bilinear(const an_image *im, double x, double y);
 

@@ -161,28 +161,34 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
         return 0;
     }
     /* The mask works on block means (about 48 blocks across): cheap, and less noisy than pixels;
-     * the rays below refine the edge at full resolution. */
+     * the rays below refine the edge at full resolution. The blocks sit on a lattice centred on
+     * the image (an_lattice_t), so a flipped or transposed copy of the image gives the mirrored
+     * mask and the same centre. */
     int w = im->width, h = im->height;
     int f = (w < h ? w : h) / 48;
     if (f < 1)
         f = 1;
-    int cw = w / f, ch = h / f;
+    int kx = an_lattice_k(w, f), ky = an_lattice_k(h, f);
+    int cw = 2 * kx + 1, ch = 2 * ky + 1;
     size_t cn = (size_t)cw * ch;
     if (an_work_reserve(wk, cn))
         return -1;
     double col = im->col_mm > 0 ? im->col_mm : 1, row = im->row_mm > 0 ? im->row_mm : 1;
     float *cv = wk->coarse;
     double lo = INFINITY, hi = -INFINITY;
-    /* Each block is represented by the mean of (up to) 2 x 2 pixels at its centre: a quarter of the
-     * pixels or fewer are read, which is plenty to tell fluid from air. */
-    int o0 = f > 1 ? f / 2 - 1 : 0, o1 = f > 1 ? f / 2 : 0;
-    for (int by = 0; by < ch; by++)
+    /* Each block is represented by the mean of the (up to) 2 x 2 pixels around its centre: a
+     * quarter of the pixels or fewer are read, which is plenty to tell fluid from air. */
+    for (int by = 0; by < ch; by++) {
+        double ty = an_lattice_t(h, f, by - ky);
+        int y0 = (int)floor(ty), y1 = (int)ceil(ty);
         for (int bx = 0; bx < cw; bx++) {
+            double tx = an_lattice_t(w, f, bx - kx);
+            int x0 = (int)floor(tx), x1 = (int)ceil(tx);
             double acc = 0;
             int c = 0;
-            for (int y = by * f + o0; y <= by * f + o1; y++) {
-                const float *r = im->px + (ptrdiff_t)y * im->stride + bx * f;
-                for (int x = o0; x <= o1; x++)
+            for (int y = y0; y <= y1; y++) {
+                const float *r = im->px + (ptrdiff_t)y * im->stride;
+                for (int x = x0; x <= x1; x++)
                     if (isfinite(r[x])) {
                         acc += r[x];
                         c++;
@@ -195,6 +201,7 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
                 hi = m > hi ? m : hi;
             }
         }
+    }
     if (!(hi > lo)) {
         sw_strlcpy(d->reason, "phantom not found: the image is uniform", sizeof d->reason);
         return 0;
@@ -247,8 +254,10 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
         sw_strlcpy(d->reason, "phantom not found: no disc-like object", sizeof d->reason);
         return 0;
     }
-    /* block (bx, by) is sampled around pixel bx f + (o0 + o1) / 2 */
-    double xc = sx / cnt * f + 0.5 * (o0 + o1), yc = sy / cnt * f + 0.5 * (o0 + o1);
+    /* block (bx, by) is centred on pixel (an_lattice_t(w, f, bx - kx), an_lattice_t(h, f, by - ky))
+     */
+    double xc = an_lattice_t(w, f, 0) + (sx / cnt - kx) * f,
+           yc = an_lattice_t(h, f, 0) + (sy / cnt - ky) * f;
     double R = sqrt(cnt * f * f * col * row / M_PI);
     /* Fluid level: median of the blocks inside 0.6 R. */
     {
@@ -257,8 +266,8 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
         double r6 = 0.6 * R;
         for (int y = 0; y < ch; y++)
             for (int x = 0; x < cw; x++) {
-                double dx = (x * f + 0.5 * (o0 + o1) - xc) * col,
-                       dy = (y * f + 0.5 * (o0 + o1) - yc) * row;
+                double dx = (an_lattice_t(w, f, x - kx) - xc) * col,
+                       dy = (an_lattice_t(h, f, y - ky) - yc) * row;
                 float v = cv[(size_t)y * cw + x];
                 if (dx * dx + dy * dy <= r6 * r6 && isfinite(v))
                     buf[nb++] = v;
@@ -285,8 +294,8 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
         size_t in = 0, inside = 0, outside = 0;
         for (int y = 0; y < ch; y++)
             for (int x = 0; x < cw; x++) {
-                double ax = (x * f + 0.5 * (o0 + o1) - xc) * col,
-                       ay = (y * f + 0.5 * (o0 + o1) - yc) * row;
+                double ax = (an_lattice_t(w, f, x - kx) - xc) * col,
+                       ay = (an_lattice_t(h, f, y - ky) - yc) * row;
                 double rr = ax * ax + ay * ay;
                 int msk = m[(size_t)y * cw + x] != 4;
                 if (rr <= 0.81 * R * R) {
@@ -433,39 +442,56 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
 }
 
 /* Pixels of the air around the disc, in four bands (left, right, top, bottom of the stored image).
- */
+ * Every pixel of a border-trimmed range that is symmetric under flips and transposition is used,
+ * so the estimate does not depend on how the image happens to be stored. */
+static int air_band(const an_image *im, const an_disc *d, double rmin, int x, int y, float *v)
+{
+    double col = im->col_mm > 0 ? im->col_mm : 1, row = im->row_mm > 0 ? im->row_mm : 1;
+    double dx = (x - d->xc) * col, dy = (y - d->yc) * row;
+    if (dx * dx + dy * dy < rmin * rmin)
+        return -1;
+    *v = im->px[(ptrdiff_t)y * im->stride + x];
+    if (!isfinite(*v))
+        return -1;
+    return fabs(dx) >= fabs(dy) ? (dx < 0 ? 0 : 1) : (dy < 0 ? 2 : 3);
+}
+
 double an_noise_air(const an_image *im, const an_disc *d, float *scratch)
 {
     if (!d->found)
         return NAN;
     int w = im->width, h = im->height;
-    double col = im->col_mm > 0 ? im->col_mm : 1, row = im->row_mm > 0 ? im->row_mm : 1;
     double rmin = d->r_mm + fmax(10.0, 0.1 * d->r_mm);
-    size_t quarter = (size_t)w * h / 4, cnt[4] = {0}, zeros = 0, total = 0;
-    /* Every pixel of a border-trimmed range that is symmetric under flips and transposition, so the
-     * estimate does not depend on how the image happens to be stored. */
+    size_t cnt[4] = {0}, start[4], zeros = 0, total = 0;
+    /* Two passes: the bands' sizes, then their values, each band in its own part of scratch. */
     for (int y = 2; y < h - 2; y++)
         for (int x = 2; x < w - 2; x++) {
-            double dx = (x - d->xc) * col, dy = (y - d->yc) * row;
-            if (dx * dx + dy * dy < rmin * rmin)
+            float v;
+            int b = air_band(im, d, rmin, x, y, &v);
+            if (b < 0)
                 continue;
-            float v = im->px[(ptrdiff_t)y * im->stride + x];
-            if (!isfinite(v))
-                continue;
-            int b = fabs(dx) >= fabs(dy) ? (dx < 0 ? 0 : 1) : (dy < 0 ? 2 : 3);
+            cnt[b]++;
             total++;
-            if (v == 0)
-                zeros++;
-            if (cnt[b] < quarter)
-                scratch[b * quarter + cnt[b]++] = v;
+            zeros += v == 0;
         }
     if (total < 200 || zeros > total * 0.3)
         return NAN;
+    start[0] = 0;
+    for (int b = 1; b < 4; b++)
+        start[b] = start[b - 1] + cnt[b - 1];
+    size_t fill[4] = {0};
+    for (int y = 2; y < h - 2; y++)
+        for (int x = 2; x < w - 2; x++) {
+            float v;
+            int b = air_band(im, d, rmin, x, y, &v);
+            if (b >= 0)
+                scratch[start[b] + fill[b]++] = v;
+        }
     double s[4];
     int ns = 0;
     for (int b = 0; b < 4; b++)
         if (cnt[b] >= 100)
-            s[ns++] = an_median(scratch + b * quarter, cnt[b]) / sqrt(2 * log(2.0));
+            s[ns++] = an_median(scratch + start[b], cnt[b]) / sqrt(2 * log(2.0));
     if (ns == 0)
         return NAN;
     /* Sort ascending; ghosts raise the bands they fall in. */
@@ -478,23 +504,36 @@ double an_noise_air(const an_image *im, const an_disc *d, float *scratch)
     return ns >= 2 ? 0.5 * (s[0] + s[1]) : s[0];
 }
 
+/* Neighbour differences (along rows and along columns) of pixel pairs inside a central disc of half
+ * the phantom's radius: in the Gaussian regime each has SD sigma sqrt 2. Pairs both ways and the
+ * absolute deviation from the median make the set, and so the estimate, independent of the
+ * storage order. */
 double an_noise_fluid(const an_image *im, const an_disc *d, float *scratch)
 {
     if (!d->found)
         return NAN;
     double col = im->col_mm > 0 ? im->col_mm : 1, row = im->row_mm > 0 ? im->row_mm : 1;
     double rr = 0.5 * d->r_mm;
-    size_t n = 0;
-    for (int y = (int)fmax(0, d->yc - rr / row); y <= (int)fmin(im->height - 1, d->yc + rr / row);
-         y++)
-        for (int x = (int)fmax(0, d->xc - rr / col); x < (int)fmin(im->width - 1, d->xc + rr / col);
-             x++) {
+    size_t n = 0, cap = (size_t)im->width * im->height;
+    int y0 = (int)fmax(0, floor(d->yc - rr / row)),
+        y1 = (int)fmin(im->height - 1, ceil(d->yc + rr / row));
+    int x0 = (int)fmax(0, floor(d->xc - rr / col)),
+        x1 = (int)fmin(im->width - 1, ceil(d->xc + rr / col));
+    for (int y = y0; y <= y1; y++)
+        for (int x = x0; x <= x1; x++) {
             double dx = (x - d->xc) * col, dy = (y - d->yc) * row;
             if (dx * dx + dy * dy > rr * rr)
                 continue;
             const float *p = im->px + (ptrdiff_t)y * im->stride + x;
-            if (isfinite(p[0]) && isfinite(p[1]))
-                scratch[n++] = p[1] - p[0];
+            for (int dir = 0; dir < 2; dir++) {
+                int x2 = x + !dir, y2 = y + dir;
+                double ex = (x2 - d->xc) * col, ey = (y2 - d->yc) * row;
+                if (x2 >= im->width || y2 >= im->height || ex * ex + ey * ey > rr * rr)
+                    continue;
+                float q = dir ? p[im->stride] : p[1];
+                if (isfinite(p[0]) && isfinite(q) && n < cap)
+                    scratch[n++] = q - p[0];
+            }
         }
     if (n < 100)
         return NAN;

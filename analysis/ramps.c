@@ -17,18 +17,27 @@ int an_dark_axis(const an_image *im, const an_geom *g, const an_disc *d, double 
      * so that the wedges' bridge and bars near the rim stay out whatever the rotation; the band
      * holding the more elongated dark region wins. */
     double m[2][6] = {{0}};
-    int x0 = (int)fmax(0, d->xc - R / col), x1 = (int)fmin(im->width - 1, d->xc + R / col);
-    int y0 = (int)fmax(0, d->yc - R / row), y1 = (int)fmin(im->height - 1, d->yc + R / row);
-    /* every other pixel each way: the moments need no more */
-    for (int y = y0; y <= y1; y += 2) {
-        const float *r = im->px + (ptrdiff_t)y * im->stride;
-        double dy = y - d->yc;
-        for (int x = x0; x <= x1; x += 2) {
-            if (!(r[x] < lim))
-                continue;
-            double dx = x - d->xc;
+    /* Samples on a lattice of pitch 2 centred on the image (an_lattice_t), each the mean of the
+     * pixels around its point, so that the moments do not depend on the storage order; the
+     * moments need no more than a quarter of the points. */
+    int kx = an_lattice_k(im->width, 2), ky = an_lattice_k(im->height, 2);
+    int jx0 = (int)fmax(-kx, floor((d->xc - R / col - an_lattice_t(im->width, 2, 0)) / 2));
+    int jx1 = (int)fmin(kx, ceil((d->xc + R / col - an_lattice_t(im->width, 2, 0)) / 2));
+    int jy0 = (int)fmax(-ky, floor((d->yc - R / row - an_lattice_t(im->height, 2, 0)) / 2));
+    int jy1 = (int)fmin(ky, ceil((d->yc + R / row - an_lattice_t(im->height, 2, 0)) / 2));
+    for (int jy = jy0; jy <= jy1; jy++) {
+        double ty = an_lattice_t(im->height, 2, jy), dy = ty - d->yc;
+        int ya = (int)floor(ty), yb = (int)ceil(ty);
+        for (int jx = jx0; jx <= jx1; jx++) {
+            double tx = an_lattice_t(im->width, 2, jx), dx = tx - d->xc;
             double a = g->d[0] * dx + g->d[1] * dy, b = g->d[2] * dx + g->d[3] * dy;
             if (a * a + b * b > 0.64 * R * R)
+                continue;
+            int xa = (int)floor(tx), xb = (int)ceil(tx);
+            const float *r0 = im->px + (ptrdiff_t)ya * im->stride,
+                        *r1 = im->px + (ptrdiff_t)yb * im->stride;
+            double val = 0.25 * ((double)r0[xa] + r0[xb] + r1[xa] + r1[xb]);
+            if (!(val < lim))
                 continue;
             for (int k = 0; k < 2; k++) {
                 if (fabs(k ? a : b) > 0.5 * R)
