@@ -136,6 +136,9 @@ typedef struct an_strip {
     double slot_kappa_per_mm; /* (q''/q' at the high crossing - at the low one) / 24, from
                                  the local fits: a box of width k along the strip changes the
                                  FWHM by kappa k^2 (docs/methods.md, slot correction) */
+    double snr; /* strip SNR: the plateau's signal (through the Rician model) over the per-channel
+                   noise there; NAN without a noise estimate */
+    int inside_lo, inside_hi; /* samples of profile inside the insert (clear of its ends' blur) */
 } an_strip;
 
 typedef struct an_thickness {

@@ -425,6 +425,30 @@ static double sd_at(double m, double sigma)
     return an_rice_sd(an_rice_invert(m, sigma), sigma);
 }
 
+/* Below this strip SNR (plateau signal over the per-channel noise) the half level's signal is under
+ * the noise SD, where a magnitude image shows mostly its noise floor: a strip that fails a step
+ * there is reported as too weak rather than by the step's symptom (docs/methods.md, section 5). */
+#define STRIP_SNR_MIN 2.0
+
+/* The strip is not measured: the reason is the step's own, unless the strip is too weak for any
+ * step to be trusted: its SNR under STRIP_SNR_MIN, or (floor = 1) half its peak at or below the
+ * noise floor, the mean magnitude of pure noise sigma sqrt(pi / 2) (Rice), so that no walk from the
+ * peak can find where the strip ends. */
+static void strip_fail(an_strip *out, const char *why, int floor)
+{
+    if (floor)
+        snprintf(out->reason, sizeof out->reason,
+                 "strip signal too low for its noise (strip SNR %.2f: half its peak lies in the "
+                 "noise floor)",
+                 out->snr);
+    else if (out->snr < STRIP_SNR_MIN)
+        snprintf(out->reason, sizeof out->reason,
+                 "strip signal too low for its noise (strip SNR %.2f < %.0f)", out->snr,
+                 STRIP_SNR_MIN);
+    else
+        sw_strlcpy(out->reason, why, sizeof out->reason);
+}
+
 /* Gain g(u) = F(u_ref) / F(u) along the strip at v_s from the fluid bands beside the insert's long
  * edges (2.5 to 5.5 mm outside each), each fitted by a quartic in u, interpolated linearly in v;
  * u_ref is the insert's middle. All ones when the bands are not usable (leave the image, too dark).
@@ -512,6 +536,7 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     out->length_mm = out->length_unc_mm = out->fwtm_mm = out->centre_u_mm = NAN;
     out->plateau = out->plateau_sd = out->half_level = out->floor = NAN;
     out->cross_lo_mm = out->cross_hi_mm = out->plateau_unc = out->slot_kappa_per_mm = NAN;
+    out->snr = NAN;
     double step = par->sample_step_mm > 0 ? par->sample_step_mm : 0.1;
     double span = ins->u_hi - ins->u_lo;
     if (span / step + 1 > AN_PROFILE_MAX)
@@ -563,15 +588,22 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
                    sizeof out->reason);
         goto out;
     }
+    out->inside_lo = edge;
+    out->inside_hi = n - 1 - edge;
     int ip = edge;
     for (int i = edge; i < n - edge; i++)
         if (ps[i] > ps[ip])
             ip = i;
     double pmax = ps[ip];
+    /* A provisional strip SNR from the smoothed peak (the plateau's replaces it below): the peak
+     * of a noisy profile lies above its plateau, so this errs toward a stronger strip. */
+    double sgp = sigma > 0 ? sigma * gain[ip] : NAN;
+    out->snr = sgp > 0 ? an_rice_invert(pmax, sgp) / sgp : NAN;
     double lo0 = an_walk_cross(ps, n, ip, -1, 0.5 * pmax, 1);
     double hi0 = an_walk_cross(ps, n, ip, +1, 0.5 * pmax, 1);
     if (!isfinite(lo0) || !isfinite(hi0) || lo0 < edge || hi0 > n - 1 - edge) {
-        sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
+        strip_fail(out, "strip runs into the end of the insert",
+                   sgp > 0 && 0.5 * pmax <= sgp * sqrt(M_PI / 2));
         goto out;
     }
     /* Second pass: smoothing over an eighth of the strip, so that at low SNR a noise dip does not
@@ -589,16 +621,19 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
             if (ps[i] > ps[ip])
                 ip = i;
         pmax = ps[ip];
+        sgp = sigma > 0 ? sigma * gain[ip] : NAN;
+        out->snr = sgp > 0 ? an_rice_invert(pmax, sgp) / sgp : NAN;
         lo0 = an_walk_cross(ps, n, ip, -1, 0.5 * pmax, 1);
         hi0 = an_walk_cross(ps, n, ip, +1, 0.5 * pmax, 1);
         if (!isfinite(lo0) || !isfinite(hi0) || lo0 < edge || hi0 > n - 1 - edge) {
-            sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
+            strip_fail(out, "strip runs into the end of the insert",
+                       sgp > 0 && 0.5 * pmax <= sgp * sqrt(M_PI / 2));
             goto out;
         }
     }
     double c0 = 0.5 * (lo0 + hi0), L0 = (hi0 - lo0) * step;
     if (!(L0 > 3.0) || !(pmax > 0)) {
-        sw_strlcpy(out->reason, "profile malformed: no strip plateau", sizeof out->reason);
+        strip_fail(out, "profile malformed: no strip plateau", 0);
         goto out;
     }
     /* Plateau: a quadratic fitted over the middle 60 % of the strip, evaluated at its centre, so
@@ -606,7 +641,7 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     int a0 = (int)floor(c0 - 0.3 * L0 / step), a1 = (int)ceil(c0 + 0.3 * L0 / step);
     double cq[3];
     if (an_quad_fit(p, a0, a1, c0, step, cq, 0, g)) {
-        sw_strlcpy(out->reason, "profile malformed: plateau fit failed", sizeof out->reason);
+        strip_fail(out, "profile malformed: plateau fit failed", 0);
         goto out;
     }
     double P = cq[0], ssP = an_line_weight_ss(&l, a0, a1 - a0 + 1, g), sres = 0;
@@ -618,8 +653,10 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     out->plateau_sd = sqrt(sres / (a1 - a0 - 2 > 0 ? a1 - a0 - 2 : 1));
     double sdP = sd_at(P / gain[(int)lround(c0)], sigma); /* raw units; ssP carries the gain */
     out->plateau_unc = sdP * sqrt(ssP);
+    double gc = gain[(int)lround(c0)];
+    out->snr = sigma > 0 ? an_rice_invert(P, sigma * gc) / (sigma * gc) : NAN;
     if (!(P > 0)) {
-        sw_strlcpy(out->reason, "profile malformed: plateau at or below zero", sizeof out->reason);
+        strip_fail(out, "profile malformed: plateau at or below zero", 0);
         goto out;
     }
     /* Background beside the strip (the floor), beyond its tenth-maximum points. */
@@ -640,7 +677,6 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     /* first guesses of the crossings, for the noise there after the shading correction */
     double g0 = an_walk_cross(ps, n, ip, -1, 0.5 * P, 1),
            g1 = an_walk_cross(ps, n, ip, +1, 0.5 * P, 1);
-    double gc = gain[(int)lround(c0)];
     double glo_gain = isfinite(g0) ? gain[(int)g0] : gc,
            ghi_gain = isfinite(g1) ? gain[(int)g1] : gc;
     double lvl = level_for(par->half_level, P, B, sigma * gc, sigma * glo_gain, 0.5, &dldp);
@@ -655,7 +691,7 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     double glo = an_walk_cross(ps, n, ip, -1, lvl, 1),
            ghi = an_walk_cross(ps, n, ip, +1, lvl_hi, 1);
     if (!isfinite(glo) || !isfinite(ghi)) {
-        sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
+        strip_fail(out, "strip runs into the end of the insert", 0);
         goto out;
     }
     /* Edge windows: a first fit over +-4 mm gives each edge's slope at its half level, and the
@@ -684,21 +720,20 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     /* Near an end of the insert the fit window shrinks (to 0.3 mm) rather than reach into it. */
     double hlo = fmin(h, (glo - edge) * step), hhi = fmin(h, (n - 1 - edge - ghi) * step);
     if (hlo < 0.3 || hhi < 0.3) {
-        sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
+        strip_fail(out, "strip runs into the end of the insert", 0);
         goto out;
     }
     if (an_xing_find_in(&l, p, edge, n - 1 - edge, glo, lvl, hlo, +1, &xl) ||
         an_xing_find_in(&l, p, edge, n - 1 - edge, ghi, lvl_hi, hhi, -1, &xh)) {
-        sw_strlcpy(out->reason, "profile malformed: no clean half-level crossing",
-                   sizeof out->reason);
+        strip_fail(out, "profile malformed: no clean half-level crossing", 0);
         goto out;
     }
     if (xl.i0 < edge || xh.i1 > n - 1 - edge) {
-        sw_strlcpy(out->reason, "strip runs into the end of the insert", sizeof out->reason);
+        strip_fail(out, "strip runs into the end of the insert", 0);
         goto out;
     }
     if (!(xh.idx > xl.idx)) {
-        sw_strlcpy(out->reason, "profile malformed: crossings out of order", sizeof out->reason);
+        strip_fail(out, "profile malformed: crossings out of order", 0);
         goto out;
     }
     /* The crossings must be the profile's only ones: away from them (beyond twice the fit window)
@@ -721,9 +756,8 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
                 bad_out += ps[i] > lvl_hi;
             }
         if ((n_in > 0 && bad_in > 0.1 * n_in) || (n_out > 0 && bad_out > 0.1 * n_out)) {
-            sw_strlcpy(out->reason,
-                       "profile malformed: the strip crosses its half level more than twice",
-                       sizeof out->reason);
+            strip_fail(out, "profile malformed: the strip crosses its half level more than twice",
+                       0);
             goto out;
         }
     }
