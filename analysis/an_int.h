@@ -221,4 +221,9 @@ int an_wedge_edge_measure(const an_image *im, const an_pose *pose, const an_inse
 int an_bars_measure(const an_image *im, const an_pose *pose, const an_model *m, double sigma,
                     double nominal_mm, an_position *out, double *v_end_mm);
 
+/* The bridge's lower edge beside the bars, at the given pose: its slope as a rotation (degrees,
+ * counter-clockwise as displayed) to add to the pose's; NAN when the edge is not found. Returns -1
+ * on allocation failure. */
+int an_bridge_turn(const an_image *im, const an_pose *pose, const an_model *m, double *drot_deg);
+
 #endif

@@ -101,6 +101,9 @@ typedef struct an_image {
     double ipp[3], iop[6];
     int has_geometry;
     double nominal_thickness_mm; /* SliceThickness, or NAN */
+    /* added (additive) */
+    int feet_first; /* 1: PatientPosition begins with "FF". Consulted only to tell slice 1 from the
+                       last wedge slice when no ramp insert can (head first when 0) */
 } an_image;
 
 /* ---- results ---- */
@@ -204,8 +207,12 @@ typedef struct an_series_result {
     an_position_model position_model;
     int pitch_measured;
     double pitch_deg, pitch_unc_deg; /* from ramp vs wedge displacement on the ramp slice */
-    an_verdict verdict;              /* the worst verdict */
-    char reason[AN_REASON_MAX];      /* why the series is unmeasurable, if it is */
+    /* added (additive) */
+    int order_from_patient_frame; /* 1: no ramp slice was found, and slice 1 was told from the last
+                                     wedge slice by the patient frame (head first: slice 1 the
+                                     inferior one; an_image.feet_first reverses it) */
+    an_verdict verdict;           /* the worst verdict */
+    char reason[AN_REASON_MAX];   /* why the series is unmeasurable, if it is */
 } an_series_result;
 
 /* Analyses the images of one series and one echo (any order). out is filled completely even when a

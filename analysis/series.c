@@ -120,9 +120,195 @@ static double bridge_score(const an_image *im, const an_pose *p, const an_model 
     return 1 - (dk / nd) / (fl / nf);
 }
 
+/* The rotation (degrees) at which the bridge region is darkest on the images k[0..nk), each posed
+ * on its own disc: a scan of the full turn in 2-degree steps, then 0.2-degree steps around the
+ * best. Returns the least of the images' scores there (NAN when the bridge is never sampled). */
+static double bridge_search(const an_image *imgs, const an_geom *geo, const an_disc *disc,
+                            const int *k, int nk, const an_model *m, double *rot)
+{
+    double best = -INFINITY, brot = 0;
+    for (int pass = 0; pass < 2; pass++) {
+        double c = brot, st = pass ? 0.2 : 2.0;
+        int nstep = pass ? 21 : 180;
+        for (int i = 0; i < nstep; i++) {
+            double r = pass ? c + (i - 10) * st : i * st, sum = 0;
+            int ok = 1;
+            for (int q = 0; q < nk && ok; q++) {
+                an_pose p;
+                an_pose_make(&geo[k[q]], disc[k[q]].xc, disc[k[q]].yc, r, &p);
+                double sb = bridge_score(&imgs[k[q]], &p, m);
+                ok = isfinite(sb);
+                sum += sb;
+            }
+            if (ok && sum > best) {
+                best = sum;
+                brot = r;
+            }
+        }
+    }
+    if (!isfinite(best))
+        return NAN;
+    double least = INFINITY;
+    for (int q = 0; q < nk; q++) {
+        an_pose p;
+        an_pose_make(&geo[k[q]], disc[k[q]].xc, disc[k[q]].yc, brot, &p);
+        least = fmin(least, bridge_score(&imgs[k[q]], &p, m));
+    }
+    *rot = brot;
+    return least;
+}
+
 static an_verdict worst(an_verdict a, an_verdict b)
 {
     return a > b ? a : b;
+}
+
+/* Slice 1 of a pair of wedge slices a, b without the ramps to tell: w toward the last slice is +z
+ * of the patient frame for a phantom lying head first, -z feet first (phantom-large.md), so slice
+ * 1 is the inferior one head first. Without geometry or for a stack whose normal is far from the
+ * patient's z axis, the first in the given order. Sets *first, *other and *wsign. */
+static void order_by_patient_frame(const an_image *imgs, const an_geom *geo, int has_geo, int a,
+                                   int b, int *first, int *other, int *wsign)
+{
+    *first = a;
+    *other = b;
+    if (has_geo && fabs(geo[a].n[2]) > 0.5) {
+        double dz = (geo[b].z_n - geo[a].z_n) * geo[a].n[2]; /* patient z of b minus a's */
+        int a_first = imgs[a].feet_first ? dz < 0 : dz > 0;
+        *first = a_first ? a : b;
+        *other = a_first ? b : a;
+    }
+    *wsign = !has_geo || geo[*other].z_n >= geo[*first].z_n ? 1 : -1;
+}
+
+/* Without a ramp slice the wedges may still be there (a phantom without its thickness insert, or
+ * one whose insert is damaged): the wedge slices are two images the wedges' distance apart (the
+ * ends of a standard stack) that both show the bridge at one rotation; when several pairs do (a
+ * stack longer than the wedges' distance), the pair whose bars are the most nearly equal, as they
+ * are at the wedges' vertices. The rotation comes from the bridge (a scan of the full turn, then
+ * the slope of its lower edge beside the bars). On success *first (slice 1), *other, *wsign and
+ * *rot are set and geo is remade with *wsign; *first is -1 when no pair qualifies. Returns -1 on
+ * allocation failure. */
+static int find_wedge_slices(const an_image *imgs, int n, const int *order, int has_geo,
+                             const an_model *m, an_work *wk, an_geom *geo, an_disc *disc,
+                             an_series_result *out, int *first, int *other, int *wsign, double *rot)
+{
+    int rc = 0;
+    an_position *pos = NULL;
+    an_geom g2[2];
+    *first = *other = -1;
+    if (!m->has_wedges || n < 2)
+        return 0;
+    double gaps[AN_MAX_IMAGES];
+    int ng = 0;
+    for (int k = 1; k < n && has_geo; k++) {
+        double dz = fabs(geo[order[k]].z_n - geo[order[k - 1]].z_n);
+        if (dz > 1e-3)
+            gaps[ng++] = dz;
+    }
+    float gf[AN_MAX_IMAGES];
+    for (int k = 0; k < ng; k++)
+        gf[k] = (float)gaps[k];
+    double gap = ng ? an_median(gf, (size_t)ng) : 0;
+    double dist = fabs(m->wedge_w[1] - m->wedge_w[0]), tol = fmax(2.0, 0.3 * gap);
+    double best_bld = INFINITY;
+    for (int ka = 0; ka < n; ka++)
+        for (int kb = n - 1; kb > ka; kb--) {
+            int a = order[ka], b = order[kb];
+            int ends = ka == 0 && kb == n - 1;
+            if (has_geo ? fabs(fabs(geo[b].z_n - geo[a].z_n) - dist) > tol : !ends)
+                continue;
+            int pr[2] = {a, b};
+            int bad = 0;
+            for (int q = 0; q < 2 && !bad; q++) {
+                int i = pr[q];
+                if (!disc[i].found)
+                    bad = 1;
+                else if (!isfinite(disc[i].rms_mm)) { /* the coarse disc: refine it */
+                    if (an_find_disc(&imgs[i], m, 1, wk, &disc[i])) {
+                        rc = -1;
+                        goto out;
+                    }
+                    out->phantom[i].found = disc[i].found;
+                    out->phantom[i].centre.x = disc[i].found ? disc[i].xc : NAN;
+                    out->phantom[i].centre.y = disc[i].found ? disc[i].yc : NAN;
+                    out->phantom[i].radius_mm = disc[i].found ? disc[i].r_mm : NAN;
+                    bad = !disc[i].found;
+                }
+            }
+            if (bad)
+                continue;
+            int f, o, ws;
+            order_by_patient_frame(imgs, geo, has_geo, a, b, &f, &o, &ws);
+            int k2[2] = {f, o};
+            an_geom gg[AN_MAX_IMAGES];
+            for (int q = 0; q < 2; q++)
+                if (an_geom_make(&imgs[k2[q]], ws, &gg[k2[q]]))
+                    bad = 1;
+            double r = 0;
+            if (bad || !(bridge_search(imgs, gg, disc, k2, 2, m, &r) > 0.5))
+                continue;
+            /* the bridge's lower edge: two rounds, the mean of both slices */
+            for (int it = 0; it < 2; it++) {
+                double dsum = 0;
+                int dn = 0;
+                for (int q = 0; q < 2; q++) {
+                    an_pose p;
+                    an_pose_make(&gg[k2[q]], disc[k2[q]].xc, disc[k2[q]].yc, r, &p);
+                    double dr;
+                    if (an_bridge_turn(&imgs[k2[q]], &p, m, &dr)) {
+                        rc = -1;
+                        goto out;
+                    }
+                    if (isfinite(dr) && fabs(dr) < 5) {
+                        dsum += dr;
+                        dn++;
+                    }
+                }
+                if (dn)
+                    r += dsum / dn;
+            }
+            double bld = 0;
+            if (*first >= 0 || !(ka == 0 && kb == n - 1)) {
+                /* more than one pair may qualify: the bars tell the vertex planes */
+                if (!pos && !(pos = malloc(sizeof *pos))) {
+                    rc = -1;
+                    goto out;
+                }
+                for (int q = 0; q < 2 && isfinite(bld); q++) {
+                    an_pose p;
+                    an_pose_make(&gg[k2[q]], disc[k2[q]].xc, disc[k2[q]].yc, r, &p);
+                    double ve;
+                    if (an_bars_measure(&imgs[k2[q]], &p, m, NAN, m->nominal_thickness_mm, pos,
+                                        &ve)) {
+                        rc = -1;
+                        goto out;
+                    }
+                    bld = pos->measured ? fmax(bld, fabs(pos->bar_difference_mm)) : NAN;
+                }
+                if (!isfinite(bld))
+                    continue;
+            }
+            if (*first < 0 || bld < best_bld) {
+                best_bld = bld;
+                *first = f;
+                *other = o;
+                *wsign = ws;
+                *rot = r;
+                g2[0] = gg[f];
+                g2[1] = gg[o];
+            }
+        }
+    if (*first >= 0) {
+        for (int k = 0; k < n; k++)
+            an_geom_make(&imgs[k], *wsign, &geo[k]);
+        double r = fmod(*rot, 360.0);
+        *rot = r > 180 ? r - 360 : r <= -180 ? r + 360 : r;
+    }
+    (void)g2;
+out:
+    free(pos);
+    return rc;
 }
 
 /* Numerical partial derivatives of the thickness formulas. */
@@ -446,13 +632,31 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
         ins.rot_deg = r;
         out->rotation_deg = r;
     }
+    /* first: the image of slice 1 (the ramp slice, or without it a wedge slice) */
+    int first = ramp;
     if (ramp < 0) {
-        wsign = 1;
-        for (int k = 0; k < n; k++)
-            an_geom_make(&imgs[k], wsign, &geo[k]);
+        double rw = 0;
+        if (find_wedge_slices(imgs, n, order, has_geo, model, &wk, geo, disc, out, &first, &other,
+                              &wsign, &rw)) {
+            st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
+            goto out;
+        }
+        if (first >= 0) {
+            out->rotation_deg = rw;
+            out->order_from_patient_frame = 1;
+            size_t k = strlen(why);
+            snprintf(why + k, sizeof why - k, "; slice 1 of the wedges told by %s",
+                     !has_geo || fabs(geo[first].n[2]) <= 0.5 ? "the stack's order"
+                     : imgs[first].feet_first                 ? "the patient frame (feet first)"
+                                                              : "the patient frame (head first)");
+        } else {
+            wsign = 1;
+            for (int k = 0; k < n; k++)
+                an_geom_make(&imgs[k], wsign, &geo[k]);
+        }
     }
-    /* Ordinals by position from the ramp end. */
-    if (ramp >= 0) {
+    /* Ordinals by position from the slice-1 end. */
+    if (first >= 0) {
         double gaps[AN_MAX_IMAGES];
         int ng = 0;
         for (int k = 1; k < n && has_geo; k++) {
@@ -464,27 +668,29 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
         for (int k = 0; k < ng; k++)
             gf[k] = (float)gaps[k];
         double gap = ng ? an_median(gf, (size_t)ng) : 0;
-        int rank_of_ramp = 0, rank_of_other = n - 1;
+        int rank_of_first = 0, rank_of_other = n - 1;
         for (int k = 0; k < n; k++) {
-            if (order[k] == ramp)
-                rank_of_ramp = k;
+            if (order[k] == first)
+                rank_of_first = k;
             if (order[k] == other)
                 rank_of_other = k;
         }
-        int dir = rank_of_other >= rank_of_ramp ? 1 : -1;
+        int dir = rank_of_other >= rank_of_first ? 1 : -1;
         for (int k = 0; k < n; k++) {
             int i = order[k], ord;
             if (gap > 0)
-                ord = 1 + (int)lround(wsign * (geo[i].z_n - geo[ramp].z_n) / gap);
+                ord = 1 + (int)lround(wsign * (geo[i].z_n - geo[first].z_n) / gap);
             else
-                ord = 1 + dir * (k - rank_of_ramp);
+                ord = 1 + dir * (k - rank_of_first);
             out->ordinal[i] = ord >= 1 && ord <= model->n_slices ? ord : 0;
         }
-        /* The ramp slice is the model's ramp ordinal; shift the count when the model says so. */
-        if (model->ramp_slice != 1)
+        /* The ramp slice (or without it the first wedge slice) is the model's ordinal for it;
+         * shift the count when the model says so. */
+        int base = ramp >= 0 ? model->ramp_slice : model->wedge_slice[0];
+        if (base != 1)
             for (int i = 0; i < n; i++)
                 if (out->ordinal[i])
-                    out->ordinal[i] += model->ramp_slice - 1;
+                    out->ordinal[i] += base - 1;
     }
     for (int i = 0; i < n; i++) {
         an_phantom_fit *pf = &out->phantom[i];
@@ -494,12 +700,12 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
         pf->flip_v = pf->transpose ? d[2] > 0 : d[3] > 0;
         pf->rotation_deg = out->rotation_deg;
     }
-    /* 7. Noise (air around the ramp slice and a uniform slice) and SNR on a uniform slice. */
+    /* 7. Noise (air around slice 1 and a uniform slice) and SNR on a uniform slice. */
     {
         int uni = -1, best = 1 << 30, mid = (model->n_slices + 1) / 2;
         for (int i = 0; i < n; i++) {
             int o = out->ordinal[i];
-            if (!disc[i].found || i == ramp || o == model->wedge_slice[0] ||
+            if (!disc[i].found || i == first || o == model->wedge_slice[0] ||
                 o == model->wedge_slice[1] || o == 0)
                 continue;
             if (abs(o - mid) < best) {
@@ -508,15 +714,15 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
             }
         }
         if (uni < 0)
-            uni = other >= 0 && disc[other].found ? other : ramp >= 0 ? ramp : order[n / 2];
-        double s1 = ramp >= 0 ? an_noise_air(&imgs[ramp], &disc[ramp], scratch) : NAN;
+            uni = other >= 0 && disc[other].found ? other : first >= 0 ? first : order[n / 2];
+        double s1 = first >= 0 ? an_noise_air(&imgs[first], &disc[first], scratch) : NAN;
         double s2 = disc[uni].found ? an_noise_air(&imgs[uni], &disc[uni], scratch) : NAN;
         double sig = isfinite(s1) && isfinite(s2) ? 0.5 * (s1 + s2) : isfinite(s1) ? s1 : s2;
         if (!isfinite(sig) && disc[uni].found)
             sig = an_noise_fluid(&imgs[uni], &disc[uni], scratch);
         out->noise_sd = sig;
         if (disc[uni].found) {
-            double frac = uni == ramp || uni == other ? 0.55 : 0.75;
+            double frac = uni == first || uni == other ? 0.55 : 0.75;
             double fm = an_fluid_mean(&imgs[uni], &disc[uni], frac, scratch);
             out->snr = sig > 0 ? fm / sig : NAN;
         }
@@ -562,10 +768,10 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
         for (int k = 0; k < 2; k++) {
             an_position *p = &out->position[k];
             int want = model->wedge_slice[k], img = -1;
-            for (int i = 0; i < n && ramp >= 0; i++)
+            for (int i = 0; i < n && first >= 0; i++)
                 if (out->ordinal[i] == want && disc[i].found)
                     img = i;
-            if (ramp < 0) {
+            if (first < 0) {
                 position_clear(p, why);
                 continue;
             }

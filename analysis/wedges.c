@@ -143,6 +143,32 @@ static int bar_end(const an_image *im, const an_pose *pose, double u, double hw,
     return 0;
 }
 
+int an_bridge_turn(const an_image *im, const an_pose *pose, const an_model *m, double *drot_deg)
+{
+    int rc = 0;
+    double *buf = malloc(NMAX * sizeof *buf), *g = malloc(NMAX * sizeof *g);
+    *drot_deg = NAN;
+    if (!buf || !g) {
+        rc = -1;
+        goto out;
+    }
+    /* the columns and averaging of an_bars_measure's bar tops */
+    double uo[2] = {0.5 * (m->bridge_u_min + m->bar_u_min[0]),
+                    0.5 * (m->bridge_u_max + m->bar_u_max[1])};
+    double hw = fmax(0.5, 0.25 * fabs(m->bridge_u_max - m->bar_u_max[1])), vt[2], vv;
+    for (int s = 0; s < 2; s++) {
+        vt[s] = bridge_edge(im, pose, m, uo[s], hw, NAN, &vv, buf, g);
+        if (!isfinite(vt[s]))
+            goto out;
+    }
+    /* a lower edge that rises to the right is a phantom turned further counter-clockwise */
+    *drot_deg = atan((vt[1] - vt[0]) / (uo[1] - uo[0])) * AN_DEG;
+out:
+    free(buf);
+    free(g);
+    return rc;
+}
+
 int an_bars_measure(const an_image *im, const an_pose *pose, const an_model *m, double sigma,
                     double nominal_mm, an_position *out, double *v_end_mm)
 {

@@ -382,13 +382,65 @@ Test(drawn, noise_only)
     expect_unmeasurable(&p, "phantom not found");
 }
 
+/* A phantom without its thickness insert: no thickness, but the wedges are intact and measured
+ * (BLD = -2 d on both wedge slices, phantom-large.md), at any rotation (the bridge gives it), with
+ * slice 1 told from slice 11 by the patient frame (head first: slice 1 the inferior one, as drawn;
+ * feet first, the same images described in a feet-first frame, give the same numbers). */
 Test(drawn, ramp_insert_missing)
 {
-    dr_params p;
-    dr_defaults(&p);
-    p.insert = DR_NONE;
-    p.sigma = 10;
-    expect_unmeasurable(&p, "ramp slice not found");
+    double rots[3] = {0.0, 27.0, -150.0};
+    for (int c = 0; c < 3; c++) {
+        dr_params p;
+        dr_defaults(&p);
+        p.insert = DR_NONE;
+        p.sigma = 10;
+        p.d_mm = 0.9;
+        p.rot_deg = rots[c];
+        series s;
+        draw_series(&p, &s);
+        an_model m;
+        an_model_large(&m);
+        for (int ff = 0; ff < 2; ff++) {
+            an_image v[NS];
+            float *px[NS];
+            for (int k = 0; k < NS; k++) {
+                v[k] = s.v[k];
+                px[k] = NULL;
+                if (ff) {
+                    px[k] = malloc(sizeof(float) * 256 * 256);
+                    variant(&s.v[k], px[k], &v[k], V_FEET_FIRST);
+                    v[k].feet_first = 1;
+                }
+            }
+            an_series_result *r = run(v, NS, &m, NULL);
+            cr_assert(!r->thickness.measured);
+            cr_assert(strstr(r->thickness.reason, "ramp slice not found"), "%s",
+                      r->thickness.reason);
+            cr_assert(r->order_from_patient_frame);
+            cr_assert_eq(r->verdict, AN_UNMEASURABLE);
+            double dr = fmod(r->rotation_deg - rots[c] + 540.0, 360.0) - 180.0;
+            cr_assert(fabs(dr) < 0.3, "rotation %.1f: measured %.3f", rots[c], r->rotation_deg);
+            for (int k = 0; k < NS; k++)
+                cr_assert_eq(r->ordinal[k], k + 1, "rotation %.1f, ff %d: image %d ordinal %d",
+                             rots[c], ff, k, r->ordinal[k]);
+            for (int q = 0; q < 2; q++) {
+                const an_position *pq = &r->position[q];
+                cr_assert(pq->measured, "rotation %.1f, ff %d: %s", rots[c], ff, pq->reason);
+                cr_assert_eq(pq->slice, q ? 11 : 1);
+                cr_assert(fabs(pq->bar_difference_mm + 1.8) < 0.1 + 3 * pq->uncertainty_mm,
+                          "rotation %.1f, ff %d: BLD %.3f +- %.3f", rots[c], ff,
+                          pq->bar_difference_mm, pq->uncertainty_mm);
+                cr_assert(isnan(pq->ramp_displacement_mm));
+            }
+            cr_assert(r->position_model.measured);
+            cr_assert(fabs(r->position_model.offset_mm - 0.9) < 0.1);
+            cr_assert(!r->pitch_measured);
+            free(r);
+            for (int k = 0; k < NS; k++)
+                free(px[k]);
+        }
+        free_series(&s);
+    }
 }
 
 Test(drawn, snr_too_low)

@@ -335,7 +335,88 @@ Test(sim, weak_strips_reason)
     st[0] = &t->top;
     st[1] = &t->bottom;
     for (int k = 0; k < 2; k++)
-        cr_assert(fabs(st[k]->snr / 10.0 - 1) < 0.1, "strip %d SNR %.2f (truth 10)", k,
-                  st[k]->snr);
+        cr_assert(fabs(st[k]->snr / 10.0 - 1) < 0.1, "strip %d SNR %.2f (truth 10)", k, st[k]->snr);
     free(o);
+}
+
+/* The ramp insert missing: slice 1's insert region (and 5 mm around it) is replaced by the same
+ * pixels of slice 6, a plain fluid disc at the same in-plane pose, so slice 1 shows the wedges
+ * only. The wedges must still be measured against the simulator's truth (bar length differences
+ * from the geometry, position model), slices counted from the inferior wedge slice (head first);
+ * the thickness is unmeasurable for want of a ramp slice. */
+Test(sim, ramp_insert_missing)
+{
+    sim_params p = base();
+    p.pose.rot_deg = 3.5;
+    p.pose.du_mm = -8;
+    p.pose.dv_mm = 6;
+    p.position_offset_mm = -1.1;
+    p.position_scale = 0.006;
+    p.shuffle = 0;
+    sim_series *s = NULL;
+    sw_error e = {0};
+    cr_assert_eq(sim_series_render(&p, &s, &e), SW_OK, "%s", e.msg);
+    int i1 = -1, i6 = -1;
+    for (int i = 0; i < s->n_images; i++) {
+        if (s->slice[i] == 1)
+            i1 = i;
+        if (s->slice[i] == 6)
+            i6 = i;
+    }
+    cr_assert(i1 >= 0 && i6 >= 0);
+    /* display frame of the simulator (docs/simulator.md): column j at x = -h + j D, row i at
+     * y = h - i D, h = (N - 1) D / 2; the phantom point (u, v) at (du, dv) + Rz(rot) (u, v) */
+    dcm_image *im1 = &s->images[i1];
+    const dcm_image *im6 = &s->images[i6];
+    int N = im1->columns;
+    double D = im1->pixel_spacing[0], h = 0.5 * (N - 1) * D, a = p.pose.rot_deg * M_PI / 180;
+    int blanked = 0;
+    for (int i = 0; i < N; i++)
+        for (int j = 0; j < N; j++) {
+            double x = -h + j * D - p.pose.du_mm, y = h - i * D - p.pose.dv_mm;
+            double u = cos(a) * x + sin(a) * y, v = -sin(a) * x + cos(a) * y;
+            if (fabs(u) <= 75 && fabs(v) <= 15) {
+                im1->pixels[(size_t)i * N + j] = im6->pixels[(size_t)i * N + j];
+                blanked++;
+            }
+        }
+    cr_assert_gt(blanked, 4000); /* 150 x 30 mm at 0.95 mm^2 a pixel */
+    an_image v[AN_MAX_IMAGES];
+    int n = 0, truth_slice[AN_MAX_IMAGES];
+    for (int i = 0; i < s->n_images; i++) {
+        truth_slice[n] = s->slice[i];
+        sim_image_view(s, i, &v[n++]);
+    }
+    an_model m;
+    an_model_large(&m);
+    an_tolerance t;
+    an_tolerance_default(&t);
+    an_params pa;
+    an_params_default(&pa);
+    an_series_result *r = malloc(sizeof *r);
+    cr_assert_eq(an_analyze_series(v, n, &m, &t, &pa, r, &e), SW_OK, "%s", e.msg);
+    cr_assert(!r->thickness.measured);
+    cr_assert(strstr(r->thickness.reason, "ramp slice not found"), "%s", r->thickness.reason);
+    cr_assert(fabs(r->rotation_deg - p.pose.rot_deg) < 0.3, "rotation %.3f", r->rotation_deg);
+    for (int i = 0; i < n; i++)
+        cr_assert_eq(r->ordinal[i], truth_slice[i], "image %d: ordinal %d, truth %d", i,
+                     r->ordinal[i], truth_slice[i]);
+    const sim_truth *tr = &s->truth;
+    for (int k = 0; k < 2; k++) {
+        const an_position *q = &r->position[k];
+        cr_assert(q->measured, "slice %d: %s", q->slice, q->reason);
+        cr_assert_eq(q->slice, tr->wedge[k].ordinal);
+        cr_assert(fabs(q->bar_difference_mm - tr->wedge[k].difference_mm) <
+                      0.1 + 3 * q->uncertainty_mm,
+                  "BLD slice %d %.3f +- %.3f, truth %.3f", q->slice, q->bar_difference_mm,
+                  q->uncertainty_mm, tr->wedge[k].difference_mm);
+    }
+    const an_position_model *pm = &r->position_model;
+    cr_assert(pm->measured);
+    cr_assert(fabs(pm->scale_percent - 0.6) < 0.01 + 3 * pm->scale_unc_percent, "scale %.4f",
+              pm->scale_percent);
+    cr_assert(fabs(pm->offset_mm + 1.1) < 0.05 + 3 * pm->offset_unc_mm, "offset %.4f",
+              pm->offset_mm);
+    free(r);
+    sim_series_free(s);
 }
