@@ -28,6 +28,7 @@ static void view_of(const dcm_image *d, an_image *v)
     memcpy(v->iop, d->iop, sizeof v->iop);
     v->has_geometry = d->has_geometry;
     v->nominal_thickness_mm = d->slice_thickness_mm;
+    v->feet_first = !strncmp(d->patient_position, "FF", 2);
 }
 
 static int same_instance(const dcm_image *a, const dcm_image *b)
