@@ -44,6 +44,9 @@ sw_status an_drift_params_check(const an_drift_params *p, sw_error *err)
         return sw_error_set(err, SW_EINVAL, "drift: the baseline period ends before it starts");
     if (!(p->confidence > 0 && p->confidence < 1))
         return sw_error_set(err, SW_EINVAL, "drift: confidence %g is not in (0, 1)", p->confidence);
+    if (!(p->sigma_floor >= 0 && isfinite(p->sigma_floor)))
+        return sw_error_set(err, SW_EINVAL, "drift: sigma floor %g is not a number >= 0",
+                            p->sigma_floor);
     if (p->close_after < 1 || p->close_after > 1000)
         return sw_error_set(err, SW_EINVAL, "drift: close_after %d is not in 1 to 1000",
                             p->close_after);
@@ -385,6 +388,10 @@ sw_status an_drift_evaluate(const an_drift_input *in, const an_drift_params *p,
     }
     if ((rc = an_baseline_compute(bx, bu, nb, &out->base, err)) != SW_OK)
         goto out;
+    if (p->sigma_floor > out->base.sigma) {
+        out->base.sigma = p->sigma_floor;
+        out->base.source = AN_SIGMA_FLOOR;
+    }
     out->first = first;
     int m = n - first;
     out->n_monitored = m;

@@ -387,7 +387,9 @@ static sw_status build_chart(db *d, pool *pl, int64_t scanner_id, const qkey *k,
         "%.3f; CUSUM C+ %.3f, C- %.3f, H %.3f %s%s%s.%s",
         e.sum.base.mean, u, e.sum.base.sigma, u,
         e.sum.base.source == AN_SIGMA_SD ? "SD of the baseline"
-                                         : "measurement uncertainty, larger than the SD",
+        : e.sum.base.source == AN_SIGMA_UNCERTAINTY
+            ? "measurement uncertainty, larger than the SD"
+            : "the floor set from the tolerance, larger than SD and uncertainty",
         e.sum.base.n, e.track.z[last], u, e.track.lcl[last], e.track.ucl[last], e.track.cp[last],
         e.track.cm[last], e.sum.H, u, flags[0] ? "; out of control: " : "", flags, trend);
 out:

@@ -62,6 +62,7 @@ static const field config_fields[] = {
     S("drift", "baseline_to", wd_config, drift.baseline_to, NULL, "... until before this date"),
     I("drift", "close_after", wd_config, drift.p.close_after, NULL, 1, 1000, "a drift episode ends after this many results in control"),
     D("drift", "confidence", wd_config, drift.p.confidence, NULL, 0.5, 0.999, "confidence of the trend's intervals"),
+    D("drift", "sigma_floor", wd_config, drift.sigma_floor_fraction, NULL, 0, 1, "sigma is at least this fraction of the tolerance half-width"),
     E("log", "level", wd_config, log_level, "info", log_levels, "debug, info, warning or error"),
 };
 
@@ -386,7 +387,7 @@ static sw_status parse(const char *path, ini_handler h, parse_ctx *ctx, sw_error
 void wd_config_default(wd_config *c)
 {
     memset(c, 0, sizeof *c);
-    an_drift_params_default(&c->drift.p); /* the [drift] fields' defaults live in analysis/ */
+    wd_drift_opts_default(&c->drift); /* the [drift] fields' defaults live in drift.c and analysis/ */
     apply_defaults(config_fields, NFIELDS(config_fields), c);
 }
 

@@ -32,6 +32,7 @@ typedef struct wd_drift_opts {
     an_drift_params p;      /* lambda, L, k, h, baseline_n, confidence, close_after */
     char baseline_from[32]; /* ISO 8601 date or date-time; with baseline_to: the baseline period */
     char baseline_to[32];   /* [from, to); both empty: the first p.baseline_n accepted results */
+    double sigma_floor_fraction; /* sigma >= this fraction of the pass limits' half-width (0.1) */
 } wd_drift_opts;
 
 typedef struct wd_config {

@@ -18,6 +18,9 @@ void wd_drift_opts_default(wd_drift_opts *o)
 {
     memset(o, 0, sizeof *o);
     an_drift_params_default(&o->p);
+    /* A shift of a tenth of the tolerance is the smallest worth an alarm: a baseline that happens
+     * to be tighter than that must not make smaller, clinically meaningless shifts signal. */
+    o->sigma_floor_fraction = 0.1;
 }
 
 double wd_iso_days(const char *iso)
@@ -195,6 +198,12 @@ sw_status wd_drift_evaluate(const wd_history *h, const wd_drift_opts *o, wd_drif
     an_drift_params p = o->p;
     p.baseline_from = o->baseline_from[0] ? wd_iso_days(o->baseline_from) : NAN;
     p.baseline_to = o->baseline_to[0] ? wd_iso_days(o->baseline_to) : NAN;
+    if (h->n > 0 && o->sigma_floor_fraction > 0) {
+        double lo = h->pt[h->n - 1].limit_lo, hi = h->pt[h->n - 1].limit_hi;
+        double half = isfinite(lo) && isfinite(hi) ? 0.5 * (hi - lo) : NAN;
+        if (isfinite(half) && half > 0)
+            p.sigma_floor = o->sigma_floor_fraction * half;
+    }
     size_t n = (size_t)(h->n > 0 ? h->n : 1), bd, bi, bu;
     if (sw_mul_size(n, sizeof(double), &bd) || sw_mul_size(n, sizeof(int), &bi) ||
         sw_mul_size(n, sizeof(unsigned), &bu)) {
@@ -303,7 +312,10 @@ static void describe(const db_drift_key *k, const wd_history *h, const wd_drift_
     if (f & AN_DRIFT_F_CUSUM_LO)
         PUT(" CUSUM C- %.3f %s > H %.3f %s;", e->track.cm[last], u, s->H, u);
     PUT(" baseline %.3f %s, sigma %.3f %s (%s of %d results)", s->base.mean, u, s->base.sigma, u,
-        s->base.source == AN_SIGMA_SD ? "SD" : "uncertainty", s->base.n);
+        s->base.source == AN_SIGMA_SD            ? "SD"
+        : s->base.source == AN_SIGMA_UNCERTAINTY ? "uncertainty"
+                                                 : "floor",
+        s->base.n);
     if (s->have_trend) {
         PUT("; trend %+.3f %s/year", s->trend.slope * 365.25, u);
         if (e->have_crossing) {

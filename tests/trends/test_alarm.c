@@ -114,6 +114,7 @@ Test(alarm, one_alert_per_episode_as_numpy_says)
     make_history(&h);
     wd_drift_opts o;
     wd_drift_opts_default(&o);
+    o.sigma_floor_fraction = 0; /* the numpy reference has no floor; the floor has its own test */
     double u[WEEKS];
     int started = 0, ended = 0;
     for (int i = 0; i < WEEKS; i++) {
@@ -247,4 +248,49 @@ Test(alarm, read_only_store_is_not_written)
     cr_assert_eq(db_drift_open_get(d, &key, NULL, NULL, &found, &err), SW_OK);
     cr_assert_eq(found, 0);
     db_close(d);
+}
+
+/* The sigma floor (our own rule, docs/trends.md): a baseline far tighter than the tolerance must not
+ * make a shift of a few hundredths of a millimetre an alarm. The same history alarms without the
+ * floor and stays quiet with the default floor of a tenth of the tolerance half-width (0.07 mm). */
+Test(alarm, sigma_floor_keeps_tiny_shifts_quiet)
+{
+    for (int with_floor = 0; with_floor < 2; with_floor++) {
+        char dir[64], path[128];
+        make_tmpdir(dir, sizeof dir, with_floor ? "floor1" : "floor0");
+        snprintf(path, sizeof path, "%s/qa.sqlite", dir);
+        db *d = NULL;
+        sw_error err;
+        sw_error_clear(&err);
+        cr_assert_eq(db_open(path, DB_OPEN_RW | DB_OPEN_CREATE, &d, &err), SW_OK, "%s", err.msg);
+        int64_t sc = add_scanner(d, "ALDMR3", "SWS-0003", "SW-SIM 1.5T", "MR3 Alderbrook");
+        wd_drift_opts o;
+        wd_drift_opts_default(&o);
+        cr_assert_float_eq(o.sigma_floor_fraction, 0.1, 1e-12);
+        if (!with_floor)
+            o.sigma_floor_fraction = 0;
+        int started = 0;
+        for (int i = 0; i < 20; i++) {
+            char da[16], uid[64];
+            date_of_week(i, da, sizeof da);
+            snprintf(uid, sizeof uid, "2.25.5151%d", 1000 + i);
+            int64_t sid = 0;
+            int64_t run = add_series_run(d, sc, uid, da, "081500", "t1", "ACR T1", 3, &sid);
+            /* baseline 5.000 +- 0.005, then a steady shift of +0.03 mm (6 sigma of the baseline,
+             * under half the floor) */
+            double v = 5.0 + (i % 2 ? 0.005 : -0.005) + (i >= 8 ? 0.03 : 0.0);
+            db_verdict vd = add_row(d, run, "slice_thickness", 1, 1, v, 0.004, 5.0, 4.3, 5.7, 4.5,
+                                    5.5);
+            finish_run(d, run, sid, vd);
+            int s1 = 0, e1 = 0;
+            cr_assert_eq(wd_drift_check_run(d, sc, run, &o, NULL, &s1, &e1, &err), SW_OK, "%s",
+                         err.msg);
+            started += s1;
+        }
+        if (with_floor)
+            cr_assert_eq(started, 0, "with the floor a 0.03 mm shift raised %d alarms", started);
+        else
+            cr_assert_geq(started, 1, "without the floor the 6-sigma shift raised no alarm");
+        db_close(d);
+    }
 }
