@@ -152,10 +152,12 @@ typedef struct an_thickness {
     double acr_mm;                 /* 0.2 a b / (a + b) */
     double corrected_mm;           /* tilt-corrected; the reported thickness */
     double tilt_deg, tilt_unc_deg; /* about v; > 0 lowers the top ramp's angle (top strip longer) */
-    double fwtm_mm;                /* of the combined slice profile along the normal */
-    double uncertainty_mm;         /* of corrected_mm */
+    double fwtm_mm; /* along the normal: the strips' FWTMs mapped by their own angles, averaged (one
+                       strip's when only its tenth-level points lie inside the insert) */
+    double uncertainty_mm; /* of corrected_mm */
     double nominal_mm, limit_lo_mm, limit_hi_mm;
-    an_profile zprofile; /* slice profile vs position along the normal, peak 1 */
+    an_profile zprofile; /* slice profile vs position along the normal, peak 1; NAN where neither
+                            strip has samples inside the insert */
     an_verdict verdict;
     char reason[AN_REASON_MAX];
 } an_thickness;

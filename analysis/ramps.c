@@ -531,7 +531,7 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
                      double sigma, const an_params *par, an_strip *out)
 {
     int rc = 0;
-    double *p = NULL, *ps = NULL, *g = NULL, *gain = NULL;
+    double *p = NULL, *ps = NULL, *ps4 = NULL, *g = NULL, *gain = NULL;
     memset(out, 0, sizeof *out);
     out->length_mm = out->length_unc_mm = out->fwtm_mm = out->centre_u_mm = NAN;
     out->plateau = out->plateau_sd = out->half_level = out->floor = NAN;
@@ -546,9 +546,10 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
         n = AN_PROFILE_MAX;
     p = malloc((size_t)n * sizeof *p);
     ps = malloc((size_t)n * sizeof *ps);
+    ps4 = malloc((size_t)n * sizeof *ps4);
     g = malloc((size_t)n * sizeof *g);
     gain = malloc((size_t)n * sizeof *gain);
-    if (!p || !ps || !g || !gain) {
+    if (!p || !ps || !ps4 || !g || !gain) {
         rc = -1;
         goto out;
     }
@@ -581,6 +582,7 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
      * stopping a walk early at low SNR. */
     int w = (int)(4.0 / step) | 1;
     an_smooth(p, n, w, ps);
+    memcpy(ps4, ps, (size_t)n * sizeof *ps4);
     /* Samples within 2.5 mm of an end of the insert carry its edge's blur and ringing. */
     int edge = (int)ceil(2.5 / step);
     if (n < 4 * edge) {
@@ -796,7 +798,11 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
     double l10 =
         level_for(par->half_level == AN_HALF_BACKGROUND ? AN_HALF_BACKGROUND : AN_HALF_FLOOR_MODEL,
                   P, B, sigma * gc, sigma * gc, 0.1, &dl10);
-    double t0 = an_walk_cross(ps, n, ip, -1, l10, 1), t1 = an_walk_cross(ps, n, ip, +1, l10, 1);
+    /* First guesses walk outward from the half-level crossings on the 4 mm copy: the second
+     * pass's wider smoothing spreads the tails, and near an end of the insert its edge's ringing
+     * (the fluid beyond is several times the strip) stays above a tenth of the plateau. */
+    double t0 = an_walk_cross(ps4, n, (int)floor(xl.idx), -1, l10, 1),
+           t1 = an_walk_cross(ps4, n, (int)ceil(xh.idx), +1, l10, 1);
     an_xing tl, th;
     double h0 = isfinite(t0) ? fmin(h, (t0 - edge) * step) : 0,
            h1 = isfinite(t1) ? fmin(h, (n - 1 - edge - t1) * step) : 0;
@@ -808,6 +814,7 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
 out:
     free(p);
     free(ps);
+    free(ps4);
     free(g);
     free(gain);
     return rc;

@@ -394,11 +394,15 @@ static void measure_thickness(const an_image *im, const an_pose *pose, const an_
     } else {
         t->tilt_deg = t->tilt_unc_deg = NAN;
     }
-    /* FWTM along the normal: each strip's FWTM mapped by its own effective angle (T / L). */
+    /* FWTM along the normal: each strip's FWTM mapped by its own effective angle (T / L), the
+     * mean of the two, or the one strip's whose tenth-level points both lie inside the insert. */
     double ft = t->top.fwtm_mm * T / a, fb = crossed ? t->bottom.fwtm_mm * T / b : NAN;
-    t->fwtm_mm = crossed ? 0.5 * (ft + fb) : ft;
-    /* The slice profile: both strips mapped to the normal (z toward slice 11) and averaged. */
-    {
+    t->fwtm_mm = isfinite(ft) && isfinite(fb) ? 0.5 * (ft + fb) : isfinite(ft) ? ft : fb;
+    /* The slice profile: both strips mapped to the normal (z toward slice 11) and averaged, each
+     * only over its samples inside the insert (clear of its ends' blur: beyond them the sampled
+     * line reaches the fluid past the insert); NAN where neither strip reaches. The single-wedge
+     * method's profile is an edge response, not a slice profile: no zprofile (n = 0). */
+    if (m->method != AN_METHOD_SINGLE_WEDGE) {
         const an_strip *st[2] = {&t->top, &t->bottom};
         double sg[2] = {m->ramp[0].slope >= 0 ? 1 : -1, crossed && m->ramp[1].slope < 0 ? -1 : 1};
         double kk[2] = {T / a, crossed ? T / b : NAN};
@@ -423,13 +427,13 @@ static void measure_thickness(const an_image *im, const an_pose *pose, const an_
                 double u = q->centre_u_mm + sg[i] * z / kk[i];
                 double f = (u - q->profile.start_mm) / q->profile.step_mm;
                 int i0 = (int)floor(f);
-                if (i0 < 0 || i0 + 1 >= q->profile.n)
+                if (i0 < q->inside_lo || i0 + 1 > q->inside_hi)
                     continue;
                 double fr = f - i0, val = (1 - fr) * q->profile.v[i0] + fr * q->profile.v[i0 + 1];
                 s += (val - base) / (q->plateau - base);
                 c++;
             }
-            zp->v[j] = c ? (float)(s / c) : 0.0f;
+            zp->v[j] = c ? (float)(s / c) : NAN;
         }
     }
     t->measured = 1;
