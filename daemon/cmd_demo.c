@@ -39,8 +39,8 @@ static const demo_scanner scanners[DEMO_SCANNERS] = {
 
 /* The story: ALDMR1's slice thickness drifts by DRIFT_MM_PER_WEEK from DRIFT_FROM_WEEK on (an RF
  * transmit bandwidth that degrades); ALDMR2 has one week of mispositioned slices; ALDMR3 is healthy. */
-#define DRIFT_FROM_WEEK 6
-#define DRIFT_MM_PER_WEEK 0.04
+#define DRIFT_FROM_WEEK 8
+#define DRIFT_MM_PER_WEEK 0.045
 #define MISPLACED_WEEK 14
 #define MISPLACED_MM 3.5
 
@@ -102,9 +102,10 @@ static void job_params(const demo_job *j, sim_params *p)
     p->pose.rot_deg = 1.0 * gauss(&rng);
     p->pose.du_mm = 3.0 * gauss(&rng);
     p->pose.dv_mm = 3.0 * gauss(&rng);
-    p->pose.tilt_v_deg = 0.5 * gauss(&rng);
-    p->pose.tilt_u_deg = 0.4 * gauss(&rng);
-    p->position_offset_mm = 0.2 * gauss(&rng);
+    /* a phantom levelled by eye each week: a few tenths of a degree */
+    p->pose.tilt_v_deg = 0.3 * gauss(&rng);
+    p->pose.tilt_u_deg = 0.2 * gauss(&rng);
+    p->position_offset_mm = 0.15 * gauss(&rng);
     if (j->scanner == 1 && j->week == MISPLACED_WEEK)
         p->position_offset_mm = MISPLACED_MM;
     p->snr = s->snr_t1 * (j->kind == SIM_SERIES_T2 ? 1.3 : 1.0);

@@ -571,38 +571,50 @@ static void push_dir(watcher *w, const char *dir)
 
 /* Lists one folder: files are queued, subfolders watched and scanned later. The watch is set
  * before the listing, so that a file arriving meanwhile is seen one way or the other. */
+/* Lists dir in name order (files queued in order, sub-folders taken in order from the stack), so a
+ * backlog laid out by date or series is taken in that order, and runs are repeatable. */
 static void scan_dir(watcher *w, const char *dir)
 {
     add_watch(w, dir);
-    DIR *dp = opendir(dir);
-    if (!dp) {
+    struct dirent **list = NULL;
+    int n = scandir(dir, &list, NULL, alphasort);
+    if (n < 0) {
         if (errno != ENOENT)
             wd_warn("%s: cannot list: %s", dir, strerror(errno));
         return;
     }
-    struct dirent *de;
+    unsigned char *type = calloc((size_t)n + 1, 1);
     char path[PATH_MAX];
-    while ((de = readdir(dp))) {
-        const char *name = de->d_name;
-        if (name[0] == '.') /* ".", "..", hidden folders and dot-files of receivers */
+    for (int i = 0; i < n; i++) {
+        const char *name = list[i]->d_name;
+        if (!type || name[0] == '.') /* ".", "..", hidden folders and dot-files of receivers */
             continue;
         if (snprintf(path, sizeof path, "%s/%s", dir, name) >= (int)sizeof path) {
             wd_warn("%s/%s: path too long; left in place", dir, name);
             continue;
         }
-        unsigned char type = de->d_type;
-        if (type == DT_UNKNOWN) {
+        unsigned char t = list[i]->d_type;
+        if (t == DT_UNKNOWN) {
             struct stat st;
             if (lstat(path, &st) != 0)
                 continue;
-            type = S_ISDIR(st.st_mode) ? DT_DIR : S_ISREG(st.st_mode) ? DT_REG : DT_LNK;
+            t = S_ISDIR(st.st_mode) ? DT_DIR : S_ISREG(st.st_mode) ? DT_REG : DT_LNK;
         }
-        if (type == DT_DIR)
-            push_dir(w, path);
-        else if (type == DT_REG && !wd_name_is_temporary(name))
+        type[i] = t;
+        if (t == DT_REG && !wd_name_is_temporary(name))
             (void)enqueue_item(&w->q, path, 0, 0, 1);
     }
-    closedir(dp);
+    /* The folder stack is last in, first out: push in reverse name order. */
+    for (int i = n - 1; i >= 0; i--)
+        if (type && type[i] == DT_DIR &&
+            snprintf(path, sizeof path, "%s/%s", dir, list[i]->d_name) < (int)sizeof path)
+            push_dir(w, path);
+    if (!type)
+        wd_warn("%s: out of memory while listing", dir);
+    for (int i = 0; i < n; i++)
+        free(list[i]);
+    free(list);
+    free(type);
 }
 
 static void scan_next_dir(watcher *w)
@@ -2316,28 +2328,35 @@ out:
 
 /* The next series to measure: complete ones (and ones the store marked complete or quiet) at any
  * time; quiet ones only when allow_quiet (nothing else is queued, so no file of theirs waits). */
+/* The ready series acquired first (by SeriesDate): a backlog is measured in acquisition order, so
+ * that each series' drift check sees the history before it, as it would have live. */
 static wseries *next_ready(watcher *w, int allow_quiet, int *quiet)
 {
     double mono = wd_now_mono(), real = wd_now_real();
+    wseries *best = NULL;
+    int best_quiet = 0;
     for (int i = 0; i < w->nseries; i++) {
         wseries *s = w->series[i];
         if (s->retry_at > mono)
             continue;
+        int ready = 0, q = 0;
         if (s->state == DB_SERIES_COMPLETE || s->state == DB_SERIES_MEASURED ||
             (s->state == DB_SERIES_COLLECTING && series_complete(w, s))) {
-            *quiet = 0;
-            return s;
+            ready = 1;
+        } else if (allow_quiet) {
+            if (s->last_arrival > real)
+                s->last_arrival = real; /* the clock went back */
+            if (s->state == DB_SERIES_QUIET || real - s->last_arrival >= w->s->cfg.quiet_seconds)
+                ready = q = 1;
         }
-        if (!allow_quiet)
-            continue;
-        if (s->last_arrival > real)
-            s->last_arrival = real; /* the clock went back */
-        if (s->state == DB_SERIES_QUIET || real - s->last_arrival >= w->s->cfg.quiet_seconds) {
-            *quiet = 1;
-            return s;
+        if (ready && (!best || strcmp(s->date, best->date) < 0)) {
+            best = s;
+            best_quiet = q;
         }
     }
-    return NULL;
+    if (best)
+        *quiet = best_quiet;
+    return best;
 }
 
 static double next_quiet_s(const watcher *w)
