@@ -47,6 +47,7 @@ void an_pose_to_ph(const an_pose *p, double x, double y, double *u, double *v);
  * A point is read as the mean of pixels floor(t_j) and ceil(t_j) (one pixel when t_j is whole), so
  * an image stored with its rows or columns reversed, or transposed, reads the same values at the
  * mirrored points: what is computed from them does not depend on the storage order. */
+#define AN_LATTICE_MAX 4096 /* points of a lattice along one axis that a function keeps at once */
 static inline int an_lattice_k(int n, double s)
 {
     return n > 0 && s > 0 ? (int)floor(0.5 * (n - 1) / s) : 0;
@@ -56,8 +57,23 @@ static inline double an_lattice_t(int n, double s, int j)
     return 0.5 * (n - 1) + j * s;
 }
 
-/* Bilinear value at stored pixel (x, y); NAN outside the image. */
-double an_bilinear(const an_image *im, double x, double y);
+/* Bilinear value at stored pixel (x, y); NAN outside the image. Inline: the profiles take most of
+ * their time here. */
+static inline double an_bilinear(const an_image *im, double x, double y)
+{
+    if (!(x >= 0 && y >= 0 && x <= im->width - 1 && y <= im->height - 1))
+        return NAN;
+    int x0 = (int)x, y0 = (int)y;
+    if (x0 >= im->width - 1)
+        x0 = im->width - 2;
+    if (y0 >= im->height - 1)
+        y0 = im->height - 2;
+    if (x0 < 0 || y0 < 0) /* a one-pixel-wide image */
+        return im->px[(ptrdiff_t)(y0 < 0 ? 0 : y0) * im->stride + (x0 < 0 ? 0 : x0)];
+    double fx = x - x0, fy = y - y0;
+    const float *r0 = im->px + (ptrdiff_t)y0 * im->stride + x0, *r1 = r0 + im->stride;
+    return (1 - fy) * ((1 - fx) * r0[0] + fx * r0[1]) + fy * ((1 - fx) * r1[0] + fx * r1[1]);
+}
 
 /* ---- line sampling with exact noise bookkeeping ----
  * A profile along a line in the phantom frame, each sample the mean of k bilinear samples taken at

@@ -115,22 +115,6 @@ void an_pose_to_ph(const an_pose *p, double x, double y, double *u, double *v)
     *v = p->inv[4] * dx + p->inv[5] * dy;
 }
 
-double an_bilinear(const an_image *im, double x, double y)
-{
-    if (!(x >= 0 && y >= 0 && x <= im->width - 1 && y <= im->height - 1))
-        return NAN;
-    int x0 = (int)x, y0 = (int)y;
-    if (x0 >= im->width - 1)
-        x0 = im->width - 2;
-    if (y0 >= im->height - 1)
-        y0 = im->height - 2;
-    if (x0 < 0 || y0 < 0) /* a one-pixel-wide image */
-        return im->px[(ptrdiff_t)(y0 < 0 ? 0 : y0) * im->stride + (x0 < 0 ? 0 : x0)];
-    double fx = x - x0, fy = y - y0;
-    const float *r0 = im->px + (ptrdiff_t)y0 * im->stride + x0, *r1 = r0 + im->stride;
-    return (1 - fy) * ((1 - fx) * r0[0] + fx * r0[1]) + fy * ((1 - fx) * r1[0] + fx * r1[1]);
-}
-
 void an_line_offsets(an_line *l, double half, double spacing)
 {
     if (!(half > 0) || !(spacing > 0)) {
@@ -156,15 +140,44 @@ void an_line_point(const an_line *l, double t, double *u, double *v)
 
 int an_line_sample(const an_line *l, double *out)
 {
-    int bad = 0;
+    int bad = 0, n = l->n, k = l->k;
+    const an_image *im = l->img;
     const double *m = l->pose.m;
-    for (int i = 0; i < l->n; i++) {
-        double u = l->u0 + i * l->step * l->du, v = l->v0 + i * l->step * l->dv, s = 0;
-        for (int j = 0; j < l->k; j++) {
-            double uu = u + l->off[j] * l->pu, vv = v + l->off[j] * l->pv;
-            s += an_bilinear(l->img, m[0] + m[1] * uu + m[2] * vv, m[3] + m[4] * uu + m[5] * vv);
+    double m0 = m[0], m1 = m[1], m2 = m[2], m3 = m[3], m4 = m[4], m5 = m[5];
+    double u0 = l->u0, v0 = l->v0, step = l->step, du = l->du, dv = l->dv;
+    double opu[AN_LINE_MAX_OFF], opv[AN_LINE_MAX_OFF];
+    for (int j = 0; j < k; j++) {
+        opu[j] = l->off[j] * l->pu;
+        opv[j] = l->off[j] * l->pv;
+    }
+    /* A line whose corners (first and last sample at the outermost offsets) lie inside the image
+     * by a margin is inside at every sample (the map is affine): no bounds checks there. */
+    int inside = n > 0;
+    for (int c = 0; c < 4 && inside; c++) {
+        int i = c & 1 ? n - 1 : 0, j = c & 2 ? k - 1 : 0;
+        double uu = (u0 + i * step * du) + opu[j], vv = (v0 + i * step * dv) + opv[j];
+        double x = m0 + m1 * uu + m2 * vv, y = m3 + m4 * uu + m5 * vv;
+        inside = x > 1e-6 && y > 1e-6 && x < im->width - 1 - 1e-6 && y < im->height - 1 - 1e-6;
+    }
+    for (int i = 0; i < n; i++) {
+        double u = u0 + i * step * du, v = v0 + i * step * dv, s = 0;
+        if (inside) {
+            for (int j = 0; j < k; j++) {
+                double uu = u + opu[j], vv = v + opv[j];
+                double x = m0 + m1 * uu + m2 * vv, y = m3 + m4 * uu + m5 * vv;
+                int x0 = (int)x, y0 = (int)y;
+                double fx = x - x0, fy = y - y0;
+                const float *r0 = im->px + (ptrdiff_t)y0 * im->stride + x0, *r1 = r0 + im->stride;
+                s += (1 - fy) * ((1 - fx) * r0[0] + fx * r0[1]) +
+                     fy * ((1 - fx) * r1[0] + fx * r1[1]);
+            }
+        } else {
+            for (int j = 0; j < k; j++) {
+                double uu = u + opu[j], vv = v + opv[j];
+                s += an_bilinear(im, m0 + m1 * uu + m2 * vv, m3 + m4 * uu + m5 * vv);
+            }
         }
-        out[i] = s / l->k;
+        out[i] = s / k;
         if (!isfinite(out[i])) {
             out[i] = NAN;
             bad++;

@@ -11,7 +11,7 @@ int an_work_reserve(an_work *w, size_t npx)
     if (npx <= w->cap)
         return 0;
     size_t bytes;
-    if (sw_mul_size(npx, sizeof(int), &bytes))
+    if (sw_mul_size(npx, 2 * sizeof(int), &bytes)) /* the flood's stack holds (x, y) pairs */
         return -1;
     unsigned char *m = realloc(w->mask, npx);
     if (!m)
@@ -71,7 +71,8 @@ static double otsu(const float *v, size_t n, double lo, double hi)
     return lo + (bi + 1) / scale;
 }
 
-/* 4-connected flood from seed over pixels whose mask equals `from`, setting them to `to`. */
+/* 4-connected flood from seed over pixels whose mask equals `from`, setting them to `to`; the stack
+ * (2 w h ints) holds coordinate pairs. Returns the number of pixels set. */
 static size_t flood(unsigned char *m, int *stack, int w, int h, int seed, unsigned char from,
                     unsigned char to)
 {
@@ -79,17 +80,32 @@ static size_t flood(unsigned char *m, int *stack, int w, int h, int seed, unsign
     if (m[seed] != from)
         return 0;
     m[seed] = to;
-    stack[top++] = seed;
+    stack[top++] = seed % w;
+    stack[top++] = seed / w;
     while (top) {
-        int p = stack[--top], x = p % w, y = p / w;
+        int y = stack[--top], x = stack[--top];
+        unsigned char *q = m + (size_t)y * w + x;
         count++;
-        int nb[4] = {x > 0 ? p - 1 : -1, x < w - 1 ? p + 1 : -1, y > 0 ? p - w : -1,
-                     y < h - 1 ? p + w : -1};
-        for (int k = 0; k < 4; k++)
-            if (nb[k] >= 0 && m[nb[k]] == from) {
-                m[nb[k]] = to;
-                stack[top++] = nb[k];
-            }
+        if (x > 0 && q[-1] == from) {
+            q[-1] = to;
+            stack[top++] = x - 1;
+            stack[top++] = y;
+        }
+        if (x < w - 1 && q[1] == from) {
+            q[1] = to;
+            stack[top++] = x + 1;
+            stack[top++] = y;
+        }
+        if (y > 0 && q[-w] == from) {
+            q[-w] = to;
+            stack[top++] = x;
+            stack[top++] = y - 1;
+        }
+        if (y < h - 1 && q[w] == from) {
+            q[w] = to;
+            stack[top++] = x;
+            stack[top++] = y + 1;
+        }
     }
     return count;
 }
@@ -178,21 +194,42 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
     double lo = INFINITY, hi = -INFINITY;
     /* Each block is represented by the mean of the (up to) 2 x 2 pixels around its centre: a
      * quarter of the pixels or fewer are read, which is plenty to tell fluid from air. */
+    int bx0[AN_LATTICE_MAX], bx1[AN_LATTICE_MAX];
+    if (cw > AN_LATTICE_MAX || ch > AN_LATTICE_MAX) {
+        sw_strlcpy(d->reason, "phantom not found: image too large", sizeof d->reason);
+        return 0;
+    }
+    for (int bx = 0; bx < cw; bx++) {
+        double tx = an_lattice_t(w, f, bx - kx);
+        bx0[bx] = (int)floor(tx);
+        bx1[bx] = (int)ceil(tx);
+    }
     for (int by = 0; by < ch; by++) {
         double ty = an_lattice_t(h, f, by - ky);
         int y0 = (int)floor(ty), y1 = (int)ceil(ty);
+        const float *ra = im->px + (ptrdiff_t)y0 * im->stride,
+                    *rb = im->px + (ptrdiff_t)y1 * im->stride;
         for (int bx = 0; bx < cw; bx++) {
-            double tx = an_lattice_t(w, f, bx - kx);
-            int x0 = (int)floor(tx), x1 = (int)ceil(tx);
+            int x0 = bx0[bx], x1 = bx1[bx];
             double acc = 0;
             int c = 0;
-            for (int y = y0; y <= y1; y++) {
-                const float *r = im->px + (ptrdiff_t)y * im->stride;
-                for (int x = x0; x <= x1; x++)
-                    if (isfinite(r[x])) {
-                        acc += r[x];
-                        c++;
-                    }
+            if (x1 == x0 + 1 && y1 == y0 + 1 && isfinite(ra[x0]) && isfinite(ra[x1]) &&
+                isfinite(rb[x0]) && isfinite(rb[x1])) {
+                /* the common case, in the order of the loops below */
+                acc += ra[x0];
+                acc += ra[x1];
+                acc += rb[x0];
+                acc += rb[x1];
+                c = 4;
+            } else {
+                for (int y = y0; y <= y1; y++) {
+                    const float *r = im->px + (ptrdiff_t)y * im->stride;
+                    for (int x = x0; x <= x1; x++)
+                        if (isfinite(r[x])) {
+                            acc += r[x];
+                            c++;
+                        }
+                }
             }
             float m = c ? (float)(acc / c) : NAN;
             cv[(size_t)by * cw + bx] = m;
@@ -443,50 +480,62 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
 
 /* Pixels of the air around the disc, in four bands (left, right, top, bottom of the stored image).
  * Every pixel of a border-trimmed range that is symmetric under flips and transposition is used,
- * so the estimate does not depend on how the image happens to be stored. */
-static int air_band(const an_image *im, const an_disc *d, double rmin, int x, int y, float *v)
+ * so the estimate does not depend on how the image happens to be stored. Two passes over the
+ * rows (with = 0: count the bands; 1: fill each band's part of scratch); per row only the pixels
+ * that may lie outside the excluded circle are visited (one pixel of margin for rounding). */
+static void air_rows(const an_image *im, const an_disc *d, double rmin, int with, size_t cnt[4],
+                     size_t *zeros, const size_t *start, float *scratch)
 {
+    int w = im->width, h = im->height;
     double col = im->col_mm > 0 ? im->col_mm : 1, row = im->row_mm > 0 ? im->row_mm : 1;
-    double dx = (x - d->xc) * col, dy = (y - d->yc) * row;
-    if (dx * dx + dy * dy < rmin * rmin)
-        return -1;
-    *v = im->px[(ptrdiff_t)y * im->stride + x];
-    if (!isfinite(*v))
-        return -1;
-    return fabs(dx) >= fabs(dy) ? (dx < 0 ? 0 : 1) : (dy < 0 ? 2 : 3);
+    double r2 = rmin * rmin;
+    for (int y = 2; y < h - 2; y++) {
+        double dy = (y - d->yc) * row, dy2 = dy * dy, ady = fabs(dy), q = r2 - dy2;
+        int s0 = 0, s1 = 0;
+        if (q > 0) {
+            double hw = sqrt(q) / col;
+            s0 = (int)ceil(d->xc - hw) + 1;
+            s1 = (int)floor(d->xc + hw) - 1;
+        }
+        const float *pr = im->px + (ptrdiff_t)y * im->stride;
+        int bv = dy < 0 ? 2 : 3;
+        for (int x = 2; x < w - 2; x++) {
+            if (x > s0 && x < s1) {
+                x = s1 - 1;
+                continue;
+            }
+            double dx = (x - d->xc) * col;
+            if (dx * dx + dy2 < r2)
+                continue;
+            float v = pr[x];
+            if (!isfinite(v))
+                continue;
+            int b = fabs(dx) >= ady ? (dx < 0 ? 0 : 1) : bv;
+            if (with) {
+                scratch[start[b] + cnt[b]++] = v;
+            } else {
+                cnt[b]++;
+                *zeros += v == 0;
+            }
+        }
+    }
 }
 
 double an_noise_air(const an_image *im, const an_disc *d, float *scratch)
 {
     if (!d->found)
         return NAN;
-    int w = im->width, h = im->height;
     double rmin = d->r_mm + fmax(10.0, 0.1 * d->r_mm);
-    size_t cnt[4] = {0}, start[4], zeros = 0, total = 0;
-    /* Two passes: the bands' sizes, then their values, each band in its own part of scratch. */
-    for (int y = 2; y < h - 2; y++)
-        for (int x = 2; x < w - 2; x++) {
-            float v;
-            int b = air_band(im, d, rmin, x, y, &v);
-            if (b < 0)
-                continue;
-            cnt[b]++;
-            total++;
-            zeros += v == 0;
-        }
+    size_t cnt[4] = {0}, start[4], zeros = 0, total;
+    air_rows(im, d, rmin, 0, cnt, &zeros, NULL, NULL);
+    total = cnt[0] + cnt[1] + cnt[2] + cnt[3];
     if (total < 200 || zeros > total * 0.3)
         return NAN;
     start[0] = 0;
     for (int b = 1; b < 4; b++)
         start[b] = start[b - 1] + cnt[b - 1];
     size_t fill[4] = {0};
-    for (int y = 2; y < h - 2; y++)
-        for (int x = 2; x < w - 2; x++) {
-            float v;
-            int b = air_band(im, d, rmin, x, y, &v);
-            if (b >= 0)
-                scratch[start[b] + fill[b]++] = v;
-        }
+    air_rows(im, d, rmin, 1, fill, NULL, start, scratch);
     double s[4];
     int ns = 0;
     for (int b = 0; b < 4; b++)

@@ -25,19 +25,29 @@ int an_dark_axis(const an_image *im, const an_geom *g, const an_disc *d, double 
     int jx1 = (int)fmin(kx, ceil((d->xc + R / col - an_lattice_t(im->width, 2, 0)) / 2));
     int jy0 = (int)fmax(-ky, floor((d->yc - R / row - an_lattice_t(im->height, 2, 0)) / 2));
     int jy1 = (int)fmin(ky, ceil((d->yc + R / row - an_lattice_t(im->height, 2, 0)) / 2));
+    /* the points' pixels along x: the same for every row */
+    int xa[AN_LATTICE_MAX], xb[AN_LATTICE_MAX];
+    if (jx1 - jx0 + 1 > AN_LATTICE_MAX)
+        return -1;
+    for (int jx = jx0; jx <= jx1; jx++) {
+        double tx = an_lattice_t(im->width, 2, jx);
+        xa[jx - jx0] = (int)floor(tx);
+        xb[jx - jx0] = (int)ceil(tx);
+    }
     for (int jy = jy0; jy <= jy1; jy++) {
         double ty = an_lattice_t(im->height, 2, jy), dy = ty - d->yc;
         int ya = (int)floor(ty), yb = (int)ceil(ty);
+        const float *r0 = im->px + (ptrdiff_t)ya * im->stride,
+                    *r1 = im->px + (ptrdiff_t)yb * im->stride;
         for (int jx = jx0; jx <= jx1; jx++) {
-            double tx = an_lattice_t(im->width, 2, jx), dx = tx - d->xc;
+            /* the pixels first: most points are fluid, brighter than the limit */
+            int qa = xa[jx - jx0], qb = xb[jx - jx0];
+            double val = 0.25 * ((double)r0[qa] + r0[qb] + r1[qa] + r1[qb]);
+            if (!(val < lim))
+                continue;
+            double dx = an_lattice_t(im->width, 2, jx) - d->xc;
             double a = g->d[0] * dx + g->d[1] * dy, b = g->d[2] * dx + g->d[3] * dy;
             if (a * a + b * b > 0.64 * R * R)
-                continue;
-            int xa = (int)floor(tx), xb = (int)ceil(tx);
-            const float *r0 = im->px + (ptrdiff_t)ya * im->stride,
-                        *r1 = im->px + (ptrdiff_t)yb * im->stride;
-            double val = 0.25 * ((double)r0[xa] + r0[xb] + r1[xa] + r1[xb]);
-            if (!(val < lim))
                 continue;
             for (int k = 0; k < 2; k++) {
                 if (fabs(k ? a : b) > 0.5 * R)

@@ -549,9 +549,10 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
         (model->insert_u_max - model->insert_u_min) * (model->insert_v_max - model->insert_v_min);
     double elong[AN_MAX_IMAGES];
     /* The ends first (the standard series), then, should neither hold the insert, any slice (a
-     * stack that runs past the wedges); within each group the most elongated dark region first. */
-    for (int pass = 0; pass < 2; pass++) {
-        int first = ncand;
+     * stack that runs past the wedges); within each group the most elongated dark region first.
+     * The other slices are screened only when no end holds the insert. */
+    for (int pass = 0; pass < 2 && ramp < 0; pass++) {
+        int c0 = ncand;
         for (int k = 0; k < n; k++) {
             int i = order[k], is_end = i == ends[0] || i == ends[nends - 1];
             if (pass == 0 ? !is_end : is_end)
@@ -562,79 +563,79 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
                 area < 0.25 * area_model || area > 3 * area_model || off > 0.25 * disc[i].r_mm)
                 continue;
             int j = ncand++;
-            for (; j > first && elong[j - 1] < el; j--) {
+            for (; j > c0 && elong[j - 1] < el; j--) {
                 elong[j] = elong[j - 1];
                 cand[j] = cand[j - 1];
             }
             elong[j] = el;
             cand[j] = i;
         }
-    }
-    for (int c = 0; c < ncand && ramp < 0; c++) {
-        int i = cand[c];
-        /* the other wedge slice lies toward the far end of the stack */
-        int oth = -1;
-        if (nends == 2)
-            oth = i == ends[0]   ? ends[1]
-                  : i == ends[1] ? ends[0]
-                  : !has_geo     ? ends[1]
-                  : fabs(geo[ends[1]].z_n - geo[i].z_n) >= fabs(geo[ends[0]].z_n - geo[i].z_n)
-                      ? ends[1]
-                      : ends[0];
-        /* an interior candidate gets the full circle fit too */
-        if (i != ends[0] && i != ends[nends - 1]) {
-            if (an_find_disc(&imgs[i], model, 1, &wk, &disc[i])) {
+        for (int c = c0; c < ncand && ramp < 0; c++) {
+            int i = cand[c];
+            /* the other wedge slice lies toward the far end of the stack */
+            int oth = -1;
+            if (nends == 2)
+                oth = i == ends[0]   ? ends[1]
+                      : i == ends[1] ? ends[0]
+                      : !has_geo     ? ends[1]
+                      : fabs(geo[ends[1]].z_n - geo[i].z_n) >= fabs(geo[ends[0]].z_n - geo[i].z_n)
+                          ? ends[1]
+                          : ends[0];
+            /* an interior candidate gets the full circle fit too */
+            if (i != ends[0] && i != ends[nends - 1]) {
+                if (an_find_disc(&imgs[i], model, 1, &wk, &disc[i])) {
+                    st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
+                    goto out;
+                }
+                if (!disc[i].found)
+                    continue;
+                out->phantom[i].centre.x = disc[i].xc;
+                out->phantom[i].centre.y = disc[i].yc;
+                out->phantom[i].radius_mm = disc[i].r_mm;
+            }
+            /* 5. w toward slice 11: the ramp slice is slice 1 whatever the patient orientation. */
+            wsign = oth >= 0 && has_geo && geo[i].z_n > geo[oth].z_n ? -1 : 1;
+            for (int k = 0; k < n; k++)
+                an_geom_make(&imgs[k], wsign, &geo[k]);
+            /* 6. Rotation: the insert's axis (modulo 180 degrees), the bridge telling up from down,
+             * then the long edges. */
+            double ang, el, area, off;
+            if (an_dark_axis(&imgs[i], &geo[i], &disc[i], &ang, &el, &area, &off))
+                ang = 0;
+            double sc[2] = {0, 0};
+            for (int f = 0; f < 2; f++) {
+                int ims[2] = {i, oth};
+                for (int q = 0; q < 2; q++) {
+                    int k = ims[q];
+                    if (k < 0 || !disc[k].found || !model->has_wedges)
+                        continue;
+                    an_pose p;
+                    an_pose_make(&geo[k], disc[k].xc, disc[k].yc, ang + 180.0 * f, &p);
+                    double sb = bridge_score(&imgs[k], &p, model);
+                    if (isfinite(sb))
+                        sc[f] += sb;
+                }
+            }
+            if (sc[1] > sc[0] + 0.2)
+                ang += 180.0;
+            if (an_insert_find(&imgs[i], &geo[i], &disc[i], model, ang, 1, &ins)) {
                 st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
                 goto out;
             }
-            if (!disc[i].found)
+            if (!ins.found) {
+                reason2(why, "ramp slice not found: ", ins.reason);
                 continue;
-            out->phantom[i].centre.x = disc[i].xc;
-            out->phantom[i].centre.y = disc[i].yc;
-            out->phantom[i].radius_mm = disc[i].r_mm;
-        }
-        /* 5. w toward slice 11: the ramp slice is slice 1 whatever the patient orientation. */
-        wsign = oth >= 0 && has_geo && geo[i].z_n > geo[oth].z_n ? -1 : 1;
-        for (int k = 0; k < n; k++)
-            an_geom_make(&imgs[k], wsign, &geo[k]);
-        /* 6. Rotation: the insert's axis (modulo 180 degrees), the bridge telling up from down,
-         * then the long edges. */
-        double ang, el, area, off;
-        if (an_dark_axis(&imgs[i], &geo[i], &disc[i], &ang, &el, &area, &off))
-            ang = 0;
-        double sc[2] = {0, 0};
-        for (int f = 0; f < 2; f++) {
-            int ims[2] = {i, oth};
-            for (int q = 0; q < 2; q++) {
-                int k = ims[q];
-                if (k < 0 || !disc[k].found || !model->has_wedges)
-                    continue;
-                an_pose p;
-                an_pose_make(&geo[k], disc[k].xc, disc[k].yc, ang + 180.0 * f, &p);
-                double sb = bridge_score(&imgs[k], &p, model);
-                if (isfinite(sb))
-                    sc[f] += sb;
             }
+            ramp = i;
+            other = oth;
+            double r = fmod(ins.rot_deg, 360.0);
+            if (r > 180)
+                r -= 360;
+            if (r <= -180)
+                r += 360;
+            ins.rot_deg = r;
+            out->rotation_deg = r;
         }
-        if (sc[1] > sc[0] + 0.2)
-            ang += 180.0;
-        if (an_insert_find(&imgs[i], &geo[i], &disc[i], model, ang, 1, &ins)) {
-            st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
-            goto out;
-        }
-        if (!ins.found) {
-            reason2(why, "ramp slice not found: ", ins.reason);
-            continue;
-        }
-        ramp = i;
-        other = oth;
-        double r = fmod(ins.rot_deg, 360.0);
-        if (r > 180)
-            r -= 360;
-        if (r <= -180)
-            r += 360;
-        ins.rot_deg = r;
-        out->rotation_deg = r;
     }
     /* first: the image of slice 1 (the ramp slice, or without it a wedge slice) */
     int first = ramp;
