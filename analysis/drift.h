@@ -24,8 +24,8 @@ typedef struct an_drift_params {
     double baseline_from, baseline_to; /* ... or the accepted results with t in [from, to), when
                                           both are finite (days, the caller's time axis) */
     double confidence;                 /* of the trend's intervals, 0 < confidence < 1 (0.95) */
-    int cusum_restart;  /* 1: a sum that signalled restarts from 0 at the next point (default) */
-    int close_after;    /* an episode ends after this many consecutive in-control points (3) */
+    int cusum_restart; /* 1: a sum that signalled restarts from 0 at the next point (default) */
+    int close_after;   /* an episode ends after this many consecutive in-control points (3) */
     double sigma_floor; /* sigma is never taken below this (value's unit; 0: no floor) */
 } an_drift_params;
 
@@ -38,11 +38,7 @@ sw_status an_drift_params_check(const an_drift_params *p, sw_error *err);
  * standard uncertainties (NAN when none is known). sigma = max(sd, u_rms): a short baseline can
  * show less spread than the measurement's own uncertainty by chance, and limits tighter than that
  * would signal noise (docs/trends.md). */
-typedef enum an_sigma_source {
-    AN_SIGMA_SD = 0,
-    AN_SIGMA_UNCERTAINTY,
-    AN_SIGMA_FLOOR
-} an_sigma_source;
+typedef enum an_sigma_source { AN_SIGMA_SD = 0, AN_SIGMA_UNCERTAINTY, AN_SIGMA_FLOOR } an_sigma_source;
 typedef struct an_baseline {
     int n;
     double mean, sd, u_rms, sigma;
