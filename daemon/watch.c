@@ -140,6 +140,17 @@ sw_status wd_settings_load(const char *path, const char *folder, const char *dat
         if ((s->cfg.move_files || i == 3) && wd_path_inside(outs[i][1], s->cfg.folder))
             return sw_error_set(err, SW_EINVAL, "%s folder %s is inside the watch folder %s",
                                 outs[i][0], outs[i][1], s->cfg.folder);
+    /* Nor the database: the service would take its own files (and its -wal, -shm and .lock) for
+     * arrivals. */
+    char dbdir[PATH_MAX];
+    sw_strlcpy(dbdir, s->cfg.database, sizeof dbdir);
+    char *slash = strrchr(dbdir, '/');
+    if (slash)
+        *slash = '\0';
+    if (wd_path_inside(s->cfg.database, s->cfg.folder) ||
+        (slash && wd_path_inside(dbdir, s->cfg.folder)))
+        return sw_error_set(err, SW_EINVAL, "the database %s is inside the watch folder %s",
+                            s->cfg.database, s->cfg.folder);
     settings_hash(s);
     return SW_OK;
 }

@@ -88,6 +88,18 @@ def remaining():
 
 
 time.sleep(1.2)  # files younger than a second wait to settle (they may still be written)
+# Random points, on the time scale of this build: a start of the program on an empty folder takes
+# about 30 ms in an optimised build (several times that under the sanitizers); the delays below are
+# in those units, so that the kills land in every phase on a slow build too.
+empty = tmpdir("sw-e2e-kill-empty-")
+os.makedirs(os.path.join(empty, "in"))
+t0 = []
+for _ in range(3):
+    t = time.monotonic()
+    run_once(os.path.join(empty, "in"), os.path.join(empty, "t.sqlite"))
+    t0.append(time.monotonic() - t)
+scale = min(10.0, max(1.0, min(t0) / 0.03))
+print("start-up %.3f s: kill delays scaled by %.1f" % (min(t0), scale))
 kills = 0
 starts = 0
 while kills < 24:
@@ -99,7 +111,7 @@ while kills < 24:
         time.sleep(1.2)
     d = Daemon(inbox, db, "-c", conf)
     starts += 1
-    time.sleep(random.uniform(0.005, 0.08) if kills % 5 else random.uniform(0.08, 0.2))
+    time.sleep(scale * (random.uniform(0.005, 0.08) if kills % 5 else random.uniform(0.08, 0.2)))
     left = remaining()
     d.p.send_signal(signal.SIGKILL)
     d.p.wait()
@@ -163,5 +175,5 @@ for p in files_under(os.path.join(base, "quarantine")):
 ok, text = integrity_ok(db)
 check(ok, "sqlite3 PRAGMA integrity_check: %s" % text)
 
-cleanup(base, inbox)
+cleanup(base, inbox, empty)
 finish()

@@ -116,5 +116,18 @@ check("\r" not in r.stderr and "files/s" not in r.stderr, "no bar when stderr is
 check(r.stdout.startswith("slicewarden watch: 11 files (0 stored, 0 quarantined, 11 ignored"),
       "the summary of a run of duplicates: %s" % r.stdout)
 
+# ---- (4) folders that would feed the service its own files are refused ----
+r = subprocess.run([SW, "watch", "--once", "--folder", inbox, "--db",
+                    os.path.join(inbox, "qa.sqlite")], capture_output=True, text=True)
+check(r.returncode == 2 and "inside the watch folder" in r.stderr,
+      "a database inside the watch folder is refused: %s" % r.stderr)
+inside = os.path.join(base, "inside.conf")
+with open(inside, "w") as f:
+    f.write("[watch]\nfolder = %s\narchive = %s/archive\n" % (inbox, inbox))
+r = subprocess.run([SW, "watch", "--once", "-c", inside, "--db", db2], capture_output=True,
+                   text=True)
+check(r.returncode == 2 and "archive folder" in r.stderr,
+      "an archive inside the watch folder is refused: %s" % r.stderr)
+
 cleanup(base)
 finish()
