@@ -26,6 +26,10 @@ later, _ = simulate(os.path.join(base, "src", "later"), seed=32, station="ALDMR2
 with open(good[0], "rb") as f:
     sample = f.read()
 other, _ = simulate(os.path.join(base, "src", "other"), seed=33, station="ALDMR3")
+# A series with a station name that would climb out of the archive if used as it is, and one
+# series of which a slice never arrives (measured when quiet).
+hostile, _ = simulate(os.path.join(base, "src", "hostile"), seed=34, station="../../x/ALD")
+partial, _ = simulate(os.path.join(base, "src", "partial"), seed=35, station="ALDMR1")
 with open(other[0], "rb") as f:
     other0 = f.read()
 
@@ -68,6 +72,18 @@ for p in corpus:
     shutil.copyfile(p, os.path.join(corpus_dir, os.path.basename(p)))
 for p in good:  # and a phantom series among them
     shutil.copyfile(p, os.path.join(inbox, "good-" + os.path.basename(p)))
+for p in hostile:
+    shutil.copyfile(p, os.path.join(inbox, "hostile-" + os.path.basename(p)))
+for p in partial[1:]:
+    shutil.copyfile(p, os.path.join(inbox, "partial-" + os.path.basename(p)))
+# Three files of one name for the quarantine, one of them there already: none may replace another.
+os.makedirs(os.path.join(base, "quarantine"), exist_ok=True)
+with open(os.path.join(base, "quarantine", "same.txt"), "w") as f:
+    f.write("a file that was there before\n")
+for k, sub in enumerate(("x", "y")):
+    os.makedirs(os.path.join(inbox, sub))
+    with open(os.path.join(inbox, sub, "same.txt"), "w") as f:
+        f.write("not DICOM either, %d\n" % k)
 
 
 def drained():
@@ -76,7 +92,27 @@ def drained():
 
 wait_for(drained, 180, "every odd file handled")
 check(d.alive(), "the service keeps running through odd input")
-check(stored_series(db) == 1, "the phantom series among them is stored")
+check(stored_series(db) == 3, "the phantom series among them are stored (%d)" % stored_series(db))
+qd = os.path.join(base, "quarantine")
+with open(os.path.join(qd, "same.txt")) as f:
+    check(f.read() == "a file that was there before\n", "the file already there is untouched")
+texts = set()
+for n in ("same.txt.1", "same.txt.2"):
+    if check(os.path.isfile(os.path.join(qd, n)) and
+             os.path.isfile(os.path.join(qd, n + ".reason.txt")), "%s kept beside it" % n):
+        with open(os.path.join(qd, n)) as f:
+            texts.add(f.read())
+check(texts == {"not DICOM either, 0\n", "not DICOM either, 1\n"}, "both arrivals kept")
+arch = os.path.realpath(os.path.join(base, "archive"))
+for (loc,) in query(db, "SELECT location FROM files WHERE state = 'stored'"):
+    check(os.path.realpath(loc).startswith(arch + os.sep), "%s is inside archive/" % loc)
+check(not os.path.exists(os.path.join(base, "x")) and not os.path.exists("/x/ALD"),
+      "the hostile station name made no folder outside")
+q = query(db, "SELECT state FROM series WHERE series_instance_uid = (SELECT s.series_instance_uid "
+              "FROM series s JOIN files f ON f.series_id = s.id WHERE f.path LIKE '%partial-%' "
+              "LIMIT 1)")
+check(q == [("stored",)], "the series missing a slice is measured when quiet: %s" % q)
+check("[quiet, 10 images" in d.text(), "and logged as measured quiet with its 10 images")
 
 rows = {os.path.basename(p): (s, r, loc) for p, s, r, loc in
         query(db, "SELECT path, state, reason, location FROM files")}
@@ -100,8 +136,8 @@ for p in corpus:
     if check(got is not None, "corpus file %s recorded" % n):
         check(got[0] in ("quarantined", "ignored") and got[1] != "",
               "corpus file %s: %s with a reason (%s)" % (n, got[0], got[1]))
-check(sum(1 for s, _, _ in rows.values() if s == "stored") == len(good),
-      "only the phantom series' files are stored")
+check(sum(1 for s, _, _ in rows.values() if s == "stored") ==
+      len(good) + len(hostile) + len(partial) - 1, "only the phantom series' files are stored")
 
 # ---- a writer holds the store for 10 s while a series arrives ----
 con = sqlite3.connect(db, timeout=30, isolation_level=None)
@@ -112,13 +148,14 @@ for p in later:
 while time.monotonic() - t0 < 10:
     time.sleep(0.5)
     check(d.alive(), "alive while the store is locked")
-check(stored_series(db) == 1, "nothing could be stored while locked")
+check(stored_series(db) == 3, "nothing could be stored while locked")
 con.execute("ROLLBACK")
 con.close()
-wait_for(lambda: stored_series(db) == 2, 60, "the series stored after the lock")
+wait_for(lambda: stored_series(db) == 4, 60, "the series stored after the lock")
 wait_for(drained, 30, "its files archived")
 stored = query(db, "SELECT count(*) FROM files WHERE state = 'stored'")[0][0]
-check(stored == len(good) + len(later), "no file lost under the lock (%d stored)" % stored)
+check(stored == len(good) + len(hostile) + len(partial) - 1 + len(later),
+      "no file lost under the lock (%d stored)" % stored)
 q = query(db, "SELECT path FROM files f JOIN series s ON s.id = f.series_id "
               "WHERE s.scanner_id = (SELECT id FROM scanners WHERE station_name = 'ALDMR2') "
               "AND f.state <> 'stored'")
