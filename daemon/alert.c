@@ -4,7 +4,8 @@
  *
  * An alert's life (db.h draws the store's side):
  *   db_alert_add (store.c) -> pending --start()--> running --reap()--> db_alert_mark(ok) -> sent
- *                                                     |        `------> db_alert_mark(failed) -> failed
+ *                                                     |        `------> db_alert_mark(failed) ->
+ * failed
  *                                                     `- over time: killed, then as failed
  *   failed --(retry_s after last_attempt_at, attempts < max_attempts)--> start() again.
  * A crash between the command's end and db_alert_mark runs the command again after the restart:
@@ -101,7 +102,10 @@ void wd_alerts_free(wd_alerts *a)
     free(a);
 }
 
-int wd_alerts_running(const wd_alerts *a) { return a ? a->n_running : 0; }
+int wd_alerts_running(const wd_alerts *a)
+{
+    return a ? a->n_running : 0;
+}
 
 void wd_alerts_counts(const wd_alerts *a, int *started, int *ok, int *failed)
 {
@@ -446,8 +450,11 @@ static int start_due(wd_alerts *a, db *d)
     candidate *c = calloc(MAX_CANDIDATES, sizeof *c);
     if (!c)
         return 0;
-    collect col = {.a = a, .now_real = wd_now_real(), .n = 0,
-                   .max = free_slots < MAX_CANDIDATES ? free_slots : MAX_CANDIDATES, .c = c};
+    collect col = {.a = a,
+                   .now_real = wd_now_real(),
+                   .n = 0,
+                   .max = free_slots < MAX_CANDIDATES ? free_slots : MAX_CANDIDATES,
+                   .c = c};
     sw_error err;
     sw_error_clear(&err);
     sw_status st = db_alerts_pending(d, a->o.max_attempts, collect_cb, &col, &err);
@@ -498,6 +505,6 @@ void wd_alerts_drain(wd_alerts *a, db *d)
     }
     a->draining = 0;
     if (a->n_running || a->n_done)
-        wd_warn("alert: %d commands still running and %d outcomes unrecorded at exit",
-                a->n_running, a->n_done);
+        wd_warn("alert: %d commands still running and %d outcomes unrecorded at exit", a->n_running,
+                a->n_done);
 }

@@ -21,11 +21,12 @@ int wd_move_force_copy;
 
 /* Suffixes of names under which receivers, browsers, copy tools and editors write a file before it
  * gets its final name (common practice, from memory: dcm4che's storescp writes NAME.part; WinSCP
- * .filepart; Chromium .crdownload; Firefox .part; rsync and many receivers a dot-file; editors NAME~
- * and .swp). Compared without regard to case. */
+ * .filepart; Chromium .crdownload; Firefox .part; rsync and many receivers a dot-file; editors
+ * NAME~ and .swp). Compared without regard to case. */
 static const char *const TEMP_SUFFIXES[] = {
-    ".tmp", ".temp", ".part", ".partial", ".filepart", ".crdownload", ".download", ".incomplete",
-    ".inprogress", ".writing", ".uploading", ".lock", ".swp", ".swx", ".!sync", ".dcmtmp", NULL,
+    ".tmp",      ".temp",       ".part",       ".partial", ".filepart",  ".crdownload",
+    ".download", ".incomplete", ".inprogress", ".writing", ".uploading", ".lock",
+    ".swp",      ".swx",        ".!sync",      ".dcmtmp",  NULL,
 };
 
 int wd_name_is_temporary(const char *base)
@@ -77,7 +78,10 @@ static const uint32_t K256[64] = {
     0x748f82ee, 0x78a5636f, 0x84c87814, 0x8cc70208, 0x90befffa, 0xa4506ceb, 0xbef9a3f7, 0xc67178f2,
 };
 
-static uint32_t ror(uint32_t x, int n) { return (x >> n) | (x << (32 - n)); }
+static uint32_t ror(uint32_t x, int n)
+{
+    return (x >> n) | (x << (32 - n));
+}
 
 static void sha_block(uint32_t h[8], const unsigned char *p)
 {
@@ -92,8 +96,8 @@ static void sha_block(uint32_t h[8], const unsigned char *p)
     }
     uint32_t a = h[0], b = h[1], c = h[2], d = h[3], e = h[4], f = h[5], g = h[6], hh = h[7];
     for (int i = 0; i < 64; i++) {
-        uint32_t t1 = hh + (ror(e, 6) ^ ror(e, 11) ^ ror(e, 25)) + ((e & f) ^ (~e & g)) + K256[i] +
-                      w[i];
+        uint32_t t1 =
+            hh + (ror(e, 6) ^ ror(e, 11) ^ ror(e, 25)) + ((e & f) ^ (~e & g)) + K256[i] + w[i];
         uint32_t t2 = (ror(a, 2) ^ ror(a, 13) ^ ror(a, 22)) + ((a & b) ^ (a & c) ^ (b & c));
         hh = g;
         g = f;
@@ -391,7 +395,8 @@ sw_status wd_pick_target(const char *dir, const char *base, char *out, size_t n,
     char name[256], reason[PATH_MAX + 16];
     wd_safe_component(base, "file", name, 200);
     for (int k = 0; k < 100000; k++) {
-        int len = k ? snprintf(out, n, "%s/%s.%d", dir, name, k) : snprintf(out, n, "%s/%s", dir, name);
+        int len =
+            k ? snprintf(out, n, "%s/%s.%d", dir, name, k) : snprintf(out, n, "%s/%s", dir, name);
         if (len < 0 || (size_t)len >= n)
             return sw_error_set(err, SW_EINVAL, "%s/%s: path too long", dir, name);
         snprintf(reason, sizeof reason, "%s.reason.txt", out);
@@ -421,7 +426,8 @@ static int place_noreplace(const char *src, const char *dst)
     }
     if (errno != EPERM && errno != ENOTSUP && errno != EOPNOTSUPP)
         return -1;
-    /* No hard links either (vfat and the like): check, then rename. One writer owns these folders. */
+    /* No hard links either (vfat and the like): check, then rename. One writer owns these folders.
+     */
     if (exists(dst)) {
         errno = EEXIST;
         return -1;
@@ -486,9 +492,9 @@ static sw_status copy_then_unlink(const char *src, const char *dst, sw_error *er
     }
     outfd = -1;
     if (place_noreplace(tmp, dst) != 0) {
-        rc = errno == EEXIST ? sw_error_set(err, SW_EBUSY, "%s: exists", dst)
-                             : sw_error_set(err, SW_EIO, "%s: cannot create: %s", dst,
-                                            strerror(errno));
+        rc = errno == EEXIST
+                 ? sw_error_set(err, SW_EBUSY, "%s: exists", dst)
+                 : sw_error_set(err, SW_EIO, "%s: cannot create: %s", dst, strerror(errno));
         goto out;
     }
     made = 0;
@@ -589,9 +595,11 @@ static int any_pattern(const char *patterns, const char *value)
 
 wd_match wd_classify(const wd_config *c, const dcm_image *d)
 {
-    if (any_pattern(c->t1_match, d->series_description) || any_pattern(c->t1_match, d->protocol_name))
+    if (any_pattern(c->t1_match, d->series_description) ||
+        any_pattern(c->t1_match, d->protocol_name))
         return WD_MATCH_T1;
-    if (any_pattern(c->t2_match, d->series_description) || any_pattern(c->t2_match, d->protocol_name))
+    if (any_pattern(c->t2_match, d->series_description) ||
+        any_pattern(c->t2_match, d->protocol_name))
         return WD_MATCH_T2;
     return c->match_by_content ? WD_MATCH_CONTENT : WD_MATCH_NONE;
 }

@@ -12,22 +12,23 @@
 
 static void usage(FILE *f)
 {
-    fprintf(f,
-            "usage: slicewarden reanalyze [-c FILE] [--db FILE] [--no-png] [--alerts]\n"
-            "                             (--series UID... | --since DATE [--until DATE])\n"
-            "Measures stored series again from their files (archived location, else the path they\n"
-            "arrived under) with the current settings. Each series gets a new run; earlier runs\n"
-            "stay as they are.\n"
-            "  -c, --config FILE  configuration (default %s when it exists)\n"
-            "  --db FILE          the database (overrides [watch] database)\n"
-            "  --series UID       a SeriesInstanceUID (repeatable)\n"
-            "  --since DATE       series acquired on or after DATE (YYYY-MM-DD[THH:MM:SS])\n"
-            "  --until DATE       ... and before DATE\n"
-            "  --no-png           do not write annotated PNGs\n"
-            "  --alerts           record alerts for warn and fail results (off: a re-analysis of\n"
-            "                     history does not page anyone)\n"
-            "Exit status: 0 every series measured, 1 some could not be, 2 usage or configuration.\n",
-            WD_DEFAULT_CONFIG);
+    fprintf(
+        f,
+        "usage: slicewarden reanalyze [-c FILE] [--db FILE] [--no-png] [--alerts]\n"
+        "                             (--series UID... | --since DATE [--until DATE])\n"
+        "Measures stored series again from their files (archived location, else the path they\n"
+        "arrived under) with the current settings. Each series gets a new run; earlier runs\n"
+        "stay as they are.\n"
+        "  -c, --config FILE  configuration (default %s when it exists)\n"
+        "  --db FILE          the database (overrides [watch] database)\n"
+        "  --series UID       a SeriesInstanceUID (repeatable)\n"
+        "  --since DATE       series acquired on or after DATE (YYYY-MM-DD[THH:MM:SS])\n"
+        "  --until DATE       ... and before DATE\n"
+        "  --no-png           do not write annotated PNGs\n"
+        "  --alerts           record alerts for warn and fail results (off: a re-analysis of\n"
+        "                     history does not page anyone)\n"
+        "Exit status: 0 every series measured, 1 some could not be, 2 usage or configuration.\n",
+        WD_DEFAULT_CONFIG);
 }
 
 typedef struct idlist {
@@ -196,10 +197,14 @@ static int redo(db *d, const wd_settings *s, int64_t series_id, int png, int ale
     if (!measured)
         snprintf(fail_why, sizeof fail_why, "not measurable: %s", e3.msg);
     const char *label = sc.alias[0] ? sc.alias : wd_config_alias(&s->cfg, sc.station);
-    wd_series_ctx ctx = {.series_id = series_id, .scanner_id = os.scanner_id,
-                         .scanner_label = label, .station = sc.station,
-                         .images_dir = png ? s->cfg.images : NULL, .config_hash = s->hash,
-                         .tolerance_key = wd_tolerance_key(match, imgs[0]), .alerts = alerts};
+    wd_series_ctx ctx = {.series_id = series_id,
+                         .scanner_id = os.scanner_id,
+                         .scanner_label = label,
+                         .station = sc.station,
+                         .images_dir = png ? s->cfg.images : NULL,
+                         .config_hash = s->hash,
+                         .tolerance_key = wd_tolerance_key(match, imgs[0]),
+                         .alerts = alerts};
     wd_store_result res;
     if (db_begin(d, &err) != SW_OK)
         goto fail;
@@ -225,8 +230,8 @@ static int redo(db *d, const wd_settings *s, int64_t series_id, int png, int ale
         goto fail;
     began = 0;
     wd_info("series %s #%d %s [re-analysis, %d images, run %lld]: %s; verdict %s", label,
-            m.first ? m.first->series_number : 0, os.uid, n_img, (long long)res.run_id,
-            res.summary, db_verdict_name(res.verdict));
+            m.first ? m.first->series_number : 0, os.uid, n_img, (long long)res.run_id, res.summary,
+            db_verdict_name(res.verdict));
     rc = measured ? 0 : 1;
     goto out;
 fail:
@@ -275,7 +280,10 @@ int wd_cmd_reanalyze(int argc, char **argv)
         case 'P': png = 0; break;
         case 'a': alerts = 1; break;
         case 'v': verbose = 1; break;
-        case 'h': usage(stdout); rc = 0; goto out;
+        case 'h':
+            usage(stdout);
+            rc = 0;
+            goto out;
         default: usage(stderr); goto out;
         }
     }
@@ -334,7 +342,8 @@ int wd_cmd_reanalyze(int argc, char **argv)
     for (int i = 0; i < ids.n; i++)
         if (redo(d, s, ids.v[i], png, alerts) != 0)
             bad = 1;
-    printf("slicewarden reanalyze: %d series%s\n", ids.n, bad ? ", some could not be measured" : "");
+    printf("slicewarden reanalyze: %d series%s\n", ids.n,
+           bad ? ", some could not be measured" : "");
     rc = bad ? 1 : 0;
 out:
     db_cursor_close(cur);

@@ -121,18 +121,19 @@ static void flatten_thickness(flat *f, const an_thickness *t, const wd_method *m
     if (isfinite(t->nominal_mm))
         thickness_warn_limits(tol, t->nominal_mm, &wlo, &whi);
     json_t *d = json_object();
-    json_object_set_new(d, "method", json_string(two ? "tilt-corrected crossed ramps"
-                                                    : method->model.method == AN_METHOD_SINGLE_RAMP
-                                                        ? "single ramp (NEMA MS 5)"
-                                                        : "single wedge (NEMA MS 5)"));
+    json_object_set_new(d, "method",
+                        json_string(two ? "tilt-corrected crossed ramps"
+                                    : method->model.method == AN_METHOD_SINGLE_RAMP
+                                        ? "single ramp (NEMA MS 5)"
+                                        : "single wedge (NEMA MS 5)"));
     json_object_set_new(d, "acr_mm", jnum(t->acr_mm));
     json_object_set_new(d, "tilt_deg", jnum(t->tilt_deg));
     json_object_set_new(d, "warn_low_mm", jnum(wlo));
     json_object_set_new(d, "warn_high_mm", jnum(whi));
     json_object_set_new(d, "tolerance_set", json_string(tol->name));
-    row_note(f, "slice_thickness", t->slice, t->measured ? t->corrected_mm : NAN,
-             t->uncertainty_mm, "mm", t->measured ? wd_db_verdict(t->verdict) : DB_UNMEASURABLE,
-             why, t->reason, t->nominal_mm, t->limit_lo_mm, t->limit_hi_mm, d);
+    row_note(f, "slice_thickness", t->slice, t->measured ? t->corrected_mm : NAN, t->uncertainty_mm,
+             "mm", t->measured ? wd_db_verdict(t->verdict) : DB_UNMEASURABLE, why, t->reason,
+             t->nominal_mm, t->limit_lo_mm, t->limit_hi_mm, d);
     const char *top_why = t->top.reason[0] ? t->top.reason : why;
     row(f, "ramp_length_top", t->slice, t->top.measured ? t->top.length_mm : NAN,
         t->top.length_unc_mm, "mm", DB_INFO, top_why, NAN, NAN, NAN,
@@ -162,7 +163,7 @@ static void flatten_position(flat *f, const an_position *p, int k, const an_seri
     const char *why = p->reason[0] ? p->reason : NULL;
     if (!why) {
         snprintf(why_buf, sizeof why_buf, "%s",
-                 p->slice > 0 ? "bar ends not found"
+                 p->slice > 0   ? "bar ends not found"
                  : r->reason[0] ? r->reason
                                 : "wedge slice not identified");
         why = why_buf;
@@ -204,8 +205,8 @@ sw_status wd_flatten(const wd_measured *m, const wd_method *method, wd_row_fn fn
         const char *pm_why = "needs both wedge slices measured";
         info(&f, "position_offset", 0, pm->measured ? pm->offset_mm : NAN, pm->offset_unc_mm, "mm",
              pm_why);
-        info(&f, "position_scale", 0, pm->measured ? pm->scale_percent : NAN,
-             pm->scale_unc_percent, "%", pm_why);
+        info(&f, "position_scale", 0, pm->measured ? pm->scale_percent : NAN, pm->scale_unc_percent,
+             "%", pm_why);
         info(&f, "phantom_pitch", 0, r->pitch_measured ? r->pitch_deg : NAN, r->pitch_unc_deg,
              "deg", "needs the ramp and the wedge displacement on the ramp slice");
         const char *why = r->reason[0] ? r->reason : "not measured";
@@ -259,9 +260,9 @@ static sw_status sink_row(void *ctx, const db_measurement *m, sw_error *err)
     s->n_rows++;
     int warn = m->verdict == DB_WARN, fail = m->verdict == DB_FAIL;
     /* A result that could not be measured is worth one notice per run, not one per row. */
-    int unmeasurable = m->verdict == DB_UNMEASURABLE &&
-                       (!strcmp(m->metric, "slice_thickness") ||
-                        !strcmp(m->metric, "bar_length_difference"));
+    int unmeasurable =
+        m->verdict == DB_UNMEASURABLE &&
+        (!strcmp(m->metric, "slice_thickness") || !strcmp(m->metric, "bar_length_difference"));
     if (unmeasurable)
         for (int i = 0; i < s->n_alerts; i++)
             if (s->alert[i].verdict == DB_UNMEASURABLE)
@@ -328,8 +329,10 @@ static void write_pngs(const wd_series_ctx *ctx, const wd_measured *m, int64_t r
             if (snprintf(p->path, sizeof p->path, "%s/run%lld_e%d_s%02d.png", dir,
                          (long long)run_id, p->echo, p->slice) >= (int)sizeof p->path)
                 continue;
-            rp_labels labels = {.scanner = ctx->scanner_label, .series = number,
-                                .description = d->series_description, .date = date,
+            rp_labels labels = {.scanner = ctx->scanner_label,
+                                .series = number,
+                                .description = d->series_description,
+                                .date = date,
                                 .echo = e->echo_number};
             sw_error_clear(&err);
             if (rp_annotate_slice_png(p->path, &e->view[idx[k]], idx[k], e->res, &labels, NULL,
@@ -396,7 +399,8 @@ sw_status wd_store_run(db *d, const wd_series_ctx *ctx, const wd_method *method,
     sw_status rc = SW_OK;
     sink *s = NULL;
     memset(out, 0, sizeof *out);
-    db_run_info ri = {.program_version = SW_VERSION, .config_hash = ctx->config_hash,
+    db_run_info ri = {.program_version = SW_VERSION,
+                      .config_hash = ctx->config_hash,
                       .phantom_model = method->model.name[0] ? method->model.name : "unnamed",
                       .tolerance_set = method->tol.name[0] ? method->tol.name : "unnamed"};
     if ((rc = db_run_begin(d, ctx->series_id, &ri, &out->run_id, err)) != SW_OK)
@@ -426,10 +430,15 @@ sw_status wd_store_run(db *d, const wd_series_ctx *ctx, const wd_method *method,
         goto out;
     for (int i = 0; ctx->alerts && i < s->n_alerts; i++) {
         const pending_alert *a = &s->alert[i];
-        db_alert_info ai = {.kind = a->kind, .scanner_id = ctx->scanner_id,
-                            .series_id = ctx->series_id, .run_id = out->run_id,
-                            .metric = a->metric, .value = a->value, .limit = a->limit,
-                            .verdict = a->verdict, .message = a->message,
+        db_alert_info ai = {.kind = a->kind,
+                            .scanner_id = ctx->scanner_id,
+                            .series_id = ctx->series_id,
+                            .run_id = out->run_id,
+                            .metric = a->metric,
+                            .value = a->value,
+                            .limit = a->limit,
+                            .verdict = a->verdict,
+                            .message = a->message,
                             .png_path = png_for(out, a->echo, a->slice)};
         int64_t id = 0;
         if ((rc = db_alert_add(d, &ai, &id, err)) != SW_OK)

@@ -6,15 +6,12 @@
  * A file's life (states in the database, db.h; the function that makes each move):
  *
  *   take_file: db_file_add            parse: db_file_parsed           measure_series (one txn):
- *   ---------------------------> seen ----------------------> parsed -----------------------> stored
- *                                  |                            |     db_series_files_transition
- *        parse: to_final           |                            |     (parsed -> measured -> stored)
- *   (unreadable, not DICOM, ...)   v                            v
- *                        quarantined (reason) <--- measure_series: unreadable pixels, series failed
- *                        ignored (reason)     <--- parse: not MR, not a phantom series, duplicate
- *                                                  SOP instance, late for a measured series;
- *                                                  measure_series: content check failed
- *   The transaction that makes a state final also records the file's target (reserve:
+ *   ---------------------------> seen ----------------------> parsed ----------------------->
+ * stored |                            |     db_series_files_transition parse: to_final           |
+ * |     (parsed -> measured -> stored) (unreadable, not DICOM, ...)   v v quarantined (reason) <---
+ * measure_series: unreadable pixels, series failed ignored (reason)     <--- parse: not MR, not a
+ * phantom series, duplicate SOP instance, late for a measured series; measure_series: content check
+ * failed The transaction that makes a state final also records the file's target (reserve:
  *   db_file_set_location); after the commit, finish_move writes NAME.reason.txt beside quarantined
  *   and ignored files and moves the file (never overwriting). What take_file learns of one file is
  *   one transaction (txn_begin .. txn_commit, with its mirror in memory undone on a rollback); a
@@ -24,6 +21,7 @@
  * by path and content and take_file continues from its state (a final file still in the folder is
  * moved; a recorded target that already holds the same bytes means the move had finished and only
  * the source is left). Series not yet stored are rebuilt from the database (rebuild). */
+#include <dirent.h>
 #include <errno.h>
 #include <fcntl.h>
 #include <getopt.h>
@@ -37,7 +35,6 @@
 #include <sys/inotify.h>
 #include <sys/signalfd.h>
 #include <sys/stat.h>
-#include <dirent.h>
 #include <time.h>
 #include <unistd.h>
 
@@ -96,18 +93,18 @@ static sw_status absolute(char *p, size_t n, sw_error *err)
     return SW_OK;
 }
 
-sw_status wd_settings_load(const char *path, const char *folder, const char *database,
-                           double quiet, wd_settings *s, sw_error *err)
+sw_status wd_settings_load(const char *path, const char *folder, const char *database, double quiet,
+                           wd_settings *s, sw_error *err)
 {
     sw_status rc = SW_OK;
     wd_config_default(&s->cfg);
     if (path && (rc = wd_config_load(&s->cfg, path, err)) != SW_OK)
         return rc;
-    if (folder && sw_strlcpy(s->cfg.folder, folder, sizeof s->cfg.folder) >=
-                      sizeof s->cfg.folder - 1)
+    if (folder &&
+        sw_strlcpy(s->cfg.folder, folder, sizeof s->cfg.folder) >= sizeof s->cfg.folder - 1)
         return sw_error_set(err, SW_EINVAL, "--folder: path too long");
-    if (database && sw_strlcpy(s->cfg.database, database, sizeof s->cfg.database) >=
-                        sizeof s->cfg.database - 1)
+    if (database &&
+        sw_strlcpy(s->cfg.database, database, sizeof s->cfg.database) >= sizeof s->cfg.database - 1)
         return sw_error_set(err, SW_EINVAL, "--db: path too long");
     if (quiet >= 0)
         s->cfg.quiet_seconds = quiet;
@@ -243,7 +240,7 @@ static void set_del(strset *t, const char *s)
 
 typedef struct qitem {
     char *path;
-    double due;  /* monotonic */
+    double due; /* monotonic */
     int tries;
     int scanned; /* found by listing a folder, not announced finished by inotify */
 } qitem;
@@ -256,7 +253,10 @@ typedef struct queue {
     strset set;
 } queue;
 
-static size_t queue_len(const queue *q) { return q->n - q->head + q->nlate; }
+static size_t queue_len(const queue *q)
+{
+    return q->n - q->head + q->nlate;
+}
 
 static int push_item(qitem **v, size_t *n, size_t *cap, qitem it)
 {
@@ -277,8 +277,8 @@ static int enqueue_item(queue *q, const char *path, double delay, int tries, int
 {
     if (set_has(&q->set, path))
         return 0;
-    qitem it = {.path = strdup(path), .due = wd_now_mono() + delay, .tries = tries,
-                .scanned = scanned};
+    qitem it = {
+        .path = strdup(path), .due = wd_now_mono() + delay, .tries = tries, .scanned = scanned};
     if (!it.path)
         return -1;
     int rc = delay > 0 ? push_item(&q->late, &q->nlate, &q->caplate, it)
@@ -753,10 +753,10 @@ static void scanner_dir(const char *station, const char *serial, char *out, size
 typedef struct fmove {
     int64_t id;
     const char *path;
-    const char *hash;        /* of the bytes at path now (verified by the caller) */
-    db_file_state state;     /* final */
+    const char *hash;    /* of the bytes at path now (verified by the caller) */
+    db_file_state state; /* final */
     const char *reason;
-    const char *location;    /* recorded target, "" when none */
+    const char *location; /* recorded target, "" when none */
     int64_t series_id;
 } fmove;
 
@@ -881,8 +881,7 @@ static sw_status finish_move(watcher *w, const fmove *m, sw_error *err)
         if (!target[0]) {
             if ((rc = target_dir(w, m, dir, sizeof dir, err)) != SW_OK)
                 return rc;
-            if ((rc = wd_pick_target(dir, base_name(m->path), target, sizeof target, err)) !=
-                SW_OK)
+            if ((rc = wd_pick_target(dir, base_name(m->path), target, sizeof target, err)) != SW_OK)
                 return rc;
             /* Recorded before the move, so that a crash in between finds where it was going. */
             if ((rc = db_file_set_location(w->d, m->id, target, err)) != SW_OK)
@@ -1011,8 +1010,13 @@ static void run_jobs(watcher *w)
     /* Taken one by one from the front: a move may queue nothing here, but keep it simple. */
     for (size_t i = 0; i < w->njobs; i++) {
         job *j = &w->jobs[i];
-        fmove m = {.id = j->id, .path = j->path, .hash = j->hash, .state = j->state,
-                   .reason = j->reason, .location = j->location, .series_id = j->series_id};
+        fmove m = {.id = j->id,
+                   .path = j->path,
+                   .hash = j->hash,
+                   .state = j->state,
+                   .reason = j->reason,
+                   .location = j->location,
+                   .series_id = j->series_id};
         (void)move_or_report(w, &m);
         job_free(j);
     }
@@ -1053,8 +1057,13 @@ static sw_status to_final(watcher *w, int64_t id, const char *path, const char *
         wd_info("%s: ignored: %s", path, reason);
     count_final(w, to);
     char target[PATH_MAX];
-    fmove m = {.id = id, .path = path, .hash = hash, .state = to, .reason = reason,
-               .location = "", .series_id = series_id};
+    fmove m = {.id = id,
+               .path = path,
+               .hash = hash,
+               .state = to,
+               .reason = reason,
+               .location = "",
+               .series_id = series_id};
     reserve(w, &m, target, sizeof target);
     push_job(w, &m);
     return SW_OK;
@@ -1350,7 +1359,10 @@ static void note_series(int64_t id)
     snprintf(crash_note, sizeof crash_note, "series %lld\n", (long long)id);
 }
 
-static void note_clear(void) { crash_note[0] = '\0'; }
+static void note_clear(void)
+{
+    crash_note[0] = '\0';
+}
 
 typedef struct crash_info {
     int sig;
@@ -1412,7 +1424,10 @@ static int state_cb(void *ctx, const db_series_rec *r)
     return 0;
 }
 
-static int db_retryable(sw_status st) { return st == SW_EBUSY || st == SW_EDB || st == SW_EIO; }
+static int db_retryable(sw_status st)
+{
+    return st == SW_EBUSY || st == SW_EDB || st == SW_EIO;
+}
 
 typedef struct file_look {
     db_file_state state;
@@ -1467,8 +1482,13 @@ static sw_status follow_rename(watcher *w, int64_t id, const char *path, const c
         }
     if (hl->state == DB_FILE_STORED) {
         /* Measured and stored, but its move had not happened: it happens from here. */
-        fmove m = {.id = holder, .path = path, .hash = hash, .state = DB_FILE_STORED,
-                   .reason = "", .location = "", .series_id = hl->series_id};
+        fmove m = {.id = holder,
+                   .path = path,
+                   .hash = hash,
+                   .state = DB_FILE_STORED,
+                   .reason = "",
+                   .location = "",
+                   .series_id = hl->series_id};
         push_job(w, &m);
     }
     return SW_OK;
@@ -1512,9 +1532,10 @@ static int parse(watcher *w, int64_t id, const char *path, const wd_blob *b)
         goto out;
     }
     if (!d->sop_instance_uid[0] || !d->series_instance_uid[0] || !d->study_instance_uid[0]) {
-        snprintf(why, sizeof why, "no %s", !d->sop_instance_uid[0] ? "SOPInstanceUID"
-                                         : !d->series_instance_uid[0] ? "SeriesInstanceUID"
-                                                                      : "StudyInstanceUID");
+        snprintf(why, sizeof why, "no %s",
+                 !d->sop_instance_uid[0]      ? "SOPInstanceUID"
+                 : !d->series_instance_uid[0] ? "SeriesInstanceUID"
+                                              : "StudyInstanceUID");
         st = to_final(w, id, path, hash, DB_FILE_SEEN, DB_FILE_QUARANTINED, why, 0, &err);
         goto out;
     }
@@ -1553,8 +1574,10 @@ static int parse(watcher *w, int64_t id, const char *path, const wd_blob *b)
         goto out;
     }
     const char *alias = wd_config_alias(&w->s->cfg, d->station_name);
-    db_scanner_info si = {.station_name = d->station_name, .device_serial = d->device_serial,
-                          .manufacturer = d->manufacturer, .model = d->model,
+    db_scanner_info si = {.station_name = d->station_name,
+                          .device_serial = d->device_serial,
+                          .manufacturer = d->manufacturer,
+                          .model = d->model,
                           .institution = d->institution,
                           .site_alias = strcmp(alias, d->station_name) ? alias : NULL};
     int64_t scanner_id = 0, series_id = 0;
@@ -1596,10 +1619,9 @@ static int parse(watcher *w, int64_t id, const char *path, const wd_blob *b)
             /* Its series was measured already: recorded in it, but not measured again. */
             if ((st = db_file_parsed(w->d, id, d->sop_instance_uid, series_id, &err)) != SW_OK)
                 goto out;
-            snprintf(why, sizeof why, "arrived after its series %s was %s",
-                     d->series_instance_uid, db_series_state_name(sl.state));
-            st = to_final(w, id, path, hash, DB_FILE_PARSED, DB_FILE_IGNORED, why, series_id,
-                          &err);
+            snprintf(why, sizeof why, "arrived after its series %s was %s", d->series_instance_uid,
+                     db_series_state_name(sl.state));
+            st = to_final(w, id, path, hash, DB_FILE_PARSED, DB_FILE_IGNORED, why, series_id, &err);
             goto out;
         }
         if (!(s = series_add(w, series_id))) {
@@ -1645,8 +1667,8 @@ static int reattach(watcher *w, int64_t id, const char *path, const wd_blob *b, 
     dcm_file *f = NULL;
     int result = TAKEN;
     if (dcm_read_buffer(b->data, b->len, path, NULL, &f, &err) != SW_OK) {
-        if (to_final(w, id, path, b->hash, DB_FILE_PARSED, DB_FILE_QUARANTINED, err.msg, 0,
-                     &err) != SW_OK)
+        if (to_final(w, id, path, b->hash, DB_FILE_PARSED, DB_FILE_QUARANTINED, err.msg, 0, &err) !=
+            SW_OK)
             result = RETRY;
         return result;
     }
@@ -1725,15 +1747,16 @@ static int take_file(watcher *w, const char *path, int scanned)
     char unreadable_why[SW_ERROR_MAX];
     if (unreadable) {
         /* No content to hash: the file is known by its identity on disk instead. */
-        snprintf(hash, sizeof hash, "unreadable:%llx:%llx:%lld:%lld",
-                 (unsigned long long)st.st_dev, (unsigned long long)st.st_ino,
-                 (long long)st.st_size, (long long)st.st_mtim.tv_sec);
+        snprintf(hash, sizeof hash, "unreadable:%llx:%llx:%lld:%lld", (unsigned long long)st.st_dev,
+                 (unsigned long long)st.st_ino, (long long)st.st_size,
+                 (long long)st.st_mtim.tv_sec);
         sw_strlcpy(unreadable_why, err.msg, sizeof unreadable_why);
         sw_error_clear(&err);
     } else {
         sw_strlcpy(hash, b.hash, sizeof hash);
     }
-    db_file_info fi = {.path = path, .content_hash = hash,
+    db_file_info fi = {.path = path,
+                       .content_hash = hash,
                        .size = unreadable ? (int64_t)st.st_size : (int64_t)b.len};
     int64_t id = 0;
     db_file_outcome how;
@@ -1763,8 +1786,13 @@ static int take_file(watcher *w, const char *path, int scanned)
     }
     if (db_file_state_final(fl.state)) {
         txn_rollback(w); /* nothing was written: the file is known */
-        fmove m = {.id = id, .path = path, .hash = hash, .state = fl.state, .reason = fl.reason,
-                   .location = fl.location, .series_id = fl.series_id};
+        fmove m = {.id = id,
+                   .path = path,
+                   .hash = hash,
+                   .state = fl.state,
+                   .reason = fl.reason,
+                   .location = fl.location,
+                   .series_id = fl.series_id};
         result = move_or_report(w, &m) == 0 ? TAKEN : SKIPPED; /* a retry is queued */
         goto out;
     }
@@ -1773,8 +1801,8 @@ static int take_file(watcher *w, const char *path, int scanned)
             result = RETRY;
             goto out;
         }
-        if (to_final(w, id, path, hash, fl.state, DB_FILE_QUARANTINED, unreadable_why, 0,
-                     &err) != SW_OK)
+        if (to_final(w, id, path, hash, fl.state, DB_FILE_QUARANTINED, unreadable_why, 0, &err) !=
+            SW_OK)
             result = RETRY;
         goto out;
     }
@@ -1825,9 +1853,10 @@ static void log_series(watcher *w, const wseries *s, const char *how, const wd_s
                        int n_images)
 {
     (void)w;
-    wd_info("series %s #%d %s [%s, %d images, run %lld]: %s; verdict %s", s->label[0] ? s->label
-                                                                           : s->station[0] ? s->station
-                                                                                           : "?",
+    wd_info("series %s #%d %s [%s, %d images, run %lld]: %s; verdict %s",
+            s->label[0]     ? s->label
+            : s->station[0] ? s->station
+                            : "?",
             s->number, s->uid, how, n_images, (long long)r->run_id, r->summary,
             db_verdict_name(r->verdict));
 }
@@ -1841,7 +1870,7 @@ static int measure_series(watcher *w, wseries *s, int quiet)
     sw_status st = SW_OK;
     int result = TAKEN, began = 0, n_img = 0;
     loaded *ld = NULL;
-    char (*targets)[PATH_MAX] = NULL;
+    char(*targets)[PATH_MAX] = NULL;
     const dcm_image **imgs = NULL;
     wd_measured m;
     memset(&m, 0, sizeof m);
@@ -1862,7 +1891,8 @@ static int measure_series(watcher *w, wseries *s, int quiet)
     how = s->state == DB_SERIES_QUIET ? "quiet" : "complete";
 
     /* 2. A series taken on content alone must look like the phantom series. */
-    int not_phantom = s->match == WD_MATCH_CONTENT && !content_fits(w, s, fail_why, sizeof fail_why);
+    int not_phantom =
+        s->match == WD_MATCH_CONTENT && !content_fits(w, s, fail_why, sizeof fail_why);
 
     /* 3. Pixels, checked against the content seen at arrival. */
     note_series(s->id);
@@ -1918,8 +1948,7 @@ static int measure_series(watcher *w, wseries *s, int quiet)
     method.model = w->s->model;
     method.params = w->s->params;
     const dcm_image *first = n_img ? imgs[0] : NULL;
-    method.tol = *wd_tolerances_for(&w->s->tol, s->station,
-                                    wd_tolerance_key(s->match, first));
+    method.tol = *wd_tolerances_for(&w->s->tol, s->station, wd_tolerance_key(s->match, first));
     int measured = 0;
     if (!not_phantom && n_img) {
         sw_error e3;
@@ -1950,11 +1979,14 @@ static int measure_series(watcher *w, wseries *s, int quiet)
             SW_OK)
             goto out;
     } else {
-        wd_series_ctx ctx = {.series_id = s->id, .scanner_id = s->scanner_id,
-                             .scanner_label = s->label, .station = s->station,
+        wd_series_ctx ctx = {.series_id = s->id,
+                             .scanner_id = s->scanner_id,
+                             .scanner_label = s->label,
+                             .station = s->station,
                              .images_dir = w->no_png ? NULL : w->s->cfg.images,
                              .config_hash = w->s->hash,
-                             .tolerance_key = wd_tolerance_key(s->match, first), .alerts = 1};
+                             .tolerance_key = wd_tolerance_key(s->match, first),
+                             .alerts = 1};
         if ((st = wd_store_run(w->d, &ctx, &method, measured ? &m : NULL, fail_why, &res, &err)) !=
             SW_OK)
             goto out;
@@ -1968,8 +2000,8 @@ static int measure_series(watcher *w, wseries *s, int quiet)
                                    &e4) != SW_OK)
                 wd_error("series %s: drift check: %s", s->uid, e4.msg);
             if (s->state != DB_SERIES_MEASURED &&
-                (st = db_series_set_state(w->d, s->id, s->state, DB_SERIES_MEASURED, NULL,
-                                          &err)) != SW_OK)
+                (st = db_series_set_state(w->d, s->id, s->state, DB_SERIES_MEASURED, NULL, &err)) !=
+                    SW_OK)
                 goto out;
             if ((st = db_series_files_transition(w->d, s->id, DB_FILE_PARSED, DB_FILE_MEASURED,
                                                  NULL, NULL, &err)) != SW_OK ||
@@ -2000,8 +2032,11 @@ static int measure_series(watcher *w, wseries *s, int quiet)
     }
     for (int i = 0; i < nfiles; i++)
         if (needs_move(&ld[i])) {
-            fmove mv = {.id = s->files[i].id, .path = s->files[i].path,
-                        .hash = s->files[i].hash, .state = ld[i].fate, .series_id = s->id};
+            fmove mv = {.id = s->files[i].id,
+                        .path = s->files[i].path,
+                        .hash = s->files[i].hash,
+                        .state = ld[i].fate,
+                        .series_id = s->id};
             reserve(w, &mv, targets[i], sizeof targets[i]);
         }
     if ((st = db_commit(w->d, &err)) != SW_OK)
@@ -2034,8 +2069,12 @@ static int measure_series(watcher *w, wseries *s, int quiet)
         count_final(w, ld[i].fate);
         if (!needs_move(&ld[i]))
             continue;
-        fmove mv = {.id = s->files[i].id, .path = s->files[i].path, .hash = s->files[i].hash,
-                    .state = ld[i].fate, .reason = ld[i].why, .location = targets[i],
+        fmove mv = {.id = s->files[i].id,
+                    .path = s->files[i].path,
+                    .hash = s->files[i].hash,
+                    .state = ld[i].fate,
+                    .reason = ld[i].why,
+                    .location = targets[i],
                     .series_id = s->id};
         push_job(w, &mv);
     }
@@ -2206,7 +2245,8 @@ static sw_status rebuild(watcher *w, sw_error *err)
             }
             dcm_file *df = NULL;
             note_file(f->path, f->hash);
-            int bad = rs != SW_OK || dcm_read_buffer(b.data, b.len, f->path, NULL, &df, &e2) != SW_OK;
+            int bad =
+                rs != SW_OK || dcm_read_buffer(b.data, b.len, f->path, NULL, &df, &e2) != SW_OK;
             note_clear();
             if (bad) {
                 char why[SW_ERROR_MAX];
@@ -2290,8 +2330,7 @@ static sw_status quarantine_crashed_file(watcher *w, const crash_info *ci, sw_er
     if (rc == SW_OK && how == DB_FILE_KNOWN)
         rc = db_file_get(w->d, id, file_cb, &fl, err);
     if (rc == SW_OK && (fl.state == DB_FILE_SEEN || fl.state == DB_FILE_PARSED))
-        rc = to_final(w, id, ci->path, hash, fl.state, DB_FILE_QUARANTINED, why, fl.series_id,
-                      err);
+        rc = to_final(w, id, ci->path, hash, fl.state, DB_FILE_QUARANTINED, why, fl.series_id, err);
     if (rc == SW_OK)
         rc = txn_commit(w, err);
     else if (w->in_txn)
@@ -2321,8 +2360,8 @@ static sw_status fail_crashed_series(watcher *w, const crash_info *ci, sw_error 
     if ((rc = txn_begin(w, err)) != SW_OK)
         goto out;
     for (int i = 0; i < pf.n && rc == SW_OK; i++)
-        rc = to_final(w, pf.v[i].id, pf.v[i].path, pf.v[i].hash, pf.v[i].state,
-                      DB_FILE_QUARANTINED, why, ci->series_id, err);
+        rc = to_final(w, pf.v[i].id, pf.v[i].path, pf.v[i].hash, pf.v[i].state, DB_FILE_QUARANTINED,
+                      why, ci->series_id, err);
     if (rc == SW_OK)
         rc = db_series_set_state(w->d, ci->series_id, sl.state, DB_SERIES_FAILED, why, err);
     if (rc == SW_OK)
@@ -2401,8 +2440,10 @@ static void read_signals(watcher *w)
 
 static wd_alert_opts alert_opts(const wd_config *c)
 {
-    wd_alert_opts o = {.command = c->alert_command, .timeout_s = c->alert_timeout_seconds,
-                       .retry_s = c->alert_retry_seconds, .max_attempts = c->alert_max_attempts,
+    wd_alert_opts o = {.command = c->alert_command,
+                       .timeout_s = c->alert_timeout_seconds,
+                       .retry_s = c->alert_retry_seconds,
+                       .max_attempts = c->alert_max_attempts,
                        .max_running = 4};
     return o;
 }
@@ -2570,24 +2611,25 @@ static int loop(watcher *w)
 
 static void usage(FILE *f)
 {
-    fprintf(f,
-            "usage: slicewarden watch [-c FILE] [--folder DIR] [--db FILE] [--once] [--quiet SECONDS]\n"
-            "                         [--no-progress] [--no-png] [-v]\n"
-            "Watches the folder where phantom series arrive, measures each series when it is\n"
-            "complete or quiet, stores the results and moves the files on.\n"
-            "  -c, --config FILE  configuration (default %s when it exists, else built-in defaults)\n"
-            "  --folder DIR       the watch folder (overrides [watch] folder)\n"
-            "  --db FILE          the database (overrides [watch] database)\n"
-            "  --once             process what is in the folder now and exit\n"
-            "  --quiet SECONDS    quiet period (overrides [watch] quiet_seconds; 0 allowed)\n"
-            "  --no-progress      no progress bar with --once (it shows only on a terminal)\n"
-            "  --no-png           no annotated PNGs (a backfill: they take half the time)\n"
-            "  -v, --verbose      debug log\n"
-            "Signals: SIGTERM finishes the series in hand and exits 0; SIGHUP reloads the\n"
-            "configuration (a bad one is refused and the running one kept).\n"
-            "Exit status: 0 done; 1 files or series left to retry, or a fatal error; 2 usage or\n"
-            "configuration error.\n",
-            WD_DEFAULT_CONFIG);
+    fprintf(
+        f,
+        "usage: slicewarden watch [-c FILE] [--folder DIR] [--db FILE] [--once] [--quiet SECONDS]\n"
+        "                         [--no-progress] [--no-png] [-v]\n"
+        "Watches the folder where phantom series arrive, measures each series when it is\n"
+        "complete or quiet, stores the results and moves the files on.\n"
+        "  -c, --config FILE  configuration (default %s when it exists, else built-in defaults)\n"
+        "  --folder DIR       the watch folder (overrides [watch] folder)\n"
+        "  --db FILE          the database (overrides [watch] database)\n"
+        "  --once             process what is in the folder now and exit\n"
+        "  --quiet SECONDS    quiet period (overrides [watch] quiet_seconds; 0 allowed)\n"
+        "  --no-progress      no progress bar with --once (it shows only on a terminal)\n"
+        "  --no-png           no annotated PNGs (a backfill: they take half the time)\n"
+        "  -v, --verbose      debug log\n"
+        "Signals: SIGTERM finishes the series in hand and exits 0; SIGHUP reloads the\n"
+        "configuration (a bad one is refused and the running one kept).\n"
+        "Exit status: 0 done; 1 files or series left to retry, or a fatal error; 2 usage or\n"
+        "configuration error.\n",
+        WD_DEFAULT_CONFIG);
 }
 
 static void summary(watcher *w, FILE *f)
@@ -2601,8 +2643,7 @@ static void summary(watcher *w, FILE *f)
             "unmeasurable), %ld not measured, %d still collecting, %ld alerts (%d sent, %d "
             "failed), %zu files left; %.1f s\n",
             s->files_done, s->stored, s->quarantined, s->ignored, s->moved, s->move_failures,
-            s->series_measured,
-            s->verdict[DB_PASS], s->verdict[DB_WARN], s->verdict[DB_FAIL],
+            s->series_measured, s->verdict[DB_PASS], s->verdict[DB_WARN], s->verdict[DB_FAIL],
             s->verdict[DB_UNMEASURABLE], s->series_failed, w->nseries, s->alerts_recorded, ok,
             failed, queue_len(&w->q), wd_now_mono() - w->started);
 }
@@ -2663,8 +2704,14 @@ int wd_cmd_watch(int argc, char **argv)
         case 'P': no_progress = 1; break;
         case 'N': w->no_png = 1; break;
         case 'v': verbose = 1; break;
-        case 'h': usage(stdout); rc = 0; goto out;
-        default: usage(stderr); rc = 2; goto out;
+        case 'h':
+            usage(stdout);
+            rc = 0;
+            goto out;
+        default:
+            usage(stderr);
+            rc = 2;
+            goto out;
         }
     }
     if (optind < argc) {

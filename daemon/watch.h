@@ -29,14 +29,14 @@ typedef struct wd_settings {
  * and quiet period (< 0: keep), resolves the output folders and loads the model and tolerance
  * files. Refuses output folders inside the watch folder. On failure err names the file, the line
  * and the reason, and s is not to be used. */
-sw_status wd_settings_load(const char *path, const char *folder, const char *database,
-                           double quiet, wd_settings *s, sw_error *err);
+sw_status wd_settings_load(const char *path, const char *folder, const char *database, double quiet,
+                           wd_settings *s, sw_error *err);
 
 /* ---- names ---- */
 
 /* 1 when base (a file name without folder) is one that receivers and copiers use while a file is
- * still being written (dot-files, *.tmp, *.part, *.partial, NAME~, ...): such files are never taken;
- * their final name arrives by IN_MOVED_TO. */
+ * still being written (dot-files, *.tmp, *.part, *.partial, NAME~, ...): such files are never
+ * taken; their final name arrives by IN_MOVED_TO. */
 int wd_name_is_temporary(const char *base);
 
 /* Makes one safe path component of in: bytes other than [A-Za-z0-9._+-] become '_', a leading '.'
@@ -134,10 +134,10 @@ typedef struct wd_series_ctx {
     int64_t series_id, scanner_id;
     const char *scanner_label; /* alias or station name, for labels and logs */
     const char *station;
-    const char *images_dir;    /* NULL or "": no PNGs */
+    const char *images_dir; /* NULL or "": no PNGs */
     const char *config_hash;
     const char *tolerance_key;
-    int alerts;                /* 1: record an alert for every warn and fail row */
+    int alerts; /* 1: record an alert for every warn and fail row */
 } wd_series_ctx;
 
 typedef struct wd_store_result {
@@ -163,8 +163,8 @@ sw_status wd_flatten(const wd_measured *m, const wd_method *method, wd_row_fn fn
                      sw_error *err);
 
 /* Writes one series' results in the caller's open transaction: a run (done or failed), its rows,
- * alerts for warn and fail rows (when ctx->alerts), and PNGs (written before the rows, named by run).
- * m may be NULL with a failure reason: a failed run is recorded. Does not commit. */
+ * alerts for warn and fail rows (when ctx->alerts), and PNGs (written before the rows, named by
+ * run). m may be NULL with a failure reason: a failed run is recorded. Does not commit. */
 sw_status wd_store_run(db *d, const wd_series_ctx *ctx, const wd_method *method,
                        const wd_measured *m, const char *fail_reason, wd_store_result *out,
                        sw_error *err);
@@ -172,11 +172,11 @@ sw_status wd_store_run(db *d, const wd_series_ctx *ctx, const wd_method *method,
 /* ---- the alert runner (alert.c) ---- */
 typedef struct wd_alerts wd_alerts;
 typedef struct wd_alert_opts {
-    const char *command;   /* run with /bin/sh -c; NULL or "": alerts stay pending */
-    double timeout_s;      /* a command running longer is killed (process group) */
-    double retry_s;        /* a failed command is retried after this long */
-    int max_attempts;      /* give up after this many failed attempts */
-    int max_running;       /* commands running at once */
+    const char *command; /* run with /bin/sh -c; NULL or "": alerts stay pending */
+    double timeout_s;    /* a command running longer is killed (process group) */
+    double retry_s;      /* a failed command is retried after this long */
+    int max_attempts;    /* give up after this many failed attempts */
+    int max_running;     /* commands running at once */
 } wd_alert_opts;
 /* Ownership: on success *out is a new runner the caller frees with wd_alerts_free (which kills and
  * reaps what still runs); on failure *out is NULL. opts is copied. */

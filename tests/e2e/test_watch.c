@@ -34,7 +34,10 @@ static void make_tmp(void)
     cr_assert_not_null(mkdtemp(tmp), "mkdtemp: %s", strerror(errno));
 }
 
-static void remove_tmp(void) { rm_rf(tmp); }
+static void remove_tmp(void)
+{
+    rm_rf(tmp);
+}
 
 TestSuite(watch, .init = make_tmp, .fini = remove_tmp);
 
@@ -100,9 +103,10 @@ Test(watch, sha256_fips_examples)
     }
     unsigned char dig[32];
     wd_sha256_final(&s, dig);
-    static const unsigned char want[32] = {
-        0xcd, 0xc7, 0x6e, 0x5c, 0x99, 0x14, 0xfb, 0x92, 0x81, 0xa1, 0xc7, 0xe2, 0x84, 0xd7, 0x3e, 0x67,
-        0xf1, 0x80, 0x9a, 0x48, 0xa4, 0x97, 0x20, 0x0e, 0x04, 0x6d, 0x39, 0xcc, 0xc7, 0x11, 0x2c, 0xd0};
+    static const unsigned char want[32] = {0xcd, 0xc7, 0x6e, 0x5c, 0x99, 0x14, 0xfb, 0x92,
+                                           0x81, 0xa1, 0xc7, 0xe2, 0x84, 0xd7, 0x3e, 0x67,
+                                           0xf1, 0x80, 0x9a, 0x48, 0xa4, 0x97, 0x20, 0x0e,
+                                           0x04, 0x6d, 0x39, 0xcc, 0xc7, 0x11, 0x2c, 0xd0};
     cr_expect_eq(memcmp(dig, want, 32), 0, "one million 'a'");
 }
 
@@ -143,7 +147,8 @@ Test(watch, blob_refuses_links_and_missing)
     wd_blob b;
     sw_error err;
     sw_error_clear(&err);
-    cr_expect_eq(wd_blob_read(link_path, &b, NULL, &err), SW_EINVAL, "a symbolic link is not taken");
+    cr_expect_eq(wd_blob_read(link_path, &b, NULL, &err), SW_EINVAL,
+                 "a symbolic link is not taken");
     sw_error_clear(&err);
     char gone[400];
     snprintf(gone, sizeof gone, "%s/none", tmp);
@@ -158,13 +163,24 @@ Test(watch, temporary_names)
     /* Names receivers and copy tools use while writing (common practice, from memory), and
      * ordinary DICOM file names that must be taken. */
     static const char *const temp[] = {
-        ".IM0001.dcm",  "IM0001.dcm.part", "IM0001.PART", "x.tmp", "x.TMP", "x.partial",
-        "x.filepart",   "x.crdownload",    "IM0001~",     "#IM#",  "~$lock", ".swp",
-        "x.dcm.inprogress", "",
+        ".IM0001.dcm",
+        "IM0001.dcm.part",
+        "IM0001.PART",
+        "x.tmp",
+        "x.TMP",
+        "x.partial",
+        "x.filepart",
+        "x.crdownload",
+        "IM0001~",
+        "#IM#",
+        "~$lock",
+        ".swp",
+        "x.dcm.inprogress",
+        "",
     };
     static const char *const real[] = {
-        "IM0001.dcm", "MR.2.25.1234", "0CEA50AA", "1.3.12.2.1107.5.2.dcm", "tmp", "part",
-        "IM~0001.dcm", "a.temperature",
+        "IM0001.dcm", "MR.2.25.1234", "0CEA50AA",    "1.3.12.2.1107.5.2.dcm",
+        "tmp",        "part",         "IM~0001.dcm", "a.temperature",
     };
     for (size_t i = 0; i < sizeof temp / sizeof temp[0]; i++)
         cr_expect(wd_name_is_temporary(temp[i]), "'%s' is a name used while writing", temp[i]);
@@ -175,8 +191,19 @@ Test(watch, temporary_names)
 Test(watch, safe_components)
 {
     static const char *const hostile[] = {
-        "../../etc/passwd", "..", ".", "/", "a/b", "-rf", ".hidden", "ALDMR1\n", "caf\xc3\xa9",
-        "with space", "2.25.1234567890", "", NULL,
+        "../../etc/passwd",
+        "..",
+        ".",
+        "/",
+        "a/b",
+        "-rf",
+        ".hidden",
+        "ALDMR1\n",
+        "caf\xc3\xa9",
+        "with space",
+        "2.25.1234567890",
+        "",
+        NULL,
     };
     for (size_t i = 0; i < sizeof hostile / sizeof hostile[0]; i++) {
         char out[64];
@@ -198,7 +225,8 @@ Test(watch, safe_components)
     cr_expect_eq(strlen(small), 7u, "bounded by the buffer");
     /* Made into a path under a folder, nothing escapes it. */
     char path[200];
-    snprintf(path, sizeof path, "%.150s/%.40s", tmp, wd_safe_component("../../x", "x", out, sizeof out));
+    snprintf(path, sizeof path, "%.150s/%.40s", tmp,
+             wd_safe_component("../../x", "x", out, sizeof out));
     cr_expect(wd_path_inside(path, tmp));
 }
 
@@ -287,10 +315,16 @@ static void move_case(int force_copy, const char *src_dir, const char *dst_dir)
     unlink(dst);
 }
 
-Test(watch, move_same_file_system) { move_case(0, tmp, tmp); }
+Test(watch, move_same_file_system)
+{
+    move_case(0, tmp, tmp);
+}
 
 /* Fault injection: the copy path as if the target were on another file system. */
-Test(watch, move_copy_path_by_injection) { move_case(1, tmp, tmp); }
+Test(watch, move_copy_path_by_injection)
+{
+    move_case(1, tmp, tmp);
+}
 
 /* A real second file system when the machine has one (/dev/shm is tmpfs on Debian). */
 Test(watch, move_across_file_systems)
@@ -383,12 +417,18 @@ static db *fresh_db(const char *name, int64_t *scanner, int64_t *series)
     sw_error err;
     sw_error_clear(&err);
     cr_assert_eq(db_open(path, DB_OPEN_RW | DB_OPEN_CREATE, &d, &err), SW_OK, "%s", err.msg);
-    db_scanner_info si = {.station_name = "ALDMR1", .device_serial = "SWS-0001",
+    db_scanner_info si = {.station_name = "ALDMR1",
+                          .device_serial = "SWS-0001",
                           .site_alias = "Alderbrook North 1.5T"};
     cr_assert_eq(db_scanner_upsert(d, &si, scanner, &err), SW_OK, "%s", err.msg);
-    db_series_info se = {.series_instance_uid = "2.25.1", .study_instance_uid = "2.25.2",
-                         .scanner_id = *scanner, .series_number = 3, .description = "T1",
-                         .series_type = "t1", .images_expected = 11, .echoes_expected = 1};
+    db_series_info se = {.series_instance_uid = "2.25.1",
+                         .study_instance_uid = "2.25.2",
+                         .scanner_id = *scanner,
+                         .series_number = 3,
+                         .description = "T1",
+                         .series_type = "t1",
+                         .images_expected = 11,
+                         .echoes_expected = 1};
     cr_assert_eq(db_series_upsert(d, &se, series, NULL, &err), SW_OK, "%s", err.msg);
     return d;
 }
@@ -478,9 +518,15 @@ Test(watch, flatten_rows_meet_the_schema)
 
 static int64_t add_alert(db *d, int64_t scanner, int64_t series, const char *metric, double value)
 {
-    db_alert_info a = {.kind = DB_ALERT_BREACH, .scanner_id = scanner, .series_id = series,
-                       .metric = metric, .value = value, .limit = 5.7, .verdict = DB_FAIL,
-                       .message = "thick\nslice", .png_path = "/x/y.png"};
+    db_alert_info a = {.kind = DB_ALERT_BREACH,
+                       .scanner_id = scanner,
+                       .series_id = series,
+                       .metric = metric,
+                       .value = value,
+                       .limit = 5.7,
+                       .verdict = DB_FAIL,
+                       .message = "thick\nslice",
+                       .png_path = "/x/y.png"};
     int64_t id = 0;
     sw_error err;
     sw_error_clear(&err);
@@ -536,8 +582,8 @@ Test(watch, alert_command_gets_the_facts)
     char out[400], cmd[800];
     snprintf(out, sizeof out, "%s/env.txt", tmp);
     snprintf(cmd, sizeof cmd, "env | grep ^SLICEWARDEN_ | sort > '%s'", out);
-    wd_alert_opts o = {.command = cmd, .timeout_s = 10, .retry_s = 60, .max_attempts = 3,
-                       .max_running = 2};
+    wd_alert_opts o = {
+        .command = cmd, .timeout_s = 10, .retry_s = 60, .max_attempts = 3, .max_running = 2};
     wd_alerts *a = NULL;
     sw_error err;
     sw_error_clear(&err);
@@ -573,8 +619,8 @@ Test(watch, alert_failure_is_retried_later)
     int64_t scanner, series;
     db *d = fresh_db("fail.sqlite", &scanner, &series);
     int64_t id = add_alert(d, scanner, series, "bar_length_difference", 5.5);
-    wd_alert_opts o = {.command = "exit 3", .timeout_s = 10, .retry_s = 1, .max_attempts = 2,
-                       .max_running = 1};
+    wd_alert_opts o = {
+        .command = "exit 3", .timeout_s = 10, .retry_s = 1, .max_attempts = 2, .max_running = 1};
     wd_alerts *a = NULL;
     sw_error err;
     sw_error_clear(&err);
@@ -607,8 +653,11 @@ Test(watch, alert_time_limit_kills_and_never_blocks)
     db *d = fresh_db("slow.sqlite", &scanner, &series);
     int64_t id = add_alert(d, scanner, series, "slice_thickness", 7);
     /* A pipeline: the whole process group must go, not only the shell. */
-    wd_alert_opts o = {.command = "sleep 30 | cat", .timeout_s = 1, .retry_s = 600,
-                       .max_attempts = 3, .max_running = 1};
+    wd_alert_opts o = {.command = "sleep 30 | cat",
+                       .timeout_s = 1,
+                       .retry_s = 600,
+                       .max_attempts = 3,
+                       .max_running = 1};
     wd_alerts *a = NULL;
     sw_error err;
     sw_error_clear(&err);
