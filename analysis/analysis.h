@@ -190,6 +190,9 @@ typedef struct an_phantom_fit {
     double radius_mm;
     double rotation_deg; /* in-plane, counter-clockwise as displayed in the phantom frame */
     int flip_u, flip_v, transpose; /* how the stored image maps to the phantom frame */
+    /* added (additive) */
+    int searched; /* 1: the phantom was searched on this image; 0: no step needed it (a middle
+                     slice of the series), and found, centre and radius mean nothing */
 } an_phantom_fit;
 
 typedef struct an_position_model {

@@ -308,7 +308,12 @@ double an_median(float *v, size_t n)
     float a = an_select(v, n, n / 2);
     if (n % 2)
         return a;
-    float b = an_select(v, n, n / 2 - 1);
+    /* after the selection everything below index n / 2 is at most a: the other middle value is
+     * the largest of those */
+    float b = v[0];
+    for (size_t i = 1; i < n / 2; i++)
+        if (v[i] > b)
+            b = v[i];
     return 0.5 * ((double)a + b);
 }
 

@@ -163,6 +163,26 @@ static an_verdict worst(an_verdict a, an_verdict b)
     return a > b ? a : b;
 }
 
+/* The phantom on image i, searched at most once per level (1: centre and radius from the mask; 2:
+ * with the sub-pixel circle fit, which makes its own mask) and only when a step needs it; the
+ * result's phantom fit follows the latest search. Returns -1 on allocation failure. */
+static int disc_need(const an_image *imgs, int i, int lvl, const an_model *m, an_work *wk,
+                     an_disc *disc, int *level, an_series_result *out)
+{
+    if (level[i] >= lvl)
+        return 0;
+    if (an_find_disc(&imgs[i], m, lvl >= 2, wk, &disc[i]))
+        return -1;
+    level[i] = lvl;
+    an_phantom_fit *pf = &out->phantom[i];
+    pf->searched = 1;
+    pf->found = disc[i].found;
+    pf->centre.x = disc[i].found ? disc[i].xc : NAN;
+    pf->centre.y = disc[i].found ? disc[i].yc : NAN;
+    pf->radius_mm = disc[i].found ? disc[i].r_mm : NAN;
+    return 0;
+}
+
 /* Slice 1 of a pair of wedge slices a, b without the ramps to tell: w toward the last slice is +z
  * of the patient frame for a phantom lying head first, -z feet first (phantom-large.md), so slice
  * 1 is the inferior one head first. Without geometry or for a stack whose normal is far from the
@@ -191,7 +211,8 @@ static void order_by_patient_frame(const an_image *imgs, const an_geom *geo, int
  * allocation failure. */
 static int find_wedge_slices(const an_image *imgs, int n, const int *order, int has_geo,
                              const an_model *m, an_work *wk, an_geom *geo, an_disc *disc,
-                             an_series_result *out, int *first, int *other, int *wsign, double *rot)
+                             int *level, an_series_result *out, int *first, int *other, int *wsign,
+                             double *rot)
 {
     int rc = 0;
     an_position *pos = NULL;
@@ -221,20 +242,11 @@ static int find_wedge_slices(const an_image *imgs, int n, const int *order, int 
             int pr[2] = {a, b};
             int bad = 0;
             for (int q = 0; q < 2 && !bad; q++) {
-                int i = pr[q];
-                if (!disc[i].found)
-                    bad = 1;
-                else if (!isfinite(disc[i].rms_mm)) { /* the coarse disc: refine it */
-                    if (an_find_disc(&imgs[i], m, 1, wk, &disc[i])) {
-                        rc = -1;
-                        goto out;
-                    }
-                    out->phantom[i].found = disc[i].found;
-                    out->phantom[i].centre.x = disc[i].found ? disc[i].xc : NAN;
-                    out->phantom[i].centre.y = disc[i].found ? disc[i].yc : NAN;
-                    out->phantom[i].radius_mm = disc[i].found ? disc[i].r_mm : NAN;
-                    bad = !disc[i].found;
+                if (disc_need(imgs, pr[q], 2, m, wk, disc, level, out)) {
+                    rc = -1;
+                    goto out;
                 }
+                bad = !disc[pr[q]].found;
             }
             if (bad)
                 continue;
@@ -494,26 +506,7 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
                 all_unmeasurable(out, "slice not found: the images are not parallel slices");
                 goto verdicts;
             }
-    /* 2. The phantom on every slice. */
-    int nfound = 0;
-    for (int i = 0; i < n; i++) {
-        if (an_find_disc(&imgs[i], model, 0, &wk, &disc[i])) {
-            st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
-            goto out;
-        }
-        out->phantom[i].found = disc[i].found;
-        if (disc[i].found) {
-            out->phantom[i].centre.x = disc[i].xc;
-            out->phantom[i].centre.y = disc[i].yc;
-            out->phantom[i].radius_mm = disc[i].r_mm;
-            nfound++;
-        }
-    }
-    if (nfound == 0) {
-        all_unmeasurable(out, disc[0].reason[0] ? disc[0].reason : "phantom not found");
-        goto verdicts;
-    }
-    /* 3. Order along the normal (input order without geometry). */
+    /* 2. Order along the normal (input order without geometry). */
     for (int i = 0; i < n; i++)
         order[i] = i;
     if (has_geo)
@@ -523,18 +516,30 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
                 order[j] = order[j - 1];
                 order[j - 1] = t;
             }
-    /* The two ends of the stack (the candidates for the wedge and ramp slices) get the full
-     * sub-pixel circle fit. */
+    /* 3. The phantom, on the slices that need it: the two ends of the stack (the candidates for the
+     * wedge and ramp slices) with the full sub-pixel circle fit; the others when a step below
+     * uses them (a uniform slice for the SNR, interior candidates). Without a phantom on either
+     * end, the first slice in order that has one shows that the series holds a phantom at all. */
+    int level[AN_MAX_IMAGES] = {0}, nfound = 0;
     for (int e = 0; e < (n > 1 ? 2 : 1); e++) {
         int i = e == 0 ? order[0] : order[n - 1];
-        if (an_find_disc(&imgs[i], model, 1, &wk, &disc[i])) {
+        if (disc_need(imgs, i, 2, model, &wk, disc, level, out)) {
             st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
             goto out;
         }
-        out->phantom[i].found = disc[i].found;
-        out->phantom[i].centre.x = disc[i].found ? disc[i].xc : NAN;
-        out->phantom[i].centre.y = disc[i].found ? disc[i].yc : NAN;
-        out->phantom[i].radius_mm = disc[i].found ? disc[i].r_mm : NAN;
+        nfound += disc[i].found;
+    }
+    for (int k = 1; k < n - 1 && !nfound; k++) {
+        if (disc_need(imgs, order[k], 1, model, &wk, disc, level, out)) {
+            st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
+            goto out;
+        }
+        nfound += disc[order[k]].found;
+    }
+    if (nfound == 0) {
+        all_unmeasurable(out,
+                         disc[order[0]].reason[0] ? disc[order[0]].reason : "phantom not found");
+        goto verdicts;
     }
     /* 4. The ramp slice: the end of the stack that holds the insert with its strips. The ends are
      * screened by the dark region near the centre (an elongated block of about the insert's area);
@@ -558,6 +563,10 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
             if (pass == 0 ? !is_end : is_end)
                 continue;
             double ang, el, area, off;
+            if (disc_need(imgs, i, 1, model, &wk, disc, level, out)) {
+                st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
+                goto out;
+            }
             if (!disc[i].found ||
                 an_dark_axis(&imgs[i], &geo[i], &disc[i], &ang, &el, &area, &off) || el < 2.5 ||
                 area < 0.25 * area_model || area > 3 * area_model || off > 0.25 * disc[i].r_mm)
@@ -583,15 +592,12 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
                           : ends[0];
             /* an interior candidate gets the full circle fit too */
             if (i != ends[0] && i != ends[nends - 1]) {
-                if (an_find_disc(&imgs[i], model, 1, &wk, &disc[i])) {
+                if (disc_need(imgs, i, 2, model, &wk, disc, level, out)) {
                     st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
                     goto out;
                 }
                 if (!disc[i].found)
                     continue;
-                out->phantom[i].centre.x = disc[i].xc;
-                out->phantom[i].centre.y = disc[i].yc;
-                out->phantom[i].radius_mm = disc[i].r_mm;
             }
             /* 5. w toward slice 11: the ramp slice is slice 1 whatever the patient orientation. */
             wsign = oth >= 0 && has_geo && geo[i].z_n > geo[oth].z_n ? -1 : 1;
@@ -641,8 +647,8 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
     int first = ramp;
     if (ramp < 0) {
         double rw = 0;
-        if (find_wedge_slices(imgs, n, order, has_geo, model, &wk, geo, disc, out, &first, &other,
-                              &wsign, &rw)) {
+        if (find_wedge_slices(imgs, n, order, has_geo, model, &wk, geo, disc, level, out, &first,
+                              &other, &wsign, &rw)) {
             st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
             goto out;
         }
@@ -707,19 +713,40 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
     }
     /* 7. Noise (air around slice 1 and a uniform slice) and SNR on a uniform slice. */
     {
-        int uni = -1, best = 1 << 30, mid = (model->n_slices + 1) / 2;
-        for (int i = 0; i < n; i++) {
-            int o = out->ordinal[i];
-            if (!disc[i].found || i == first || o == model->wedge_slice[0] ||
-                o == model->wedge_slice[1] || o == 0)
-                continue;
-            if (abs(o - mid) < best) {
-                best = abs(o - mid);
-                uni = i;
+        /* the uniform slice: nearest the middle of the series (the first image of a tie) among
+         * those that show the phantom, searched nearest first */
+        int uni = -1, mid = (model->n_slices + 1) / 2;
+        unsigned char tried[AN_MAX_IMAGES] = {0};
+        for (;;) {
+            int best = 1 << 30, pick = -1;
+            for (int i = 0; i < n; i++) {
+                int o = out->ordinal[i];
+                if (tried[i] || i == first || o == model->wedge_slice[0] ||
+                    o == model->wedge_slice[1] || o == 0)
+                    continue;
+                if (abs(o - mid) < best) {
+                    best = abs(o - mid);
+                    pick = i;
+                }
+            }
+            if (pick < 0)
+                break;
+            tried[pick] = 1;
+            if (disc_need(imgs, pick, 1, model, &wk, disc, level, out)) {
+                st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
+                goto out;
+            }
+            if (disc[pick].found) {
+                uni = pick;
+                break;
             }
         }
         if (uni < 0)
             uni = other >= 0 && disc[other].found ? other : first >= 0 ? first : order[n / 2];
+        if (disc_need(imgs, uni, 1, model, &wk, disc, level, out)) {
+            st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
+            goto out;
+        }
         double s1 = first >= 0 ? an_noise_air(&imgs[first], &disc[first], scratch) : NAN;
         double s2 = disc[uni].found ? an_noise_air(&imgs[uni], &disc[uni], scratch) : NAN;
         double sig = isfinite(s1) && isfinite(s2) ? 0.5 * (s1 + s2) : isfinite(s1) ? s1 : s2;
@@ -773,9 +800,16 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
         for (int k = 0; k < 2; k++) {
             an_position *p = &out->position[k];
             int want = model->wedge_slice[k], img = -1;
-            for (int i = 0; i < n && first >= 0; i++)
-                if (out->ordinal[i] == want && disc[i].found)
+            for (int i = 0; i < n && first >= 0; i++) {
+                if (out->ordinal[i] != want)
+                    continue;
+                if (disc_need(imgs, i, 2, model, &wk, disc, level, out)) {
+                    st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
+                    goto out;
+                }
+                if (disc[i].found)
                     img = i;
+            }
             if (first < 0) {
                 position_clear(p, why);
                 continue;
