@@ -83,6 +83,15 @@ for p in list(bad) + [dup]:
     want[sha256(p)] += 1
 
 
+def stored_count():
+    if not os.path.exists(db):
+        return 0
+    try:
+        return query(db, "SELECT count(*) FROM series WHERE state = 'stored'")[0][0]
+    except Exception:  # the store is being created by the daemon just killed
+        return 0
+
+
 def remaining():
     return [p for p in files_under(inbox) if not os.path.basename(p).startswith(".")]
 
@@ -111,7 +120,16 @@ while kills < 24:
         time.sleep(1.2)
     d = Daemon(inbox, db, "-c", conf)
     starts += 1
-    time.sleep(scale * (random.uniform(0.005, 0.08) if kills % 5 else random.uniform(0.08, 0.2)))
+    # Mostly short lives (kills while files are taken), every fifth a longer one (kills while a
+    # series is measured and stored); when a slow build has stored nothing after a dozen kills,
+    # longer lives until it has, so that the kills reach the storing on any build.
+    if kills % 5 and not (kills >= 12 and stored_count() == 0):
+        life = random.uniform(0.005, 0.08)
+    elif stored_count() == 0 and kills >= 12:
+        life = random.uniform(0.3, 1.0)
+    else:
+        life = random.uniform(0.08, 0.2)
+    time.sleep(scale * life)
     left = remaining()
     d.p.send_signal(signal.SIGKILL)
     d.p.wait()
