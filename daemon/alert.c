@@ -481,20 +481,21 @@ void wd_alerts_step(wd_alerts *a, db *d)
     }
 }
 
-void wd_alerts_drain(wd_alerts *a, db *d)
+void wd_alerts_drain(wd_alerts *a, db *d, int start_new)
 {
     if (!a)
         return;
     /* Every command is bounded by its time limit; a bound on the whole wait keeps a store that
-     * stays locked from holding the exit for ever. */
-    double deadline = wd_now_mono() + a->o.timeout_s * 4 + 5;
+     * stays locked from holding the exit for ever. Without new starts (a service stopping) the
+     * wait is one time limit, within systemd's TimeoutStopSec. */
+    double deadline = wd_now_mono() + (start_new ? a->o.timeout_s * 4 + 5 : a->o.timeout_s + 2);
     a->draining = 1;
     while (wd_now_mono() < deadline) {
         reap(a);
         if (d)
             record(a, d);
         int started = 0;
-        if (d) {
+        if (d && start_new) {
             a->next_query = 0;
             started = start_due(a, d);
         }

@@ -55,7 +55,7 @@ char *wd_safe_component(const char *in, const char *fallback, char *out, size_t 
     size_t k = 0;
     for (; in[k] && k + 1 < n; k++) {
         unsigned char c = (unsigned char)in[k];
-        int ok = isascii(c) && (isalnum(c) || c == '.' || c == '_' || c == '+' || c == '-');
+        int ok = isascii(c) && (isalnum(c) || c == '.' || c == '_' || c == '-');
         out[k] = ok ? (char)c : '_';
     }
     out[k] = '\0';

@@ -2827,7 +2827,7 @@ int wd_cmd_watch(int argc, char **argv)
     loop(w);
     notify("STOPPING=1");
     progress_clear(w);
-    wd_alerts_drain(w->alerts, w->d);
+    wd_alerts_drain(w->alerts, w->d, w->once);
     if (w->once)
         summary(w, stdout);
     else

@@ -39,9 +39,9 @@ sw_status wd_settings_load(const char *path, const char *folder, const char *dat
  * taken; their final name arrives by IN_MOVED_TO. */
 int wd_name_is_temporary(const char *base);
 
-/* Makes one safe path component of in: bytes other than [A-Za-z0-9._+-] become '_', a leading '.'
- * or '-' becomes '_', the result is at most n - 1 bytes (n > 1) and never empty, "." or "..".
- * fallback is used when in is NULL or empty. Returns out. */
+/* Makes one safe path component of in: bytes other than the POSIX portable file name characters
+ * [A-Za-z0-9._-] become '_', a leading '.' or '-' becomes '_', the result is at most n - 1 bytes (n
+ * > 1) and never empty, "." or "..". fallback is used when in is NULL or empty. Returns out. */
 char *wd_safe_component(const char *in, const char *fallback, char *out, size_t n);
 
 /* The folder name of a series under archive/ and images/: DATE_NUMBER_UID, made safe. */
@@ -189,8 +189,9 @@ void wd_alerts_step(wd_alerts *a, db *d);
 /* How many commands run now, and seconds until the runner wants another step (or -1). */
 int wd_alerts_running(const wd_alerts *a);
 double wd_alerts_next_s(const wd_alerts *a);
-/* Waits for the running commands (at most their time limit), recording the outcomes. */
-void wd_alerts_drain(wd_alerts *a, db *d);
+/* Waits for the running commands (at most their time limit), recording the outcomes; with
+ * start_new, first starts the alerts never tried (the end of --once). */
+void wd_alerts_drain(wd_alerts *a, db *d, int start_new);
 /* Counters for the summary. */
 void wd_alerts_counts(const wd_alerts *a, int *started, int *ok, int *failed);
 
