@@ -40,8 +40,9 @@ sw_status wd_settings_load(const char *path, const char *folder, const char *dat
 int wd_name_is_temporary(const char *base);
 
 /* Makes one safe path component of in: bytes other than the POSIX portable file name characters
- * [A-Za-z0-9._-] become '_', a leading '.' or '-' becomes '_', the result is at most n - 1 bytes (n
- * > 1) and never empty, "." or "..". fallback is used when in is NULL or empty. Returns out. */
+ * [A-Za-z0-9._-] become '_', a leading '.' or '-' becomes '_', the result is never empty, "." or
+ * ".." and at most n - 1 bytes long (n > 1). fallback is used when in is NULL or empty. Returns
+ * out. */
 char *wd_safe_component(const char *in, const char *fallback, char *out, size_t n);
 
 /* The folder name of a series under archive/ and images/: DATE_NUMBER_UID, made safe. */
