@@ -206,8 +206,15 @@ static int redo(db *d, const wd_settings *s, int64_t series_id, int png, int ale
                          .tolerance_key = wd_tolerance_key(match, imgs[0]),
                          .alerts = alerts};
     wd_store_result res;
-    if (db_begin(d, &err) != SW_OK)
-        goto fail;
+    /* The service may hold the store for a moment (a series of its own): wait for it. */
+    for (int tries = 0;; tries++) {
+        sw_error_clear(&err);
+        sw_status bs = db_begin(d, &err);
+        if (bs == SW_OK)
+            break;
+        if (bs != SW_EBUSY || tries == 12)
+            goto fail;
+    }
     began = 1;
     if (wd_store_run(d, &ctx, &method, measured ? &m : NULL, fail_why, &res, &err) != SW_OK)
         goto fail;
