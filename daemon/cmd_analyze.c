@@ -32,8 +32,10 @@ static void usage(FILE *f)
             "files and folders (folders are searched recursively).\n"
             "  --json        one JSON document on stdout instead of text\n"
             "  --png DIR     write an annotated PNG per measured slice into DIR\n"
-            "  --half-level  how the half level of a ramp profile is set (default zero: half the\n"
-            "                plateau above the true zero of the plastic)\n"
+            "  --half-level  how the half level of a ramp profile is set: floor (the default: half\n"
+            "                the plateau above the true zero, through the Rician model of the\n"
+            "                noise floor), zero (half the plateau as measured, the ACR\n"
+            "                convention) or background (half-way to the background; biased)\n"
             "Exit status: 0 all pass, 1 a warn, fail or unmeasurable result, 2 an input or usage error.\n"
             "Results support, and never replace, a qualified medical physicist's review.\n");
 }

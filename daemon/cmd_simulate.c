@@ -10,6 +10,7 @@
 
 #include "config.h"
 #include "dicom.h"
+#include "files.h"
 #include "sim.h"
 #include "wd.h"
 
@@ -369,6 +370,11 @@ int wd_cmd_simulate(int argc, char **argv)
         goto out;
     }
     sw_error_clear(&err);
+    if (wd_mkdir_p(dir) != 0) {
+        fprintf(stderr, "slicewarden simulate: %s: cannot create the folder: %s\n", dir,
+                strerror(errno));
+        goto out;
+    }
     if (sim_series_write(s, dir, &err) != SW_OK) {
         fprintf(stderr, "slicewarden simulate: %s\n", err.msg);
         goto out;
