@@ -91,18 +91,21 @@ void wd_paths_free(wd_paths *p)
     p->n = p->cap = 0;
 }
 
-void wd_safe_name(char *dst, size_t n, const char *src)
+char *wd_safe_component(const char *in, const char *fallback, char *out, size_t n)
 {
+    if (!in || !*in)
+        in = fallback && *fallback ? fallback : "unnamed";
     size_t k = 0;
-    for (const unsigned char *c = (const unsigned char *)src; *c && k + 1 < n; c++) {
-        int ok = (*c < 0x80 && isalnum(*c)) || *c == '.' || *c == '-' || *c == '_';
-        dst[k++] = ok ? (char)*c : '_';
+    for (; in[k] && k + 1 < n; k++) {
+        unsigned char c = (unsigned char)in[k];
+        int ok = isascii(c) && (isalnum(c) || c == '.' || c == '_' || c == '-');
+        out[k] = ok ? (char)c : '_';
     }
-    dst[k] = '\0';
-    if (k > 0 && (dst[0] == '.' || dst[0] == '-'))
-        dst[0] = '_';
-    if (k == 0)
-        sw_strlcpy(dst, "unnamed", n);
+    out[k] = '\0';
+    if (out[0] == '.' || out[0] == '-')
+        out[0] = '_';
+    /* ".." became "_." above; a name of dots only is not possible any more. */
+    return out;
 }
 
 int wd_has_dicom_magic(const char *path)

@@ -18,10 +18,10 @@ typedef struct wd_paths {
 sw_status wd_paths_collect(wd_paths *p, const char *path, sw_error *err);
 void wd_paths_free(wd_paths *p);
 
-/* Copies src into dst (size n > 0) as a safe single path component: letters, digits, '.', '-' and
- * '_' kept, anything else (slashes, spaces, control bytes, non-ASCII) turned into '_'; a leading '.'
- * or '-' is turned into '_'; an empty result becomes "unnamed". */
-void wd_safe_name(char *dst, size_t n, const char *src);
+/* Makes one safe path component of in: bytes other than [A-Za-z0-9._-] become '_', a leading '.'
+ * or '-' becomes '_', the result is at most n - 1 bytes (n > 1) and never empty, "." or "..".
+ * fallback is used when in is NULL or empty. Returns out. */
+char *wd_safe_component(const char *in, const char *fallback, char *out, size_t n);
 
 /* 1 when the file at path starts like a DICOM Part 10 file ("DICM" at offset 128), 0 otherwise. */
 int wd_has_dicom_magic(const char *path);

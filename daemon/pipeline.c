@@ -313,7 +313,7 @@ sw_status wd_measured_pngs(const wd_measured *m, const char *dir, const char *sc
     const dcm_image *d = m->first;
     char uid[DCM_UID_MAX], path[4096], series[32], date[32];
     an_verdict worst = AN_PASS;
-    wd_safe_name(uid, sizeof uid, d->series_instance_uid);
+    wd_safe_component(d->series_instance_uid, "series", uid, sizeof uid);
     snprintf(series, sizeof series, "%d", d->series_number);
     const char *dt = d->acquisition_date[0] ? d->acquisition_date : d->series_date;
     snprintf(date, sizeof date, "%.4s-%.2s-%.2s", dt, strlen(dt) >= 6 ? dt + 4 : "",

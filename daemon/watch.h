@@ -5,6 +5,7 @@
 #define WD_WATCH_H
 
 #include <limits.h>
+#include <nettle/sha2.h>
 #include <stdint.h>
 #include <sys/types.h>
 #include <time.h>
@@ -12,6 +13,7 @@
 #include "config.h"
 #include "db.h"
 #include "dicom.h"
+#include "files.h"
 #include "pipeline.h"
 #include "sw.h"
 
@@ -39,21 +41,14 @@ sw_status wd_settings_load(const char *path, const char *folder, const char *dat
  * taken; their final name arrives by IN_MOVED_TO. */
 int wd_name_is_temporary(const char *base);
 
-/* Makes one safe path component of in: bytes other than the POSIX portable file name characters
- * [A-Za-z0-9._-] become '_', a leading '.' or '-' becomes '_', the result is never empty, "." or
- * ".." and at most n - 1 bytes long (n > 1). fallback is used when in is NULL or empty. Returns
- * out. */
-char *wd_safe_component(const char *in, const char *fallback, char *out, size_t n);
+/* wd_safe_component: files.h. */
 
 /* The folder name of a series under archive/ and images/: DATE_NUMBER_UID, made safe. */
 char *wd_series_dir_name(const char *date, int number, const char *uid, char *out, size_t n);
 
-/* ---- content hash (SHA-256, FIPS 180-4) ---- */
+/* ---- content hash (SHA-256, FIPS 180-4; nettle's implementation) ---- */
 typedef struct wd_sha256 {
-    uint32_t h[8];
-    uint64_t len; /* bytes hashed */
-    unsigned char buf[64];
-    size_t nbuf;
+    struct sha256_ctx ctx;
 } wd_sha256;
 void wd_sha256_init(wd_sha256 *s);
 void wd_sha256_update(wd_sha256 *s, const void *data, size_t n);

@@ -181,7 +181,7 @@ Test(files, safe_names)
     };
     char buf[64];
     for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
-        wd_safe_name(buf, sizeof buf, cases[i].in);
+        wd_safe_component(cases[i].in, "unnamed", buf, sizeof buf);
         cr_assert_str_eq(buf, cases[i].out, "case %zu", i);
     }
 }
