@@ -179,22 +179,6 @@ static void params_of(const bcase *c, uint64_t seed, sim_params *p)
     p->seed = seed + 1000003ull * (uint64_t)c->index;
 }
 
-/* The analysis view of a dcm_image, built as daemon/pipeline.c builds it (view_of there). */
-static void view_of(const dcm_image *d, an_image *v)
-{
-    memset(v, 0, sizeof *v);
-    v->px = d->pixels;
-    v->width = d->columns;
-    v->height = d->rows;
-    v->stride = d->columns;
-    v->col_mm = d->pixel_spacing[1];
-    v->row_mm = d->pixel_spacing[0];
-    memcpy(v->ipp, d->ipp, sizeof v->ipp);
-    memcpy(v->iop, d->iop, sizeof v->iop);
-    v->has_geometry = d->has_geometry;
-    v->nominal_thickness_mm = d->slice_thickness_mm;
-}
-
 /* Full width at `frac` of the maximum of the strip a slot of thickness slot_mm shows: the magnitude
  * of the complex profile integrated over the slot, |cum(z + s/2) - cum(z - s/2)|, against z. NAN on
  * failure. */
@@ -340,7 +324,7 @@ static void run_case(const bcase *c, uint64_t seed, brow rows[2])
         int n = 0;
         for (int i = 0; i < s->n_images; i++)
             if (s->echo[i] == e + 1)
-                view_of(&s->images[i], &views[n++]);
+                sim_image_view(s, i, &views[n++]); /* as daemon/pipeline.c builds it */
         /* The default parameters give the main results; each half level and the default with the
          * slot correction give a thickness for table 4. */
         an_params def;
