@@ -314,7 +314,14 @@ static void write_pngs(const wd_series_ctx *ctx, const wd_measured *m, int64_t r
     }
     char number[16], date[32];
     snprintf(number, sizeof number, "%d", d->series_number);
-    snprintf(date, sizeof date, "%s %s", d->series_date, d->series_time);
+    /* "2026-09-07 08:10:00" for people; the raw DICOM text when it is malformed */
+    if (db_dicom_datetime(d->series_date, d->series_time, date, sizeof date) == 0) {
+        char *t = strchr(date, 'T');
+        if (t)
+            *t = ' ';
+    } else {
+        snprintf(date, sizeof date, "%s %s", d->series_date, d->series_time);
+    }
     for (int i = 0; i < m->n_echoes; i++) {
         const wd_echo *e = &m->echo[i];
         int idx[8];
