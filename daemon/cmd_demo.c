@@ -157,46 +157,6 @@ static void progress(const char *what, int done, int total, time_t t0)
         fputc('\n', stderr);
 }
 
-/* Generates every job in `workers` processes; each reports a finished job by one byte on a pipe. */
-static int generate(const char *root, const demo_job *jobs, int n, int workers)
-{
-    int fds[2];
-    if (pipe(fds) != 0)
-        return -1;
-    time_t t0 = time(NULL);
-    for (int w = 0; w < workers; w++) {
-        pid_t pid = fork();
-        if (pid < 0)
-            return -1;
-        if (pid == 0) {
-            close(fds[0]);
-            int bad = 0;
-            for (int i = w; i < n && !bad; i += workers) {
-                bad |= run_job(root, &jobs[i]) != 0;
-                char b = bad ? 'x' : '.';
-                if (write(fds[1], &b, 1) != 1)
-                    bad = 1;
-            }
-            sim_cleanup();
-            _exit(bad ? 1 : 0);
-        }
-    }
-    close(fds[1]);
-    int done = 0, failed = 0;
-    char b;
-    while (read(fds[0], &b, 1) == 1) {
-        done++;
-        failed |= b == 'x';
-        progress("simulating series", done, n, t0);
-    }
-    close(fds[0]);
-    int status;
-    while (wait(&status) > 0)
-        if (!WIFEXITED(status) || WEXITSTATUS(status) != 0)
-            failed = 1;
-    return failed || done != n ? -1 : 0;
-}
-
 /* Delivers a series folder into the watch folder file by file, as a storage receiver would: each
  * file appears complete under its final name (rename within one file system). */
 static int deliver(const char *root, const demo_job *j, int *files)
@@ -232,6 +192,84 @@ fail:
     fprintf(stderr, "slicewarden demo: %s: %s\n", p.v[0], strerror(errno));
     wd_paths_free(&p);
     return -1;
+}
+
+static int run_sub(int (*cmd)(int, char **), char **argv)
+{
+    int argc = 0;
+    while (argv[argc])
+        argc++;
+    return cmd(argc, argv);
+}
+
+/* Generates the jobs in `workers` processes (each reports a finished job by its index on a pipe)
+ * while this process delivers finished series in chronological order and measures each month's
+ * delivery with the real pipeline (watch --once), so simulating and measuring overlap. *wrc is the
+ * worst watch status. Returns 0, or -1 when a job failed. */
+static int generate_and_measure(const char *root, const demo_job *jobs, int n, int workers,
+                                char *conf, int *files, int *wrc)
+{
+    enum { BATCH = 4 * DEMO_SCANNERS * 2 }; /* four weeks of series */
+    int fds[2];
+    unsigned char *done = calloc((size_t)n, 1);
+    if (!done || pipe(fds) != 0) {
+        free(done);
+        return -1;
+    }
+    char *watch[] = {"watch", "-c", conf, "--once", "--no-progress", NULL};
+    time_t t0 = time(NULL);
+    for (int w = 0; w < workers; w++) {
+        pid_t pid = fork();
+        if (pid < 0) {
+            free(done);
+            return -1;
+        }
+        if (pid == 0) {
+            close(fds[0]);
+            int bad = 0;
+            for (int i = w; i < n && !bad; i += workers) {
+                int32_t msg = run_job(root, &jobs[i]) == 0 ? i : -1;
+                bad = msg < 0;
+                if (write(fds[1], &msg, sizeof msg) != (ssize_t)sizeof msg)
+                    bad = 1;
+            }
+            sim_cleanup();
+            _exit(bad ? 1 : 0);
+        }
+    }
+    close(fds[1]);
+    int next = 0, measured_to = 0, failed = 0, made = 0;
+    int32_t msg;
+    *wrc = 0;
+    while (!failed && read(fds[0], &msg, sizeof msg) == (ssize_t)sizeof msg) {
+        if (msg < 0 || msg >= n) {
+            failed = 1;
+            break;
+        }
+        done[msg] = 1;
+        progress("simulating series", ++made, n, t0);
+        while (next < n && done[next]) /* chronological order, as the scanners send them */
+            if (deliver(root, &jobs[next++], files) != 0)
+                failed = 1;
+        if (!failed && next - measured_to >= BATCH && next < n) {
+            int r = run_sub(wd_cmd_watch, watch);
+            if (r > *wrc)
+                *wrc = r;
+            measured_to = next;
+        }
+    }
+    close(fds[0]);
+    int status;
+    while (wait(&status) > 0)
+        if (!WIFEXITED(status) || WEXITSTATUS(status) != 0)
+            failed = 1;
+    if (!failed && next == n) {
+        int r = run_sub(wd_cmd_watch, watch);
+        if (r > *wrc)
+            *wrc = r;
+    }
+    free(done);
+    return failed || next != n ? -1 : 0;
 }
 
 static int remove_entry(const char *path, const struct stat *st, int type, struct FTW *ftw)
@@ -328,13 +366,6 @@ static int write_config(const char *root)
     return fclose(f) == 0 ? 0 : -1;
 }
 
-static int run_sub(int (*cmd)(int, char **), char **argv)
-{
-    int argc = 0;
-    while (argv[argc])
-        argc++;
-    return cmd(argc, argv);
-}
 
 /* ---- the summary, read back from the database ---- */
 
@@ -551,26 +582,22 @@ int wd_cmd_demo(int argc, char **argv)
     fflush(stdout);
     time_t t0 = time(NULL);
     int rc = 2;
-    if (generate(root, jobs, n, workers) != 0) {
-        fprintf(stderr, "slicewarden demo: simulation failed\n");
-        goto out;
-    }
-    for (int i = 0; i < n; i++) /* chronological order, as the scanners send them */
-        if (deliver(root, &jobs[i], &files) != 0)
-            goto out;
-    char staging[PATH_MAX];
-    pathf(staging, sizeof staging, "%s/staging", root);
-    rmdir(staging);
-    printf("  %d series (%d files) delivered into %s/incoming in %.0f s\n", n, files, root,
-           difftime(time(NULL), t0));
-    fflush(stdout);
-
     char conf[PATH_MAX], csv[PATH_MAX], html[PATH_MAX];
     pathf(conf, sizeof conf, "%s/slicewarden.conf", root);
     pathf(csv, sizeof csv, "%s/export.csv", root);
     pathf(html, sizeof html, "%s/report.html", root);
-    char *watch[] = {"watch", "-c", conf, "--once", NULL};
-    int wrc = run_sub(wd_cmd_watch, watch);
+    int wrc = 0;
+    if (generate_and_measure(root, jobs, n, workers, conf, &files, &wrc) != 0) {
+        fprintf(stderr, "slicewarden demo: simulation failed\n");
+        goto out;
+    }
+    char staging[PATH_MAX];
+    pathf(staging, sizeof staging, "%s/staging", root);
+    rmdir(staging);
+    printf("  %d series (%d files) delivered into %s/incoming and measured by watch --once, "
+           "month by month, in %.0f s\n",
+           n, files, root, difftime(time(NULL), t0));
+    fflush(stdout);
     if (wrc != 0)
         fprintf(stderr, "slicewarden demo: watch --once ended with status %d\n", wrc);
     char *exp[] = {"export", "-c", conf, "-o", csv, NULL};
