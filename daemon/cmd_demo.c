@@ -165,14 +165,19 @@ static int deliver(const char *root, const demo_job *j, int *files)
     job_dir(root, j, src, sizeof src);
     const char *base = strrchr(src, '/') + 1;
     pathf(dst_dir, sizeof dst_dir, "%s/incoming/%s", root, base);
-    if (wd_mkdir_p(dst_dir) != 0)
+    if (wd_mkdir_p(dst_dir) != 0) {
+        fprintf(stderr, "slicewarden demo: %s: %s\n", dst_dir, strerror(errno));
         return -1;
+    }
     wd_paths p = {0};
     sw_error err;
     sw_error_clear(&err);
-    if (wd_paths_collect(&p, src, &err) != SW_OK)
+    if (wd_paths_collect(&p, src, &err) != SW_OK) {
+        fprintf(stderr, "slicewarden demo: %s\n", err.msg);
         return -1;
-    for (size_t i = 0; i < p.n; i++) {
+    }
+    size_t i;
+    for (i = 0; i < p.n; i++) {
         const char *name = strrchr(p.v[i], '/') + 1;
         if (!strcmp(name, "truth.json")) {
             pathf(a, sizeof a, "%s/truth/%s.json", root, base);
@@ -189,7 +194,7 @@ static int deliver(const char *root, const demo_job *j, int *files)
     rmdir(src);
     return 0;
 fail:
-    fprintf(stderr, "slicewarden demo: %s: %s\n", p.v[0], strerror(errno));
+    fprintf(stderr, "slicewarden demo: %s: %s\n", p.v[i], strerror(errno));
     wd_paths_free(&p);
     return -1;
 }
