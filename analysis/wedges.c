@@ -45,6 +45,31 @@ static double mean_ss(const an_line *l, int i0, int i1, double *g)
 }
 
 #define NMAX 1024
+/* Across a bar its profile is the mean of bilinear samples 0.2 mm apart over the central 40 % of
+ * its width: the bar's sides ring into its interior (Gibbs ringing of a 5 mm dark band between
+ * fluid, rectified by the magnitude), by an amount that depends on where the sides fall on the
+ * pixel grid and differs between the two bars, and a band nearer the sides, or samples sparse
+ * enough to alias that ringing, carry it into the end's profile (docs/methods.md, section 8). */
+#define BAR_OFF_STEP 0.2
+#define BAR_BAND 0.2 /* half width of the band, as a fraction of the bar's width */
+
+/* The 50 % level of an edge between plastic and fluid of level fl: half the fluid's signal above
+ * the true zero, in signal space through the Rician model when the noise is known (M(M^-1(fl) / 2),
+ * Rice), fl / 2 otherwise. The plastic gives no signal: what a magnitude image shows in it is the
+ * noise floor and the rectified ringing of nearby edges, which differs between the two bars with
+ * their places on the pixel grid and does not sit under the edge as an additive background
+ * (docs/methods.md, section 8). *dldf is the level's derivative with respect to fl. */
+static double half_level(double fl, double sigma, double *dldf)
+{
+    if (!(sigma > 0)) {
+        *dldf = 0.5;
+        return 0.5 * fl;
+    }
+    double l = an_rice_mean(0.5 * an_rice_invert(fl, sigma), sigma);
+    double e = 1e-4 * fmax(fabs(fl), sigma);
+    *dldf = (an_rice_mean(0.5 * an_rice_invert(fl + e, sigma), sigma) - l) / e;
+    return l;
+}
 
 /* The bridge's lower edge at column u: walking up from the fluid under the bridge. Returns v or
  * NAN; *var its variance. */
@@ -71,17 +96,22 @@ static double bridge_edge(const an_image *im, const an_pose *pose, const an_mode
     double gi = an_walk_cross(sm, n, 0, +1, lev, 1);
     if (!isfinite(gi))
         return NAN;
-    /* Refine the levels around the found edge, then the crossing. */
-    int e = (int)gi;
-    fl = an_mean_range(buf, n, e - (int)(10 / step), e - (int)(3 / step));
-    dk = an_mean_range(buf, n, e + (int)(2 / step), n - 1);
-    lev = 0.5 * (fl + dk);
-    an_xing x;
-    if (an_xing_find(&l, buf, n, gi, lev, 1.0, -1, &x))
+    /* Refine the fluid level below the found edge, then the crossing of half of it. */
+    int e = (int)gi, f0 = e - (int)(10 / step), f1 = e - (int)(3 / step);
+    if (f0 < 0)
+        f0 = 0;
+    if (f1 - f0 < (int)(2 / step))
         return NAN;
-    double sd = sd_at(lev, sigma);
-    *var = sd * sd * x.ss / (x.slope * x.slope);
-    (void)g;
+    fl = an_mean_range(buf, n, f0, f1);
+    double dldf;
+    lev = half_level(fl, sigma, &dldf);
+    gi = an_walk_cross(sm, n, 0, +1, lev, 1);
+    an_xing x;
+    if (!isfinite(gi) || an_xing_find(&l, buf, n, gi, lev, 1.0, -1, &x))
+        return NAN;
+    double sd = sd_at(lev, sigma), sdf = sd_at(fl, sigma);
+    *var =
+        (sd * sd * x.ss + dldf * dldf * sdf * sdf * mean_ss(&l, f0, f1, g)) / (x.slope * x.slope);
     return v0 + x.idx * step;
 }
 
@@ -95,7 +125,7 @@ static int bar_end(const an_image *im, const an_pose *pose, double u, double hw,
         n = NMAX, step = reach / (n - 1);
     an_line l;
     line_set(&l, im, pose, u, top - 1.0, 0, -1, step, n);
-    an_line_offsets(&l, hw, 0.5);
+    an_line_offsets(&l, hw, BAR_OFF_STEP);
     if (an_line_sample(&l, buf))
         return -1;
     b->profile.n = n;
@@ -126,20 +156,98 @@ static int bar_end(const an_image *im, const an_pose *pose, double u, double hw,
         return -1;
     dk = an_mean_range(buf, n, d0, d1);
     fl = an_mean_range(buf, n, f0, f1);
-    lev = 0.5 * (dk + fl);
+    double dldf;
+    lev = half_level(fl, sigma, &dldf);
     double gi = an_walk_cross(sm, n, 0, +1, lev, 0);
     double h = fmin(fmax(0.6 * rise, 1.0), 4.0);
     an_xing x;
     if (!isfinite(gi) || an_xing_find(&l, buf, n, gi, lev, h, +1, &x))
         return -1;
     double vend = top - 1.0 - x.idx * step;
-    double sdl = sd_at(lev, sigma), sdd = sd_at(dk, sigma), sdf = sd_at(fl, sigma);
-    double vlev = 0.25 * (sdd * sdd * mean_ss(&l, d0, d1, g) + sdf * sdf * mean_ss(&l, f0, f1, g));
+    double sdl = sd_at(lev, sigma), sdf = sd_at(fl, sigma);
+    double vlev = dldf * dldf * sdf * sdf * mean_ss(&l, f0, f1, g);
     *var_end = (sdl * sdl * x.ss + vlev) / (x.slope * x.slope);
     b->level_lo = dk;
     b->level_hi = fl;
     an_pose_to_px(pose, u, vend, &b->end.x, &b->end.y);
     b->length_mm = top - vend;
+    return 0;
+}
+
+/* The bridge's lower edge as a line v = a + b u (phantom mm): its crossing at columns 1 mm apart on
+ * both sides of the bars (1 mm clear of the bars' outer edges and of the bridge's ends), each
+ * averaged over +-0.4 mm, fitted by weighted least squares (points beyond 3 MADs of the first fit
+ * dropped). Many columns, each crossing the pixel grid at its own place when the phantom is turned,
+ * average the sub-pixel error of a sharp edge's crossing that two columns would keep. cov = the
+ * covariance of (a, b): caa, cab, cbb (NAN without a noise estimate). Returns 0, or -1 when fewer
+ * than three columns on either side give a crossing. */
+#define BRIDGE_COLS 64
+typedef struct bridge_line {
+    double a, b, caa, cab, cbb;
+    double mean, var_mean; /* weighted mean of the kept crossings and its variance */
+} bridge_line;
+
+static int bridge_fit(const an_image *im, const an_pose *pose, const an_model *m, double sigma,
+                      bridge_line *bl, double *buf, double *g)
+{
+    double u[BRIDGE_COLS], v[BRIDGE_COLS], var[BRIDGE_COLS];
+    int n = 0, side[2] = {0, 0};
+    double ranges[2][2] = {{m->bridge_u_min + 1, m->bar_u_min[0] - 1},
+                           {m->bar_u_max[1] + 1, m->bridge_u_max - 1}};
+    for (int sd = 0; sd < 2; sd++)
+        for (double uu = ranges[sd][0]; uu <= ranges[sd][1] + 1e-9 && n < BRIDGE_COLS; uu += 1.0) {
+            double vr = NAN, e = bridge_edge(im, pose, m, uu, 0.4, sigma, &vr, buf, g);
+            if (!isfinite(e))
+                continue;
+            u[n] = uu;
+            v[n] = e;
+            var[n] = vr;
+            n++;
+            side[sd]++;
+        }
+    if (side[0] < 3 || side[1] < 3)
+        return -1;
+    int weighted = 1;
+    for (int i = 0; i < n; i++)
+        weighted &= isfinite(var[i]) && var[i] > 0;
+    unsigned char use[BRIDGE_COLS];
+    memset(use, 1, sizeof use);
+    for (int round = 0; round < 2; round++) {
+        double S = 0, Su = 0, Suu = 0, Sv = 0, Suv = 0;
+        for (int i = 0; i < n; i++) {
+            if (!use[i])
+                continue;
+            double w = weighted ? 1 / var[i] : 1;
+            S += w;
+            Su += w * u[i];
+            Suu += w * u[i] * u[i];
+            Sv += w * v[i];
+            Suv += w * u[i] * v[i];
+        }
+        double det = S * Suu - Su * Su;
+        if (!(det > 0))
+            return -1;
+        bl->b = (S * Suv - Su * Sv) / det;
+        bl->a = (Sv - bl->b * Su) / S;
+        bl->caa = weighted ? Suu / det : NAN;
+        bl->cab = weighted ? -Su / det : NAN;
+        bl->cbb = weighted ? S / det : NAN;
+        bl->mean = Sv / S;
+        bl->var_mean = weighted ? 1 / S : NAN;
+        if (round == 1)
+            break;
+        float ab[BRIDGE_COLS];
+        for (int i = 0; i < n; i++)
+            ab[i] = (float)fabs(v[i] - bl->a - bl->b * u[i]);
+        double lim = fmax(3 * 1.4826 * an_median(ab, (size_t)n), 0.05);
+        int keep[2] = {0, 0};
+        for (int i = 0; i < n; i++) {
+            use[i] = fabs(v[i] - bl->a - bl->b * u[i]) <= lim;
+            keep[u[i] > 0] += use[i];
+        }
+        if (keep[0] < 3 || keep[1] < 3)
+            return -1;
+    }
     return 0;
 }
 
@@ -152,17 +260,11 @@ int an_bridge_turn(const an_image *im, const an_pose *pose, const an_model *m, d
         rc = -1;
         goto out;
     }
-    /* the columns and averaging of an_bars_measure's bar tops */
-    double uo[2] = {0.5 * (m->bridge_u_min + m->bar_u_min[0]),
-                    0.5 * (m->bridge_u_max + m->bar_u_max[1])};
-    double hw = fmax(0.5, 0.25 * fabs(m->bridge_u_max - m->bar_u_max[1])), vt[2], vv;
-    for (int s = 0; s < 2; s++) {
-        vt[s] = bridge_edge(im, pose, m, uo[s], hw, NAN, &vv, buf, g);
-        if (!isfinite(vt[s]))
-            goto out;
-    }
-    /* a lower edge that rises to the right is a phantom turned further counter-clockwise */
-    *drot_deg = atan((vt[1] - vt[0]) / (uo[1] - uo[0])) * AN_DEG;
+    /* the line of an_bars_measure's bar tops; a lower edge that rises to the right is a phantom
+     * turned further counter-clockwise */
+    bridge_line bl;
+    if (!bridge_fit(im, pose, m, NAN, &bl, buf, g))
+        *drot_deg = atan(bl.b) * AN_DEG;
 out:
     free(buf);
     free(g);
@@ -184,20 +286,19 @@ int an_bars_measure(const an_image *im, const an_pose *pose, const an_model *m, 
         rc = -1;
         goto out;
     }
-    /* Bar tops: the bridge's lower edge on both sides, outside the bars. */
-    double uo[2], vt[2], vv[2];
-    uo[0] = 0.5 * (m->bridge_u_min + m->bar_u_min[0]);
-    uo[1] = 0.5 * (m->bridge_u_max + m->bar_u_max[1]);
-    for (int s = 0; s < 2; s++) {
-        double hw = fmax(0.5, 0.25 * fabs(m->bridge_u_max - m->bar_u_max[1]));
-        vt[s] = bridge_edge(im, pose, m, uo[s], hw, sigma, &vv[s], buf, g);
-        if (!isfinite(vt[s])) {
-            sw_strlcpy(out->reason, "bridge not found: no lower edge beside the bars",
-                       sizeof out->reason);
-            goto out;
-        }
+    /* Bar tops: the bridge's lower edge on both sides, outside the bars, one level for both bars:
+     * the pose's rotation (from the insert's long edges, 140 mm long) is far better known than
+     * the slope of this 21 mm baseline, whose sharp edge reads up to 0.1 mm apart in neighbouring
+     * columns when the phantom is turned (Gibbs ringing, rectified by the magnitude, sampled
+     * across the pixel grid): a slope would add that to the bar length difference, a common top
+     * cancels from it. */
+    bridge_line bl;
+    if (bridge_fit(im, pose, m, sigma, &bl, buf, g)) {
+        sw_strlcpy(out->reason, "bridge not found: no lower edge beside the bars",
+                   sizeof out->reason);
+        goto out;
     }
-    double top_mid = 0.5 * (vt[0] + vt[1]);
+    double top_mid = bl.mean;
     /* Bars across: dark runs under the bridge, 4 mm below its edge. */
     double ua = m->bridge_u_min, ub = m->bridge_u_max, step = 0.1;
     int n = (int)((ub - ua) / step) + 1;
@@ -250,14 +351,12 @@ int an_bars_measure(const an_image *im, const an_pose *pose, const an_model *m, 
             goto out;
         }
     }
-    /* Ends: each bar's own edge; the length is taken from the bridge line at the bar's column, so a
-     * small residual rotation cancels. */
+    /* Ends: each bar's own edge; the length from the common top. */
     double var_end[2], var_top[2], reach = m->bar_len0_mm + 3 * nominal_mm + 20;
     for (int s = 0; s < 2; s++) {
-        double f = (uc[s] - uo[0]) / (uo[1] - uo[0]);
-        double top = vt[0] + f * (vt[1] - vt[0]);
-        var_top[s] = (1 - f) * (1 - f) * vv[0] + f * f * vv[1];
-        double hw = fmax(0.5, 0.3 * wid[s]);
+        double top = bl.mean;
+        var_top[s] = bl.var_mean;
+        double hw = fmax(0.25, BAR_BAND * wid[s]);
         an_pose_to_px(pose, uc[s], top, &bars[s]->top.x, &bars[s]->top.y);
         if (bar_end(im, pose, uc[s], hw, top, reach, sigma, bars[s], buf, g, &var_end[s])) {
             snprintf(out->reason, sizeof out->reason, "bar end not found: %s bar",
@@ -269,10 +368,8 @@ int an_bars_measure(const an_image *im, const an_pose *pose, const an_model *m, 
     }
     out->bar_difference_mm = out->right.length_mm - out->left.length_mm;
     out->displacement_mm = -0.5 * out->bar_difference_mm;
-    /* The two tops share the bridge line, so their noise enters the difference through the slope.
-     */
-    double ft = (uc[1] - uc[0]) / (uo[1] - uo[0]);
-    out->uncertainty_mm = sqrt(var_end[0] + var_end[1] + ft * ft * (vv[0] + vv[1]));
+    /* The two bars share their top, which cancels from the difference. */
+    out->uncertainty_mm = sqrt(var_end[0] + var_end[1]);
     {
         double u, v0, v1;
         an_pose_to_ph(pose, out->left.end.x, out->left.end.y, &u, &v0);

@@ -510,3 +510,49 @@ Test(sim, slice_profile_and_fwtm)
     free(r);
     sim_series_free(s);
 }
+
+/* The bar length difference has no error that stays when the noise goes: noise-free renders of the
+ * phantom moved by a fraction of a pixel and turned by a degree or two, where the bars' sides and
+ * the bridge's edge fall on the pixel grid differently (their Gibbs ringing, rectified by the
+ * magnitude, used to move the bars' 50 % levels and the bridge line's slope by up to 0.05 mm).
+ * The truth is the simulator's geometry along each bar's centre line; 0.03 mm is our bound (the
+ * residual of this method on this simulator is about 0.01 mm RMS), each case, and 0.015 mm RMS. */
+Test(sim, bar_difference_without_noise)
+{
+    struct {
+        sim_profile_kind kind;
+        double T, rot, du, d;
+    } cs[] = {
+        {SIM_PROFILE_RECT, 5, 0, -0.6, 0},      {SIM_PROFILE_RECT, 5, 0, -0.5, 0},
+        {SIM_PROFILE_RECT, 5, 0, 0.3, 0},       {SIM_PROFILE_RECT, 5, -1.5, 0, 0},
+        {SIM_PROFILE_RECT, 5, 1.5, 0, 0},       {SIM_PROFILE_RECT, 3, -2.5, 0.2, 0.4},
+        {SIM_PROFILE_BLOCH_SINC, 5, 2, 0.4, 0}, {SIM_PROFILE_GAUSS, 6, -1, -0.3, 1.0},
+    };
+    int nc = (int)(sizeof cs / sizeof cs[0]);
+    double ss = 0;
+    int m = 0;
+    for (int c = 0; c < nc; c++) {
+        sim_params p = base();
+        p.snr = 0;
+        p.shuffle = 0;
+        p.profile.kind = cs[c].kind;
+        p.profile.thickness_mm = cs[c].T;
+        p.pose.rot_deg = cs[c].rot;
+        p.pose.du_mm = cs[c].du;
+        p.position_offset_mm = cs[c].d;
+        run_out *o = malloc(sizeof *o);
+        render_and_analyse(&p, o);
+        for (int k = 0; k < 2; k++) {
+            const an_position *q = &o->r[0].position[k];
+            cr_assert(q->measured, "case %d: %s", c, q->reason);
+            double e = q->bar_difference_mm - o->truth.wedge[k].difference_mm;
+            cr_expect(fabs(e) < 0.03,
+                      "case %d (T %.0f, rot %.1f, du %.1f) slice %d: BLD error %.4f", c, cs[c].T,
+                      cs[c].rot, cs[c].du, q->slice, e);
+            ss += e * e;
+            m++;
+        }
+        free(o);
+    }
+    cr_assert(sqrt(ss / m) < 0.015, "RMS BLD error %.4f mm", sqrt(ss / m));
+}
