@@ -32,7 +32,19 @@ scp_log = open(os.path.join(base, "storescp.log"), "wb")
 scp = subprocess.Popen(["storescp", "-aet", "SLICEWARDEN", "-od", inbox, "-su", "study",
                         "+uf", str(port)], stdout=scp_log, stderr=scp_log)
 d = Daemon(inbox, db, "--quiet", "600")
-time.sleep(0.5)
+
+
+def listening(port):
+    with socket.socket() as c:
+        c.settimeout(0.5)
+        return c.connect_ex(("127.0.0.1", port)) == 0
+
+
+# storescp takes a moment to listen (longer on a loaded machine): wait for it, bounded.
+deadline = time.monotonic() + 30
+while not listening(port) and time.monotonic() < deadline and scp.poll() is None:
+    time.sleep(0.1)
+check(listening(port), "storescp listens on port %d" % port)
 try:
     for name, files in (("T1", t1), ("T2", t2)):
         r = subprocess.run(["storescu", "-aet", "ALDMR1", "-aec", "SLICEWARDEN", "127.0.0.1",
