@@ -483,40 +483,101 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
  * so the estimate does not depend on how the image happens to be stored. Two passes over the
  * rows (with = 0: count the bands; 1: fill each band's part of scratch); per row only the pixels
  * that may lie outside the excluded circle are visited (one pixel of margin for rounding). */
+/* The row predicates of air_rows, each evaluated exactly as the per-pixel tests would be. */
+typedef struct air_row {
+    double xc, col, dy2, ady, r2;
+} air_row;
+
+static int air_excluded(const air_row *r, int x)
+{
+    double dx = (x - r->xc) * r->col;
+    return dx * dx + r->dy2 < r->r2;
+}
+
+/* band 0 (left): fabs(dx) >= ady and dx < 0; band 1 (right): fabs(dx) >= ady and dx >= 0 */
+static int air_past_left(const air_row *r, int x)
+{
+    double dx = (x - r->xc) * r->col;
+    return !(fabs(dx) >= r->ady && dx < 0);
+}
+
+static int air_in_right(const air_row *r, int x)
+{
+    double dx = (x - r->xc) * r->col;
+    return fabs(dx) >= r->ady && dx >= 0;
+}
+
+/* First x in [a, b] where pred (false, then true along x) holds; b + 1 when nowhere. */
+static int air_first(const air_row *r, int (*pred)(const air_row *, int), int want, int a, int b)
+{
+    int lo = a, hi = b + 1;
+    while (lo < hi) {
+        int mid = lo + (hi - lo) / 2;
+        if (pred(r, mid) == want)
+            hi = mid;
+        else
+            lo = mid + 1;
+    }
+    return lo;
+}
+
+/* Pixels of the air around the disc, in four bands (left, right, top, bottom of the stored image).
+ * Every pixel of a border-trimmed range that is symmetric under flips and transposition is used,
+ * so the estimate does not depend on how the image happens to be stored. Two passes over the
+ * rows (with = 0: count the bands; 1: fill each band's part of scratch). Along a row the tests
+ * are monotone on either side of the disc's centre, so the row splits into runs of one band
+ * outside the excluded circle, whose ends are found by bisection with the same expressions; only
+ * the pixels' values are then looked at one by one. */
 static void air_rows(const an_image *im, const an_disc *d, double rmin, int with, size_t cnt[4],
                      size_t *zeros, const size_t *start, float *scratch)
 {
     int w = im->width, h = im->height;
     double col = im->col_mm > 0 ? im->col_mm : 1, row = im->row_mm > 0 ? im->row_mm : 1;
-    double r2 = rmin * rmin;
+    if (w < 5)
+        return;
+    int xa = 2, xb = w - 3, xm = (int)floor(d->xc);
+    if (xm < xa - 1)
+        xm = xa - 1;
+    if (xm > xb)
+        xm = xb;
     for (int y = 2; y < h - 2; y++) {
-        double dy = (y - d->yc) * row, dy2 = dy * dy, ady = fabs(dy), q = r2 - dy2;
-        int s0 = 0, s1 = 0;
-        if (q > 0) {
-            double hw = sqrt(q) / col;
-            s0 = (int)ceil(d->xc - hw) + 1;
-            s1 = (int)floor(d->xc + hw) - 1;
-        }
-        const float *pr = im->px + (ptrdiff_t)y * im->stride;
+        double dy = (y - d->yc) * row;
+        air_row r = {d->xc, col, dy * dy, fabs(dy), rmin * rmin};
+        /* the excluded circle: [e0, e1) */
+        int e0 = air_first(&r, air_excluded, 1, xa, xm);
+        int e1 = e0 <= xm ? air_first(&r, air_excluded, 0, xm + 1, xb) : xm + 1;
+        if (e0 > xm && e1 == xm + 1 && xm + 1 <= xb && air_excluded(&r, xm + 1))
+            e0 = xm + 1, e1 = air_first(&r, air_excluded, 0, xm + 1, xb);
+        /* bands: 0 on [xa, l1), bv on [l1, r0), 1 on [r0, xb] */
+        int l1 = air_first(&r, air_past_left, 1, xa, xb);
+        int r0 = air_first(&r, air_in_right, 1, l1, xb);
         int bv = dy < 0 ? 2 : 3;
-        for (int x = 2; x < w - 2; x++) {
-            if (x > s0 && x < s1) {
-                x = s1 - 1;
-                continue;
+        int cut[4] = {xa, l1, r0, xb + 1};
+        const float *pr = im->px + (ptrdiff_t)y * im->stride;
+        for (int seg = 0; seg < 3; seg++) {
+            int s0 = cut[seg], s1 = cut[seg + 1], b = seg == 0 ? 0 : seg == 1 ? bv : 1;
+            /* the segment minus the excluded interval [e0, e1): the part before it and after */
+            int c0 = e0 < e1 ? (e0 < s0 ? s0 : e0 > s1 ? s1 : e0) : s1;
+            int c1 = e0 < e1 ? (e1 < s0 ? s0 : e1 > s1 ? s1 : e1) : s1;
+            int pa[2] = {s0, c1}, pb[2] = {c0, s1};
+            size_t k = cnt[b], z = 0;
+            for (int part = 0; part < 2; part++) {
+                if (with) {
+                    float *dst = scratch + start[b];
+                    for (int x = pa[part]; x < pb[part]; x++)
+                        if (isfinite(pr[x]))
+                            dst[k++] = pr[x];
+                } else {
+                    for (int x = pa[part]; x < pb[part]; x++)
+                        if (isfinite(pr[x])) {
+                            k++;
+                            z += pr[x] == 0;
+                        }
+                }
             }
-            double dx = (x - d->xc) * col;
-            if (dx * dx + dy2 < r2)
-                continue;
-            float v = pr[x];
-            if (!isfinite(v))
-                continue;
-            int b = fabs(dx) >= ady ? (dx < 0 ? 0 : 1) : bv;
-            if (with) {
-                scratch[start[b] + cnt[b]++] = v;
-            } else {
-                cnt[b]++;
-                *zeros += v == 0;
-            }
+            cnt[b] = k;
+            if (!with)
+                *zeros += z;
         }
     }
 }

@@ -76,7 +76,8 @@ static double half_level(double fl, double sigma, double *dldf)
 static double bridge_edge(const an_image *im, const an_pose *pose, const an_model *m, double u,
                           double hw, double sigma, double *var, double *buf, double *g)
 {
-    double v0 = m->bar_top_v - 25, v1 = m->bar_top_v + 0.5 * (m->bridge_v_max - m->bar_top_v);
+    /* from 15 mm below the bars' top: room for the fluid level (10 mm) under the edge */
+    double v0 = m->bar_top_v - 15, v1 = m->bar_top_v + 0.5 * (m->bridge_v_max - m->bar_top_v);
     double step = 0.1;
     int n = (int)((v1 - v0) / step) + 1;
     if (n > NMAX || n < 50)
@@ -107,11 +108,18 @@ static double bridge_edge(const an_image *im, const an_pose *pose, const an_mode
     lev = half_level(fl, sigma, &dldf);
     gi = an_walk_cross(sm, n, 0, +1, lev, 1);
     an_xing x;
-    if (!isfinite(gi) || an_xing_find(&l, buf, n, gi, lev, 1.0, -1, &x))
+    /* the pixel weights (for the variance) only when the noise is known; without the line the
+     * fit works in samples */
+    const an_line *lw = sigma > 0 ? &l : NULL;
+    if (!isfinite(gi) || an_xing_find_in(lw, buf, 0, n - 1, gi, lev, lw ? 1.0 : 1.0 / step, -1, &x))
         return NAN;
-    double sd = sd_at(lev, sigma), sdf = sd_at(fl, sigma);
-    *var =
-        (sd * sd * x.ss + dldf * dldf * sdf * sdf * mean_ss(&l, f0, f1, g)) / (x.slope * x.slope);
+    if (lw) {
+        double sd = sd_at(lev, sigma), sdf = sd_at(fl, sigma);
+        *var = (sd * sd * x.ss + dldf * dldf * sdf * sdf * mean_ss(&l, f0, f1, g)) /
+               (x.slope * x.slope);
+    } else {
+        *var = NAN;
+    }
     return v0 + x.idx * step;
 }
 
