@@ -170,8 +170,9 @@ typedef struct an_disc {
 } an_disc;
 
 /* Work buffers for the (block-averaged) mask, reused across images. Start zeroed; the holder owns
- * them and releases them with an_work_free. an_work_reserve grows them to hold npx entries; on
- * failure (-1) the old buffers stay valid and owned. */
+ * them and releases them with an_work_free. an_work_reserve grows them to hold npx entries (the
+ * stack 2 npx ints: the flood keeps coordinate pairs); on failure (-1) the old buffers stay valid
+ * and owned. */
 typedef struct an_work {
     size_t cap;
     unsigned char *mask;
