@@ -96,6 +96,10 @@ typedef struct an_line {
 
 /* Sets k offsets spaced at most `spacing` mm apart over [-half, +half] (one offset when half is 0).
  */
+/* A line from (u0, v0) in direction (du, dv), n samples step mm apart, on image im under pose p;
+ * the across direction is (-dv, du); no averaging offsets until an_line_offsets. */
+void an_line_init(an_line *l, const an_image *im, const an_pose *p, double u0, double v0, double du,
+                  double dv, double step, int n);
 void an_line_offsets(an_line *l, double half, double spacing);
 /* Samples the profile into out[0..n); returns the number of samples that fell (partly) outside the
  * image (those are NAN). */

@@ -243,3 +243,20 @@ double an_line_weight_ss(const an_line *l, int i0, int m, const double *c)
     free(grid);
     return ss;
 }
+
+void an_line_init(an_line *l, const an_image *im, const an_pose *p, double u0, double v0,
+                  double du, double dv, double step, int n)
+{
+    memset(l, 0, sizeof *l);
+    l->img = im;
+    l->pose = *p;
+    l->u0 = u0;
+    l->v0 = v0;
+    l->du = du;
+    l->dv = dv;
+    l->pu = -dv;
+    l->pv = du;
+    l->step = step;
+    l->n = n;
+    l->k = 1;
+}

@@ -128,23 +128,6 @@ static int line_fit(const double *x, const double *y, int n, double *a, double *
     return 0;
 }
 
-static void line_init(an_line *l, const an_image *im, const an_pose *p, double u0, double v0,
-                      double du, double dv, double step, int n)
-{
-    memset(l, 0, sizeof *l);
-    l->img = im;
-    l->pose = *p;
-    l->u0 = u0;
-    l->v0 = v0;
-    l->du = du;
-    l->dv = dv;
-    l->pu = -dv;
-    l->pv = du;
-    l->step = step;
-    l->n = n;
-    l->k = 1;
-}
-
 #ifndef H_RISE
 #define H_RISE 0.8
 #endif
@@ -168,7 +151,7 @@ static int long_edges(const an_image *im, const an_pose *pose, const an_model *m
     int n = (int)(2 * span / step) + 1;
     for (double u = uc - 0.75 * U; u <= uc + 0.75 * U + 1e-9 && nt < EDGE_MAX; u += 4.0) {
         an_line l;
-        line_init(&l, im, pose, u, vc - span, 0, 1, step, n);
+        an_line_init(&l, im, pose, u, vc - span, 0, 1, step, n);
         if (an_line_sample(&l, buf))
             continue;
         double fb = an_mean_range(buf, n, 0, 7), ft = an_mean_range(buf, n, n - 8, n - 1);
@@ -243,7 +226,7 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
     double fr[3] = {-0.7, 0.0, 0.7};
     for (int r = 0; r < 3; r++) {
         an_line l;
-        line_init(&l, im, &pose, uc - reach, vc + fr[r] * Vh, 1, 0, step, n);
+        an_line_init(&l, im, &pose, uc - reach, vc + fr[r] * Vh, 1, 0, step, n);
         an_line_offsets(&l, 0.5, 0.5);
         if (an_line_sample(&l, buf) > n / 10)
             continue;
@@ -293,7 +276,7 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
     double A[4096];
     for (int j = 0; j < nv; j++) {
         an_line l;
-        line_init(&l, im, &pose, ga, ab + EDGE_BLUR + j * vs, 1, 0, 1.0, nu);
+        an_line_init(&l, im, &pose, ga, ab + EDGE_BLUR + j * vs, 1, 0, 1.0, nu);
         an_line_sample(&l, buf);
         A[j] = an_mean_range(buf, nu, 0, nu - 1);
     }
@@ -332,7 +315,7 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
         if (nu2 > 4096)
             nu2 = 4096;
         an_line l;
-        line_init(&l, im, &pose, ul, vpk, 1, 0, ustep, nu2);
+        an_line_init(&l, im, &pose, ul, vpk, 1, 0, ustep, nu2);
         an_line_offsets(&l, 0.75, 0.5);
         an_line_sample(&l, buf);
         double sm[4096];
@@ -363,7 +346,7 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
         double Bv[4096];
         for (int j = 0; j < nvv; j++) {
             an_line lu;
-            line_init(&lu, im, &pose, ua + 0.25 * len, wa + j * 0.1, 1, 0, 1.0, nuu);
+            an_line_init(&lu, im, &pose, ua + 0.25 * len, wa + j * 0.1, 1, 0, 1.0, nuu);
             an_line_sample(&lu, buf);
             Bv[j] = an_mean_range(buf, nuu, 0, nuu - 1);
         }
@@ -475,7 +458,7 @@ static void shading_gain(const an_image *im, const an_pose *pose, const an_inser
     double band[2][4096], c[2][5], vc[2] = {ins->v_top + 4.0, ins->v_bot - 4.0};
     for (int b = 0; b < 2; b++) {
         an_line l;
-        line_init(&l, im, pose, ins->u_lo, vc[b], 1, 0, ustep, nu);
+        an_line_init(&l, im, pose, ins->u_lo, vc[b], 1, 0, ustep, nu);
         an_line_offsets(&l, 1.5, 0.5);
         if (an_line_sample(&l, band[b]))
             return;
@@ -564,7 +547,7 @@ int an_strip_measure(const an_image *im, const an_pose *pose, const an_insert *i
         goto out;
     }
     an_line l;
-    line_init(&l, im, pose, ins->u_lo, ins->strip_v[s], 1, 0, step, n);
+    an_line_init(&l, im, pose, ins->u_lo, ins->strip_v[s], 1, 0, step, n);
     double hw = fmin(fmax(0.4 * ins->strip_w[s], 0.5), 3.0);
     an_line_offsets(&l, hw, 0.5);
     out->half_width_mm = hw;
@@ -860,7 +843,7 @@ int an_wedge_edge_measure(const an_image *im, const an_pose *pose, const an_inse
         goto out;
     }
     an_line l;
-    line_init(&l, im, pose, ins->u_lo + 1.0, ins->strip_v[0], 1, 0, step, n);
+    an_line_init(&l, im, pose, ins->u_lo + 1.0, ins->strip_v[0], 1, 0, step, n);
     double hw = fmin(fmax(0.3 * ins->strip_w[0], 0.5), 3.0);
     an_line_offsets(&l, hw, 0.5);
     out->half_width_mm = hw;

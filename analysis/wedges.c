@@ -6,23 +6,6 @@
 
 #include "an_int.h"
 
-static void line_set(an_line *l, const an_image *im, const an_pose *p, double u0, double v0,
-                     double du, double dv, double step, int n)
-{
-    memset(l, 0, sizeof *l);
-    l->img = im;
-    l->pose = *p;
-    l->u0 = u0;
-    l->v0 = v0;
-    l->du = du;
-    l->dv = dv;
-    l->pu = -dv;
-    l->pv = du;
-    l->step = step;
-    l->n = n;
-    l->k = 1;
-}
-
 static double sd_at(double m, double sigma)
 {
     if (!(sigma > 0))
@@ -83,7 +66,7 @@ static double bridge_edge(const an_image *im, const an_pose *pose, const an_mode
     if (n > NMAX || n < 50)
         return NAN;
     an_line l;
-    line_set(&l, im, pose, u, v0, 0, 1, step, n);
+    an_line_init(&l, im, pose, u, v0, 0, 1, step, n);
     an_line_offsets(&l, hw, 0.5);
     if (an_line_sample(&l, buf))
         return NAN;
@@ -132,7 +115,7 @@ static int bar_end(const an_image *im, const an_pose *pose, double u, double hw,
     if (n > NMAX)
         n = NMAX, step = reach / (n - 1);
     an_line l;
-    line_set(&l, im, pose, u, top - 1.0, 0, -1, step, n);
+    an_line_init(&l, im, pose, u, top - 1.0, 0, -1, step, n);
     an_line_offsets(&l, hw, BAR_OFF_STEP);
     if (an_line_sample(&l, buf))
         return -1;
@@ -315,7 +298,7 @@ int an_bars_measure(const an_image *im, const an_pose *pose, const an_model *m, 
         goto out;
     }
     an_line l;
-    line_set(&l, im, pose, ua, top_mid - 4.0, 1, 0, step, n);
+    an_line_init(&l, im, pose, ua, top_mid - 4.0, 1, 0, step, n);
     an_line_offsets(&l, 1.0, 0.5);
     if (an_line_sample(&l, buf)) {
         sw_strlcpy(out->reason, "bars not found: outside the image", sizeof out->reason);
