@@ -376,7 +376,8 @@ typedef struct wseries {
     int nfiles, cap;
     wfile *files;
     double last_arrival; /* epoch seconds */
-    double retry_at;     /* monotonic; after a busy store */
+    double retry_at;     /* monotonic; after a busy store, or while looking for moved files */
+    int looks;           /* times measuring waited for files missing from their recorded paths */
 } wseries;
 
 static void series_free(wseries *s)
@@ -1410,6 +1411,10 @@ enum { TAKEN = 0, RETRY, SKIPPED, SETTLE };
  * a receiver that writes under its final name (storescp does): it waits until it has settled, or
  * until inotify says it was closed. */
 #define SETTLE_S 1.0
+/* Looking for a series' missing files: how many times, and how long each look waits (longer than
+ * a scanned file takes to settle). */
+#define MAX_LOOKS 2
+#define LOOK_S (2 * SETTLE_S + 0.5)
 
 typedef struct series_state_look {
     db_series_state state;
@@ -1890,11 +1895,34 @@ static int measure_series(watcher *w, wseries *s, int quiet)
     }
     how = s->state == DB_SERIES_QUIET ? "quiet" : "complete";
 
-    /* 2. A series taken on content alone must look like the phantom series. */
+    /* 2. Files not at their recorded paths have most often been renamed or moved within the
+     * folder (a receiver renaming its study folder, files that came back by another name and are
+     * still settling): the folder is scanned again and the measurement waits for them, twice, before
+     * they are recorded as vanished. Nothing has changed in the store meanwhile but the state. */
+    if (s->looks < MAX_LOOKS) {
+        int missing = 0;
+        for (int i = 0; i < s->nfiles; i++) {
+            struct stat here;
+            if (lstat(s->files[i].path, &here) != 0 && errno == ENOENT)
+                missing++;
+        }
+        if (missing) {
+            s->looks++;
+            wd_info("series %s: %d of its files are not where they were found; looking for them "
+                    "in the watch folder before measuring",
+                    s->uid, missing);
+            rescan_all(w);
+            s->retry_at = wd_now_mono() + LOOK_S;
+            result = RETRY;
+            goto out;
+        }
+    }
+
+    /* 3. A series taken on content alone must look like the phantom series. */
     int not_phantom =
         s->match == WD_MATCH_CONTENT && !content_fits(w, s, fail_why, sizeof fail_why);
 
-    /* 3. Pixels, checked against the content seen at arrival. */
+    /* 4. Pixels, checked against the content seen at arrival. */
     note_series(s->id);
     crash_test_hook("series", s->uid);
     if (!(ld = calloc((size_t)s->nfiles + 1, sizeof *ld))) {
@@ -1943,7 +1971,7 @@ static int measure_series(watcher *w, wseries *s, int quiet)
             snprintf(fail_why, sizeof fail_why, "no readable image");
     }
 
-    /* 4. Measure (no store access: the write lock is not held while computing). */
+    /* 5. Measure (no store access: the write lock is not held while computing). */
     wd_method method;
     method.model = w->s->model;
     method.params = w->s->params;
@@ -1960,7 +1988,7 @@ static int measure_series(watcher *w, wseries *s, int quiet)
     }
 
     note_clear();
-    /* 5. One transaction: file fates, the run and its rows, alerts, the series' final state. */
+    /* 6. One transaction: file fates, the run and its rows, alerts, the series' final state. */
     if ((st = db_begin(w->d, &err)) != SW_OK)
         goto out;
     began = 1;
@@ -2043,7 +2071,7 @@ static int measure_series(watcher *w, wseries *s, int quiet)
         goto out;
     began = 0;
 
-    /* 6. Committed: report, then move the files. */
+    /* 7. Committed: report, then move the files. */
     if (not_phantom) {
         wd_info("series %s #%d %s: %s", s->label, s->number, s->uid, fail_why);
         w->st.series_failed++;
@@ -2409,6 +2437,16 @@ static wseries *next_ready(watcher *w, int allow_quiet, int *quiet)
     return best;
 }
 
+/* Whether a series waits while the folder is searched for its moved files. */
+static int looking(const watcher *w)
+{
+    double mono = wd_now_mono();
+    for (int i = 0; i < w->nseries; i++)
+        if (w->series[i]->looks > 0 && w->series[i]->retry_at > mono)
+            return 1;
+    return 0;
+}
+
 static double next_quiet_s(const watcher *w)
 {
     double real = wd_now_real(), t = INFINITY;
@@ -2557,9 +2595,10 @@ static int loop(watcher *w)
         int allow_quiet = w->q.head == w->q.n && !w->ndirs;
         wseries *s = next_ready(w, allow_quiet && !w->once, &quiet);
         if (!s && w->once && allow_quiet && !w->q.nlate) {
-            /* --once: the folder is done; measure what has been quiet long enough. */
+            /* --once: the folder is done; measure what has been quiet long enough (after the
+             * looks for moved files that are under way). */
             s = next_ready(w, 1, &quiet);
-            if (!s)
+            if (!s && !looking(w))
                 break;
         }
         if (s) {

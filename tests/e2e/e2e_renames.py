@@ -29,6 +29,11 @@ wait_for(lambda: query(db, "SELECT count(*) FROM files WHERE state = 'parsed'")[
          "six files parsed")
 renamed = os.path.join(inbox, "ALDMR1_study_done")
 os.rename(study, renamed)
+# Touched as they were renamed, the six are still settling when the scan of the renamed folder
+# finds them, while the five that follow arrive by events: the series is complete before its
+# first six are followed, and measuring must wait for them rather than call them vanished.
+for f in files[:6]:
+    os.utime(os.path.join(renamed, os.path.basename(f)))
 for f in files[6:]:
     shutil.copyfile(f, os.path.join(renamed, os.path.basename(f)))
 wait_for(lambda: stored_series(db) == 1, 60, "the series stored after its folder was renamed")
