@@ -52,10 +52,29 @@ typedef struct an_model {
     /* added for the simulator (additive): extents it needs to build the whole object */
     double cyl_w_min, cyl_w_max; /* fluid cylinder's ends along w (-24, +124) */
     double wedge_w_half;         /* bridge and bars extend |w - wedge_w| <= this (12) */
+    /* added (additive) */
+    double bar_face_slope; /* dL/dw of each bar's end face: a slice displaced by d along w shows
+                              L_left = L0 + k d, L_right = L0 - k d (1: 45-degree wedges) */
 } an_model;
 
-/* Fills m with the large phantom's model (../shared/phantom-large.md). */
+/* Fills m with the large phantom's model: config/large-phantom.model, compiled in as text and read
+ * by an_model_parse_complete (docs/models.md). Never fails on a sound build; were the built-in
+ * text broken, m would be a model that an_model_check refuses. */
 void an_model_large(an_model *m);
+/* The text of config/large-phantom.model as it was at build time (NUL-terminated). */
+extern const char an_model_large_text[];
+/* Reads a model file's text (INI, docs/models.md) over *m: keys the text leaves out keep m's
+ * values. origin names the text in messages (a path). On success *m is the new model, checked by
+ * an_model_check; on failure *m is unchanged and err names origin, the line and the reason (an
+ * unknown key, a key given twice, a value out of range, an inconsistent model). */
+sw_status an_model_parse(an_model *m, const char *text, const char *origin, sw_error *err);
+/* The same, but every key without a format default must be in the text (no base model): how the
+ * built-in model is read, and how a site can check that its file is complete. */
+sw_status an_model_parse_complete(an_model *m, const char *text, const char *origin,
+                                  sw_error *err);
+/* m as model-file text that an_model_parse reads back (numbers to 10 significant digits, each key
+ * with its one-line help). The caller frees it with free(); NULL when memory ran out. */
+char *an_model_format(const an_model *m);
 /* Checks that a model is self-consistent; names the first bad field in err. */
 sw_status an_model_check(const an_model *m, sw_error *err);
 

@@ -1,49 +1,9 @@
-/* model.c: the default phantom model, tolerance set and method parameters, and the closed-form
- * thickness formulas. */
+/* model.c: the phantom model's consistency check, the default tolerance set and method parameters,
+ * and the closed-form thickness formulas (the model file itself: model_file.c). */
 #include <math.h>
 #include <string.h>
 
 #include "analysis.h"
-
-void an_model_large(an_model *m)
-{
-    memset(m, 0, sizeof *m);
-    sw_strlcpy(m->name, "large-ramp-wedge", sizeof m->name);
-    m->radius_mm = 95.0;
-    m->n_slices = 11;
-    m->slice_gap_mm = 10.0;
-    m->nominal_thickness_mm = 5.0;
-    m->method = AN_METHOD_CROSSED_RAMPS;
-    m->insert_u_min = -70.0;
-    m->insert_u_max = 70.0;
-    m->insert_v_min = -10.0;
-    m->insert_v_max = 10.0;
-    m->insert_w_half = 12.0;
-    m->n_ramps = 2;
-    m->ramp[0] = (an_ramp_def){.v_min = 1.5, .v_max = 5.5, .slope = 0.1};
-    m->ramp[1] = (an_ramp_def){.v_min = -5.5, .v_max = -1.5, .slope = -0.1};
-    m->slot_mm = 1.0;
-    m->wedge_slope = 1.0;
-    m->has_wedges = 1;
-    m->wedge_w[0] = 0.0;
-    m->wedge_w[1] = 100.0;
-    m->bridge_u_min = -15.0;
-    m->bridge_u_max = 15.0;
-    m->bridge_v_min = 80.0;
-    m->bridge_v_max = 95.0;
-    m->bar_u_min[0] = -6.0;
-    m->bar_u_max[0] = -1.0;
-    m->bar_u_min[1] = 1.0;
-    m->bar_u_max[1] = 6.0;
-    m->bar_top_v = 80.0;
-    m->bar_len0_mm = 15.0;
-    m->ramp_slice = 1;
-    m->wedge_slice[0] = 1;
-    m->wedge_slice[1] = 11;
-    m->cyl_w_min = -24.0;
-    m->cyl_w_max = 124.0;
-    m->wedge_w_half = 12.0;
-}
 
 sw_status an_model_check(const an_model *m, sw_error *err)
 {
@@ -73,6 +33,8 @@ sw_status an_model_check(const an_model *m, sw_error *err)
                  m->wedge_slice[1] <= m->n_slices && m->wedge_slice[0] != m->wedge_slice[1],
              "wedge slices out of range");
         NEED(m->bar_len0_mm > 0, "bar length must be positive");
+        NEED(m->bar_face_slope > 0 && isfinite(m->bar_face_slope),
+             "bar end faces need a positive slope");
         for (int i = 0; i < 2; i++)
             NEED(m->bar_u_min[i] < m->bar_u_max[i], "bar extent is empty");
     }

@@ -107,7 +107,9 @@ static double bridge_score(const an_image *im, const an_pose *p, const an_model 
             if (isfinite(s))
                 dk += s, nd++;
         }
-        for (double v = m->bar_top_v - 35; v <= m->bar_top_v - 25; v += 1.0) {
+        /* the fluid 10 to 20 mm below the bars' ends at the vertex */
+        double vf = m->bar_top_v - m->bar_len0_mm;
+        for (double v = vf - 20; v <= vf - 10; v += 1.0) {
             double x, y;
             an_pose_to_px(p, u, v, &x, &y);
             double s = an_bilinear(im, x, y);
@@ -870,7 +872,8 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
                     double dd = p->ramp_displacement_mm - p->displacement_mm;
                     out->pitch_deg = atan(dd / den) * AN_DEG;
                     double sd =
-                        sqrt(pow(p->ramp_displacement_unc_mm, 2) + pow(0.5 * p->uncertainty_mm, 2));
+                        sqrt(pow(p->ramp_displacement_unc_mm, 2) +
+                             pow(0.5 * p->uncertainty_mm / model->bar_face_slope, 2));
                     out->pitch_unc_deg = sd / fabs(den) * AN_DEG;
                     out->pitch_measured = 1;
                 }
@@ -885,7 +888,9 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
             double sc = (p1->displacement_mm - p0->displacement_mm) / dz;
             pm->scale_percent = 100 * sc;
             pm->offset_mm = p0->displacement_mm - sc * p0->z_mm;
-            double s0 = 0.5 * p0->uncertainty_mm, s1 = 0.5 * p1->uncertainty_mm;
+            /* the displacements' uncertainties: d = -(difference) / (2 k) */
+            double s0 = 0.5 * p0->uncertainty_mm / model->bar_face_slope,
+                   s1 = 0.5 * p1->uncertainty_mm / model->bar_face_slope;
             pm->scale_unc_percent = 100 * sqrt(s0 * s0 + s1 * s1) / fabs(dz);
             /* offset = (d0 z1 - d1 z0) / dz */
             pm->offset_unc_mm = sqrt(pow(p1->z_mm * s0, 2) + pow(p0->z_mm * s1, 2)) / fabs(dz);

@@ -358,7 +358,8 @@ int an_bars_measure(const an_image *im, const an_pose *pose, const an_model *m, 
         bars[s]->measured = 1;
     }
     out->bar_difference_mm = out->right.length_mm - out->left.length_mm;
-    out->displacement_mm = -0.5 * out->bar_difference_mm;
+    /* L_left = L0 + k d, L_right = L0 - k d: the difference is -2 k d */
+    out->displacement_mm = -0.5 * out->bar_difference_mm / m->bar_face_slope;
     /* The two bars share their top, which cancels from the difference. */
     out->uncertainty_mm = sqrt(var_end[0] + var_end[1]);
     {

@@ -134,21 +134,23 @@ sw_status sim_scene_build(const an_model *m, const sim_pose *pose, double shift_
         }
     }
     /* the position wedges: a bridge and two bars under it at each vertex plane; the bars end on
-     * 45-degree faces: L_left = L0 + (w - w_v), L_right = L0 - (w - w_v) */
+     * faces of slope k (the model's face_slope; 1: 45 degrees): L_left = L0 + k (w - w_v),
+     * L_right = L0 - k (w - w_v) */
     if (m->has_wedges) {
+        double k = m->bar_face_slope;
         for (int j = 0; j < 2; j++) {
             double wv = m->wedge_w[j], wh = m->wedge_w_half;
             add_box(sc, -1, m->bridge_u_min, m->bridge_u_max, m->bridge_v_min, m->bridge_v_max,
                     wv - wh, wv + wh);
-            double vbot = m->bar_top_v - m->bar_len0_mm - wh;
+            double vbot = m->bar_top_v - m->bar_len0_mm - k * wh;
             sim_prim *l = add_box(sc, -1, m->bar_u_min[0], m->bar_u_max[0], vbot, m->bar_top_v,
                                   wv - wh, wv + wh);
-            /* v >= top - L0 - (w - wv)  <=>  -v - w <= L0 - top - wv */
-            add_half(sc, l, 0, -1, -1, m->bar_len0_mm - m->bar_top_v - wv);
+            /* v >= top - L0 - k (w - wv)  <=>  -v - k w <= L0 - top - k wv */
+            add_half(sc, l, 0, -1, -k, m->bar_len0_mm - m->bar_top_v - k * wv);
             sim_prim *rr = add_box(sc, -1, m->bar_u_min[1], m->bar_u_max[1], vbot, m->bar_top_v,
                                    wv - wh, wv + wh);
-            /* v >= top - L0 + (w - wv)  <=>  -v + w <= L0 - top + wv */
-            add_half(sc, rr, 0, -1, 1, m->bar_len0_mm - m->bar_top_v + wv);
+            /* v >= top - L0 + k (w - wv)  <=>  -v + k w <= L0 - top + k wv */
+            add_half(sc, rr, 0, -1, k, m->bar_len0_mm - m->bar_top_v + k * wv);
         }
     }
     return SW_OK;

@@ -266,7 +266,7 @@ static int plane_point(const sim_scene *sc, const double a1[3], double b1, const
 }
 
 /* Bar lengths in the slice centre plane zc along each bar's centre line (u = bar centre): from the
- * bar's top (v = bar_top_v) to its 45-degree end face. */
+ * bar's top (v = bar_top_v) to its end face (slope face_slope; 1: 45 degrees). */
 static void wedge_truth(const sim_scene *sc, const an_model *m, int j, double zc,
                         sim_wedge_truth *wt)
 {
@@ -275,10 +275,11 @@ static void wedge_truth(const sim_scene *sc, const an_model *m, int j, double zc
     for (int b = 0; b < 2; b++) {
         double uc = 0.5 * (m->bar_u_min[b] + m->bar_u_max[b]);
         double eu[3] = {1, 0, 0}, ev[3] = {0, 1, 0};
-        /* end faces: left -v - w = L0 - top - wv; right -v + w = L0 - top + wv */
-        double face[3] = {0, -1, b == 0 ? -1 : 1};
-        double fb =
-            b == 0 ? m->bar_len0_mm - m->bar_top_v - wv : m->bar_len0_mm - m->bar_top_v + wv;
+        /* end faces: left -v - k w = L0 - top - k wv; right -v + k w = L0 - top + k wv */
+        double k = m->bar_face_slope;
+        double face[3] = {0, -1, b == 0 ? -k : k};
+        double fb = b == 0 ? m->bar_len0_mm - m->bar_top_v - k * wv
+                           : m->bar_len0_mm - m->bar_top_v + k * wv;
         double qa[3], qb[3];
         if (plane_point(sc, eu, uc, ev, m->bar_top_v, zc, qa) != 0 ||
             plane_point(sc, eu, uc, face, fb, zc, qb) != 0) {
