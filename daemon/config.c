@@ -26,7 +26,6 @@ typedef struct field {
 
 static const char *const half_levels[] = {"zero", "floor", "background", NULL};
 static const char *const log_levels[] = {"debug", "info", "warning", "error", NULL};
-static const char *const methods[] = {"crossed-ramps", "single-ramp", "single-wedge", NULL};
 
 #define S(sec, k, st, member, d, h) {sec, k, F_STR, offsetof(st, member), sizeof(((st *)0)->member), d, 0, 0, NULL, h}
 #define I(sec, k, st, member, d, lo, hi, h) {sec, k, F_INT, offsetof(st, member), 0, d, lo, hi, NULL, h}
@@ -66,47 +65,8 @@ static const field config_fields[] = {
     E("log", "level", wd_config, log_level, "info", log_levels, "debug, info, warning or error"),
 };
 
-static const field model_fields[] = {
-    S("phantom", "name", an_model, name, NULL, "model name, stored with every result"),
-    D("phantom", "radius_mm", an_model, radius_mm, NULL, 10, 500, "fluid cylinder radius"),
-    D("phantom", "w_min_mm", an_model, cyl_w_min, NULL, -1000, 1000, "fluid cylinder's end toward the first slice"),
-    D("phantom", "w_max_mm", an_model, cyl_w_max, NULL, -1000, 1000, "fluid cylinder's end toward the last slice"),
-    I("phantom", "slices", an_model, n_slices, NULL, 1, AN_MAX_IMAGES, "slices of the standard series"),
-    D("phantom", "slice_gap_mm", an_model, slice_gap_mm, NULL, 0.1, 100, "centre-to-centre spacing"),
-    D("phantom", "nominal_thickness_mm", an_model, nominal_thickness_mm, NULL, 0.1, 50, "nominal slice thickness"),
-    E("phantom", "method", an_model, method, NULL, methods, "crossed-ramps, single-ramp or single-wedge"),
-    I("phantom", "ramp_slice", an_model, ramp_slice, NULL, 1, AN_MAX_IMAGES, "ordinal of the slice with the ramps"),
-    D("insert", "u_min_mm", an_model, insert_u_min, NULL, -500, 500, "thickness insert extent"),
-    D("insert", "u_max_mm", an_model, insert_u_max, NULL, -500, 500, ""),
-    D("insert", "v_min_mm", an_model, insert_v_min, NULL, -500, 500, ""),
-    D("insert", "v_max_mm", an_model, insert_v_max, NULL, -500, 500, ""),
-    D("insert", "w_half_mm", an_model, insert_w_half, NULL, 0.1, 500, ""),
-    I("insert", "ramps", an_model, n_ramps, NULL, 0, 2, "number of ramps"),
-    D("insert", "slot_mm", an_model, slot_mm, NULL, 0, 20, "slot thickness along the axis"),
-    D("insert", "wedge_slope", an_model, wedge_slope, NULL, 0.01, 100, "single-wedge method: dw/du of the wedge face"),
-    D("ramp.top", "v_min_mm", an_model, ramp[0].v_min, NULL, -500, 500, "first ramp's extent across"),
-    D("ramp.top", "v_max_mm", an_model, ramp[0].v_max, NULL, -500, 500, ""),
-    D("ramp.top", "slope", an_model, ramp[0].slope, NULL, -10, 10, "dw/du of the slot's centre plane"),
-    D("ramp.bottom", "v_min_mm", an_model, ramp[1].v_min, NULL, -500, 500, "second ramp's extent across"),
-    D("ramp.bottom", "v_max_mm", an_model, ramp[1].v_max, NULL, -500, 500, ""),
-    D("ramp.bottom", "slope", an_model, ramp[1].slope, NULL, -10, 10, ""),
-    B("wedges", "present", an_model, has_wedges, NULL, "the phantom has crossed slice-position wedges"),
-    D("wedges", "w_first_mm", an_model, wedge_w[0], NULL, -1000, 1000, "vertex plane on the ramp side"),
-    D("wedges", "w_last_mm", an_model, wedge_w[1], NULL, -1000, 1000, "vertex plane on the far side"),
-    D("wedges", "w_half_mm", an_model, wedge_w_half, NULL, 0.1, 500, "bridge and bars extent along the axis"),
-    I("wedges", "slice_first", an_model, wedge_slice[0], NULL, 1, AN_MAX_IMAGES, "ordinal of the first wedge slice"),
-    I("wedges", "slice_last", an_model, wedge_slice[1], NULL, 1, AN_MAX_IMAGES, "ordinal of the second wedge slice"),
-    D("wedges", "bridge_u_min_mm", an_model, bridge_u_min, NULL, -500, 500, "bridge extent"),
-    D("wedges", "bridge_u_max_mm", an_model, bridge_u_max, NULL, -500, 500, ""),
-    D("wedges", "bridge_v_min_mm", an_model, bridge_v_min, NULL, -500, 500, ""),
-    D("wedges", "bridge_v_max_mm", an_model, bridge_v_max, NULL, -500, 500, ""),
-    D("wedges", "left_u_min_mm", an_model, bar_u_min[0], NULL, -500, 500, "left bar extent"),
-    D("wedges", "left_u_max_mm", an_model, bar_u_max[0], NULL, -500, 500, ""),
-    D("wedges", "right_u_min_mm", an_model, bar_u_min[1], NULL, -500, 500, "right bar extent"),
-    D("wedges", "right_u_max_mm", an_model, bar_u_max[1], NULL, -500, 500, ""),
-    D("wedges", "bar_top_v_mm", an_model, bar_top_v, NULL, -500, 500, "bars hang from here"),
-    D("wedges", "bar_length_mm", an_model, bar_len0_mm, NULL, 0.1, 500, "bar length at the vertex"),
-};
+/* The phantom model file's table lives with the model in analysis/model_file.c, so that the
+ * built-in model, the simulator and the daemon read a model file by one parser. */
 
 /* Tolerance sets: the same fields in [default] and in each [rule NAME]. */
 static const field tol_fields[] = {
@@ -265,19 +225,6 @@ static int config_handler(void *user, const char *section, const char *key, cons
         return 0;
     }
     return set_value(f, c, value, ctx->why, sizeof ctx->why);
-}
-
-static int model_handler(void *user, const char *section, const char *key, const char *value)
-{
-    parse_ctx *ctx = user;
-    if (ctx->why[0])
-        return 0;
-    const field *f = find_field(model_fields, NFIELDS(model_fields), section, key);
-    if (!f) {
-        snprintf(ctx->why, sizeof ctx->why, "unknown setting '%s' in [%s]", key, section);
-        return 0;
-    }
-    return set_value(f, ctx->target, value, ctx->why, sizeof ctx->why);
 }
 
 static int tol_handler(void *user, const char *section, const char *key, const char *value)
@@ -471,24 +418,51 @@ const char *wd_config_alias(const wd_config *c, const char *station)
 
 sw_status wd_model_load(an_model *m, const char *path, sw_error *err)
 {
+    enum { MODEL_MAX_BYTES = 1 << 20 }; /* a model file is a few kilobytes */
+    char *text = NULL;
+    sw_status st = SW_OK;
+    FILE *f = fopen(path, "rb");
+    if (!f) {
+        st = sw_error_set(err, SW_EIO, "%s: cannot open: %s", path, strerror(errno));
+        goto out;
+    }
+    if (!(text = malloc(MODEL_MAX_BYTES + 1))) {
+        st = sw_error_set(err, SW_ENOMEM, "%s: out of memory", path);
+        goto out;
+    }
+    size_t n = fread(text, 1, MODEL_MAX_BYTES + 1, f);
+    if (ferror(f)) {
+        st = sw_error_set(err, SW_EIO, "%s: cannot read: %s", path, strerror(errno));
+        goto out;
+    }
+    if (n > MODEL_MAX_BYTES) {
+        st = sw_error_set(err, SW_EINVAL, "%s: larger than %d bytes: not a model file", path,
+                          MODEL_MAX_BYTES);
+        goto out;
+    }
+    if (memchr(text, '\0', n)) {
+        st = sw_error_set(err, SW_EINVAL, "%s: holds a NUL byte: not a model file", path);
+        goto out;
+    }
+    text[n] = '\0';
+    /* over the built-in large phantom: keys the file leaves out keep its values */
     an_model tmp;
     an_model_large(&tmp);
-    parse_ctx ctx = {.kind = 1, .target = &tmp};
-    sw_status st = parse(path, model_handler, &ctx, err);
-    if (st == SW_OK) {
-        sw_error e2;
-        sw_error_clear(&e2);
-        if (an_model_check(&tmp, &e2) != SW_OK)
-            st = sw_error_set(err, SW_EINVAL, "%s: %s", path, e2.msg);
-    }
+    st = an_model_parse(&tmp, text, path, err);
     if (st == SW_OK)
         *m = tmp;
+out:
+    if (f)
+        fclose(f);
+    free(text);
     return st;
 }
 
 void wd_model_print(const an_model *m, FILE *f)
 {
-    print_table(model_fields, NFIELDS(model_fields), m, f, NULL);
+    char *t = an_model_format(m);
+    fputs(t ? t : "; (out of memory)\n", f);
+    free(t);
 }
 
 /* ---- tolerances ---- */
