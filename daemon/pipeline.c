@@ -4,6 +4,7 @@
 #include <math.h>
 #include <stdlib.h>
 #include <string.h>
+#include <strings.h>
 
 #include "files.h"
 #include "report.h"
@@ -13,6 +14,17 @@ void wd_method_default(wd_method *m)
     an_model_large(&m->model);
     an_tolerance_default(&m->tol);
     an_params_default(&m->params);
+    wd_hint_settings_default(&m->hints);
+}
+
+const char *wd_thickness_label(const wd_measured *m)
+{
+    return m && m->partition ? "partition thickness" : "slice thickness";
+}
+
+const char *wd_thickness_metric(const wd_measured *m)
+{
+    return m && m->partition ? "partition_thickness" : "slice_thickness";
 }
 
 static void view_of(const dcm_image *d, an_image *v)
@@ -63,6 +75,7 @@ sw_status wd_measure(const dcm_image *const *imgs, int n, const wd_method *metho
     if (n < 1 || !imgs)
         return sw_error_set(err, SW_EINVAL, "series: no images");
     out->first = imgs[0];
+    out->partition = !strcasecmp(imgs[0]->mr_acquisition_type, "3D");
     const char *uid = imgs[0]->series_instance_uid;
     for (int i = 0; i < n; i++) {
         const dcm_image *d = imgs[i];
@@ -98,6 +111,9 @@ sw_status wd_measure(const dcm_image *const *imgs, int n, const wd_method *metho
                                          &method->params, e->res, err);
         if (st != SW_OK)
             return st;
+        wd_hint_input hi;
+        wd_hint_input_from_result(e->res, out->partition, &hi);
+        e->n_hints = wd_hints(&hi, &method->hints, e->hint, WD_MAX_HINTS);
     }
     return SW_OK;
 }
@@ -200,6 +216,7 @@ sw_status wd_measured_json(const wd_measured *m, json_t *array)
         json_object_set_new(o, "noise_sd", num(r->noise_sd));
         json_object_set_new(o, "rotation_deg", num(r->rotation_deg));
         json_object_set_new(o, "slice_thickness", thickness_json(&r->thickness));
+        json_object_set_new(o, "thickness_kind", json_string(m->partition ? "partition" : "slice"));
         json_t *pos = json_array();
         for (int k = 0; k < 2; k++)
             if (r->position[k].slice > 0 || r->position[k].measured)
@@ -219,6 +236,15 @@ sw_status wd_measured_json(const wd_measured *m, json_t *array)
                             num(r->pitch_measured ? r->pitch_unc_deg : NAN));
         json_object_set_new(o, "verdict", json_string(an_verdict_name(r->verdict)));
         json_object_set_new(o, "reason", reason_or_null(r->reason));
+        json_t *hints = json_array();
+        for (int h = 0; h < e->n_hints; h++) {
+            json_t *ho = json_object();
+            json_object_set_new(ho, "code", json_string(wd_hint_name(e->hint[h].code)));
+            json_object_set_new(ho, "brief", json_string(e->hint[h].brief));
+            json_object_set_new(ho, "text", json_string(e->hint[h].text));
+            json_array_append_new(hints, ho);
+        }
+        json_object_set_new(o, "hints", hints);
         if (json_array_append_new(array, o))
             return SW_ENOMEM;
     }
@@ -261,8 +287,8 @@ void wd_measured_text(const wd_measured *m, FILE *f)
         fprintf(f, "  echo %d (TE %.1f ms), %d images, SNR %.0f, rotation %.2f deg\n",
                 e->echo_number, e->echo_time_ms, e->n, r->snr, r->rotation_deg);
         if (t->measured) {
-            fprintf(f, "  slice thickness, slice %d:  %.2f \u00b1 %.2f mm  (limits %.2f to %.2f)  ",
-                    t->slice, t->corrected_mm, t->uncertainty_mm, t->limit_lo_mm,
+            fprintf(f, "  %s, slice %d:  %.2f \u00b1 %.2f mm  (limits %.2f to %.2f)  ",
+                    wd_thickness_label(m), t->slice, t->corrected_mm, t->uncertainty_mm, t->limit_lo_mm,
                     t->limit_hi_mm);
             verdict_note(f, t->verdict, t->reason);
             fprintf(f, "    ramps %.2f and %.2f mm long; per ramp %.2f and %.2f mm; ACR formula "
@@ -270,7 +296,7 @@ void wd_measured_text(const wd_measured *m, FILE *f)
                     t->top.length_mm, t->bottom.length_mm, t->top_thickness_mm,
                     t->bottom_thickness_mm, t->acr_mm, t->tilt_deg, t->fwtm_mm);
         } else {
-            fprintf(f, "  slice thickness:  ");
+            fprintf(f, "  %s:  ", wd_thickness_label(m));
             verdict_note(f, AN_UNMEASURABLE, t->reason);
         }
         for (int k = 0; k < 2; k++) {
@@ -301,6 +327,8 @@ void wd_measured_text(const wd_measured *m, FILE *f)
                     r->pitch_unc_deg);
         fprintf(f, "  verdict: ");
         verdict_note(f, r->verdict, r->reason);
+        for (int h = 0; h < e->n_hints; h++)
+            fprintf(f, "  hint (%s): %s\n", wd_hint_name(e->hint[h].code), e->hint[h].text);
         fputc('\n', f);
     }
 }

@@ -7,6 +7,7 @@
 
 #include "analysis.h"
 #include "dicom.h"
+#include "hints.h"
 
 #define WD_MAX_ECHOES 8
 
@@ -15,6 +16,7 @@ typedef struct wd_method {
     an_model model;
     an_tolerance tol;
     an_params params;
+    wd_hint_settings hints; /* when a number counts as off for the cause hints */
 } wd_method;
 
 void wd_method_default(wd_method *m);
@@ -27,11 +29,15 @@ typedef struct wd_echo {
     const dcm_image *img[AN_MAX_IMAGES];
     an_image view[AN_MAX_IMAGES];
     an_series_result *res;
+    int n_hints; /* cause hints of this echo's result (docs/hints.md) */
+    wd_hint hint[WD_MAX_HINTS];
 } wd_echo;
 
 typedef struct wd_measured {
     const dcm_image *first; /* attributes of the series (borrowed) */
     int n_duplicates;        /* images dropped as repeated SOP instance (and frame) */
+    int partition;           /* 1: MRAcquisitionType 3D: the ramp slice's thickness is a 3D
+                                partition's thickness, labelled so and judged by the 3d set */
     int n_echoes;
     wd_echo echo[WD_MAX_ECHOES];
 } wd_measured;
@@ -42,6 +48,11 @@ typedef struct wd_measured {
 sw_status wd_measure(const dcm_image *const *imgs, int n, const wd_method *method, wd_measured *out,
                      sw_error *err);
 void wd_measured_free(wd_measured *m);
+
+/* "partition thickness" for a 3D acquisition, else "slice thickness"; the stored metric's name
+ * ("partition_thickness" or "slice_thickness"). */
+const char *wd_thickness_label(const wd_measured *m);
+const char *wd_thickness_metric(const wd_measured *m);
 
 /* The worst verdict over all echoes. */
 an_verdict wd_measured_verdict(const wd_measured *m);

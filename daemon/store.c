@@ -112,7 +112,8 @@ static void thickness_warn_limits(const an_tolerance *tol, double nominal, doubl
     *hi = nominal + w;
 }
 
-static void flatten_thickness(flat *f, const an_thickness *t, const wd_method *method)
+static void flatten_thickness(flat *f, const an_thickness *t, const wd_method *method,
+                              const char *metric)
 {
     const an_tolerance *tol = &method->tol;
     const char *why = t->reason[0] ? t->reason : "slice thickness not measured";
@@ -131,7 +132,7 @@ static void flatten_thickness(flat *f, const an_thickness *t, const wd_method *m
     json_object_set_new(d, "warn_low_mm", jnum(wlo));
     json_object_set_new(d, "warn_high_mm", jnum(whi));
     json_object_set_new(d, "tolerance_set", json_string(tol->name));
-    row_note(f, "slice_thickness", t->slice, t->measured ? t->corrected_mm : NAN, t->uncertainty_mm,
+    row_note(f, metric, t->slice, t->measured ? t->corrected_mm : NAN, t->uncertainty_mm,
              "mm", t->measured ? wd_db_verdict(t->verdict) : DB_UNMEASURABLE, why, t->reason,
              t->nominal_mm, t->limit_lo_mm, t->limit_hi_mm, d);
     const char *top_why = t->top.reason[0] ? t->top.reason : why;
@@ -197,7 +198,7 @@ sw_status wd_flatten(const wd_measured *m, const wd_method *method, wd_row_fn fn
         f.echo = m->echo[i].echo_number > 0 ? m->echo[i].echo_number : 1;
         if (!r)
             continue;
-        flatten_thickness(&f, &r->thickness, method);
+        flatten_thickness(&f, &r->thickness, method, wd_thickness_metric(m));
         if (method->model.has_wedges)
             for (int k = 0; k < 2; k++)
                 flatten_position(&f, &r->position[k], k, r, method);
@@ -225,7 +226,7 @@ typedef struct pending_alert {
     int slice, echo;
     double value, limit;
     db_verdict verdict;
-    char message[320];
+    char message[480];
 } pending_alert;
 
 #define MAX_ALERTS 32
@@ -239,11 +240,16 @@ typedef struct sink {
     pending_alert alert[MAX_ALERTS];
 } sink;
 
+static int is_thickness(const char *metric)
+{
+    return !strcmp(metric, "slice_thickness") || !strcmp(metric, "partition_thickness");
+}
+
 static double crossed_limit(const db_measurement *m, int warn, const an_tolerance *tol)
 {
     if (!warn)
         return m->value > m->nominal ? m->limit_hi : m->limit_lo;
-    if (!strcmp(m->metric, "slice_thickness")) {
+    if (is_thickness(m->metric)) {
         double lo, hi;
         thickness_warn_limits(tol, m->nominal, &lo, &hi);
         return m->value > m->nominal ? hi : lo;
@@ -262,7 +268,7 @@ static sw_status sink_row(void *ctx, const db_measurement *m, sw_error *err)
     /* A result that could not be measured is worth one notice per run, not one per row. */
     int unmeasurable =
         m->verdict == DB_UNMEASURABLE &&
-        (!strcmp(m->metric, "slice_thickness") || !strcmp(m->metric, "bar_length_difference"));
+        (is_thickness(m->metric) || !strcmp(m->metric, "bar_length_difference"));
     if (unmeasurable)
         for (int i = 0; i < s->n_alerts; i++)
             if (s->alert[i].verdict == DB_UNMEASURABLE)
@@ -378,11 +384,12 @@ static void summarize(const wd_measured *m, char *buf, size_t n)
             continue;
         PUT("%secho %d: ", i ? "; " : "", m->echo[i].echo_number);
         const an_thickness *t = &r->thickness;
+        const char *tk = m->partition ? "partition thickness" : "thickness";
         if (t->measured)
-            PUT("thickness %.2f\u00b1%.2f mm %s", t->corrected_mm, t->uncertainty_mm,
+            PUT("%s %.2f\u00b1%.2f mm %s", tk, t->corrected_mm, t->uncertainty_mm,
                 an_verdict_name(t->verdict));
         else
-            PUT("thickness unmeasurable (%s)", t->reason[0] ? t->reason : "no reason");
+            PUT("%s unmeasurable (%s)", tk, t->reason[0] ? t->reason : "no reason");
         for (int k = 0; k < 2; k++) {
             const an_position *p = &r->position[k];
             if (p->measured)
@@ -395,6 +402,8 @@ static void summarize(const wd_measured *m, char *buf, size_t n)
             PUT(", offset %+.2f mm scale %+.2f %%", r->position_model.offset_mm,
                 r->position_model.scale_percent);
         PUT(", SNR %.0f", r->snr);
+        if (m->echo[i].n_hints)
+            PUT(", hint: %s", m->echo[i].hint[0].brief);
     }
 #undef PUT
 }
@@ -435,6 +444,27 @@ sw_status wd_store_run(db *d, const wd_series_ctx *ctx, const wd_method *method,
     out->verdict = wd_db_verdict(wd_measured_verdict(m));
     if ((rc = db_run_finish(d, out->run_id, 1, out->verdict, NULL, err)) != SW_OK)
         goto out;
+    /* The cause hints of each echo, beside the run; the first one also goes with the echo's
+     * alerts, so that whoever reads the alert reads the hint. */
+    for (int i = 0; i < m->n_echoes; i++) {
+        const wd_echo *e = &m->echo[i];
+        for (int h = 0; h < e->n_hints; h++) {
+            db_hint_info hi = {.run_id = out->run_id,
+                               .echo = e->echo_number > 0 ? e->echo_number : 1,
+                               .code = wd_hint_name(e->hint[h].code),
+                               .brief = e->hint[h].brief,
+                               .text = e->hint[h].text};
+            if ((rc = db_hint_add(d, &hi, err)) != SW_OK)
+                goto out;
+        }
+        for (int k = 0; e->n_hints && k < s->n_alerts; k++) {
+            pending_alert *a = &s->alert[k];
+            if (a->echo != (e->echo_number > 0 ? e->echo_number : 1))
+                continue;
+            size_t len = strlen(a->message);
+            snprintf(a->message + len, sizeof a->message - len, "; hint: %s", e->hint[0].brief);
+        }
+    }
     for (int i = 0; ctx->alerts && i < s->n_alerts; i++) {
         const pending_alert *a = &s->alert[i];
         db_alert_info ai = {.kind = a->kind,

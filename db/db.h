@@ -9,7 +9,7 @@
 #include "sw.h"
 
 /* The newest schema this program writes (PRAGMA user_version); docs/schema.md describes it. */
-#define DB_SCHEMA_VERSION 3
+#define DB_SCHEMA_VERSION 4
 /* PRAGMA application_id of a slicewarden database: 'SWDB'. */
 #define DB_APPLICATION_ID 0x53574442
 #define DB_BUSY_TIMEOUT_MS 5000 /* default wait for another connection's lock */
@@ -436,5 +436,49 @@ sw_status db_drift_episodes_each(db *d, int64_t scanner_id, int open_only, db_dr
  * (ISO 8601 prefixes, NULL: open); an alert without a series is placed by its created_at. */
 sw_status db_alerts_each(db *d, int64_t scanner_id, const char *from, const char *to,
                          db_alert_cb cb, void *ctx, sw_error *err);
+
+/* ---- cause hints and self-test evidence (schema step 4; db/evidence.c) ---- */
+
+/* A cause hint beside a result (run_id) or a drift alarm (alert_id too). Hints are history: never
+ * changed once written. */
+typedef struct db_hint_info {
+    int64_t run_id;   /* required */
+    int64_t alert_id; /* 0 when the hint is about the result, not an alert */
+    int echo;         /* 0 when not about one echo */
+    const char *code; /* e.g. "gradient-calibration" (docs/hints.md) */
+    const char *brief, *text;
+} db_hint_info;
+typedef int (*db_hint_cb)(void *ctx, const db_hint_info *h, const char *created_at);
+sw_status db_hint_add(db *d, const db_hint_info *h, sw_error *err);
+/* The hints of one run (oldest first); alert_id > 0: only that alert's. */
+sw_status db_hints_each(db *d, int64_t run_id, int64_t alert_id, db_hint_cb cb, void *ctx,
+                        sw_error *err);
+
+/* One self-test: the program version that ran it, when, the seed, and one row per quantity and
+ * condition with the bias, SD and fraction measured against the stated limits. */
+typedef struct db_selftest_row {
+    const char *model, *quantity, *condition, *unit;
+    int n, n_measured;
+    double bias, sd, max_abs_error;           /* NAN when nothing was measured */
+    double limit_bias, limit_sd, min_fraction; /* the guaranteed limits (NAN: none) */
+    double goal_bias, goal_sd;                 /* the accuracy bench's goals, reported only */
+    int guaranteed;                            /* 1: the row gates the self-test */
+    int passed;
+} db_selftest_row;
+typedef struct db_selftest_info {
+    const char *program_version, *started_at, *finished_at, *host, *summary;
+    double seconds;
+    int64_t seed;
+    int n_series, passed;
+} db_selftest_info;
+/* Stores a self-test and its rows in one transaction; *id its id. */
+sw_status db_selftest_add(db *d, const db_selftest_info *s, const db_selftest_row *rows, int n,
+                          int64_t *id, sw_error *err);
+typedef int (*db_selftest_cb)(void *ctx, int64_t id, const db_selftest_info *s);
+typedef int (*db_selftest_row_cb)(void *ctx, const db_selftest_row *r);
+/* Self-tests newest first (at most limit, 0: all); the rows of one, in the order stored. */
+sw_status db_selftests_each(db *d, int limit, db_selftest_cb cb, void *ctx, sw_error *err);
+sw_status db_selftest_rows_each(db *d, int64_t id, db_selftest_row_cb cb, void *ctx,
+                                sw_error *err);
 
 #endif

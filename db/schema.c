@@ -220,10 +220,66 @@ static const char STEP3[] =
     "  WHEN OLD.closed_at IS NOT NULL\n"
     "BEGIN SELECT RAISE(ABORT, 'a closed drift episode is never changed'); END;\n";
 
+/* Step 4 (added for cause hints and self-validation): the hints beside results and drift alarms,
+ * and the self-test runs with their rows, all history that never changes. db/evidence.c holds the
+ * queries. */
+static const char STEP4[] =
+    "CREATE TABLE hints (\n"
+    "  id INTEGER PRIMARY KEY,\n"
+    "  run_id INTEGER NOT NULL REFERENCES runs(id),\n"
+    "  alert_id INTEGER REFERENCES alerts(id),\n"
+    "  echo INTEGER CHECK (echo IS NULL OR echo > 0),\n"
+    "  code TEXT NOT NULL CHECK (length(code) > 0),\n"
+    "  brief TEXT NOT NULL DEFAULT '',\n"
+    "  text TEXT NOT NULL CHECK (length(text) > 0),\n"
+    "  created_at TEXT NOT NULL\n"
+    ") STRICT;\n"
+    "CREATE INDEX hints_run ON hints(run_id);\n"
+    "CREATE TRIGGER hint_immutable BEFORE UPDATE ON hints\n"
+    "BEGIN SELECT RAISE(ABORT, 'hints are never changed'); END;\n"
+    "CREATE TABLE selftests (\n"
+    "  id INTEGER PRIMARY KEY,\n"
+    "  program_version TEXT NOT NULL CHECK (length(program_version) > 0),\n"
+    "  started_at TEXT NOT NULL,\n"
+    "  finished_at TEXT NOT NULL,\n"
+    "  seconds REAL NOT NULL CHECK (seconds >= 0),\n"
+    "  seed INTEGER NOT NULL,\n"
+    "  n_series INTEGER NOT NULL CHECK (n_series >= 0),\n"
+    "  passed INTEGER NOT NULL CHECK (passed IN (0, 1)),\n"
+    "  summary TEXT NOT NULL DEFAULT '',\n"
+    "  host TEXT NOT NULL DEFAULT ''\n"
+    ") STRICT;\n"
+    "CREATE TABLE selftest_rows (\n"
+    "  id INTEGER PRIMARY KEY,\n"
+    "  selftest_id INTEGER NOT NULL REFERENCES selftests(id),\n"
+    "  model TEXT NOT NULL,\n"
+    "  quantity TEXT NOT NULL CHECK (length(quantity) > 0),\n"
+    "  condition TEXT NOT NULL DEFAULT '',\n"
+    "  unit TEXT NOT NULL DEFAULT '',\n"
+    "  n INTEGER NOT NULL CHECK (n >= 0),\n"
+    "  n_measured INTEGER NOT NULL CHECK (n_measured BETWEEN 0 AND n),\n"
+    "  bias REAL,\n"
+    "  sd REAL CHECK (sd IS NULL OR sd >= 0),\n"
+    "  max_abs_error REAL CHECK (max_abs_error IS NULL OR max_abs_error >= 0),\n"
+    "  limit_bias REAL,\n"
+    "  limit_sd REAL,\n"
+    "  limit_fraction REAL CHECK (limit_fraction IS NULL OR limit_fraction BETWEEN 0 AND 1),\n"
+    "  goal_bias REAL,\n"
+    "  goal_sd REAL,\n"
+    "  guaranteed INTEGER NOT NULL CHECK (guaranteed IN (0, 1)),\n"
+    "  passed INTEGER NOT NULL CHECK (passed IN (0, 1))\n"
+    ") STRICT;\n"
+    "CREATE INDEX selftest_rows_test ON selftest_rows(selftest_id);\n"
+    "CREATE TRIGGER selftest_immutable BEFORE UPDATE ON selftests\n"
+    "BEGIN SELECT RAISE(ABORT, 'a self-test is never changed'); END;\n"
+    "CREATE TRIGGER selftest_row_immutable BEFORE UPDATE ON selftest_rows\n"
+    "BEGIN SELECT RAISE(ABORT, 'a self-test row is never changed'); END;\n";
+
 const db_migration DB_MIGRATIONS[] = {
     {1, "tables, state machines and their guards", STEP1},
     {2, "indexes for resume, exports and reports", STEP2},
     {3, "drift episodes", STEP3},
+    {4, "cause hints and self-test evidence", STEP4},
 };
 const int DB_NMIGRATIONS = (int)(sizeof DB_MIGRATIONS / sizeof DB_MIGRATIONS[0]);
 
