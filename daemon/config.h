@@ -9,6 +9,7 @@
 
 #include "analysis.h"
 #include "drift.h"
+#include "hints.h"
 #include "sw.h"
 
 #define WD_DEFAULT_CONFIG "/etc/slicewarden/slicewarden.conf"
@@ -64,6 +65,8 @@ typedef struct wd_config {
     wd_drift_opts drift;
     /* [log] */
     int log_level;        /* wd_log_level */
+    /* [hints] (added for the cause hints, additive): when a number counts as off */
+    wd_hint_settings hints;
     /* [aliases] station = alias */
     int n_aliases;
     wd_alias alias[WD_MAX_ALIASES];

@@ -1975,6 +1975,7 @@ static int measure_series(watcher *w, wseries *s, int quiet)
     wd_method method;
     method.model = w->s->model;
     method.params = w->s->params;
+    method.hints = w->s->cfg.hints;
     const dcm_image *first = n_img ? imgs[0] : NULL;
     method.tol = *wd_tolerances_for(&w->s->tol, s->station, wd_tolerance_key(s->match, first));
     int measured = 0;
