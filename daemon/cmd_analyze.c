@@ -6,6 +6,7 @@
 #include <stdlib.h>
 #include <string.h>
 
+#include "config.h"
 #include "dicom.h"
 #include "files.h"
 #include "pipeline.h"
@@ -27,7 +28,7 @@ static void usage(FILE *f)
 {
     fprintf(f,
             "usage: slicewarden analyze [--json] [--png DIR] [--half-level zero|floor|background]\n"
-            "                           PATH...\n"
+            "                           [--model FILE] PATH...\n"
             "Measures slice thickness and slice position in the phantom series found in the given\n"
             "files and folders (folders are searched recursively).\n"
             "  --json        one JSON document on stdout instead of text\n"
@@ -36,6 +37,7 @@ static void usage(FILE *f)
             "                the plateau above the true zero, through the Rician model of the\n"
             "                noise floor), zero (half the plateau as measured, the ACR\n"
             "                convention) or background (half-way to the background; biased)\n"
+            "  --model FILE  phantom model file (docs/models.md) [the built-in large phantom]\n"
             "Exit status: 0 all pass, 1 a warn, fail or unmeasurable result, 2 an input or usage error.\n"
             "Results support, and never replace, a qualified medical physicist's review.\n");
 }
@@ -149,6 +151,7 @@ int wd_cmd_analyze(int argc, char **argv)
         {"json", no_argument, NULL, 'j'},
         {"png", required_argument, NULL, 'p'},
         {"half-level", required_argument, NULL, 'H'},
+        {"model", required_argument, NULL, 'm'},
         {"help", no_argument, NULL, 'h'},
         {NULL, 0, NULL, 0},
     };
@@ -179,6 +182,15 @@ int wd_cmd_analyze(int argc, char **argv)
                 return 2;
             }
             break;
+        case 'm': {
+            sw_error merr;
+            sw_error_clear(&merr);
+            if (wd_model_load(&method.model, optarg, &merr) != SW_OK) {
+                fprintf(stderr, "slicewarden analyze: %s\n", merr.msg);
+                return 2;
+            }
+            break;
+        }
         case 'h': usage(stdout); return 0;
         default: usage(stderr); return 2;
         }

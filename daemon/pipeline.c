@@ -291,10 +291,15 @@ void wd_measured_text(const wd_measured *m, FILE *f)
                     wd_thickness_label(m), t->slice, t->corrected_mm, t->uncertainty_mm, t->limit_lo_mm,
                     t->limit_hi_mm);
             verdict_note(f, t->verdict, t->reason);
-            fprintf(f, "    ramps %.2f and %.2f mm long; per ramp %.2f and %.2f mm; ACR formula "
-                       "%.2f mm; tilt %+.2f deg; FWTM %.2f mm\n",
-                    t->top.length_mm, t->bottom.length_mm, t->top_thickness_mm,
-                    t->bottom_thickness_mm, t->acr_mm, t->tilt_deg, t->fwtm_mm);
+            if (!t->bottom.measured) /* a single-ramp or single-wedge model: one strip */
+                fprintf(f, "    one strip %.2f mm long (single-ramp or wedge method, no tilt "
+                           "correction); FWTM %.2f mm\n",
+                        t->top.length_mm, t->fwtm_mm);
+            else
+                fprintf(f, "    ramps %.2f and %.2f mm long; per ramp %.2f and %.2f mm; ACR formula "
+                           "%.2f mm; tilt %+.2f deg; FWTM %.2f mm\n",
+                        t->top.length_mm, t->bottom.length_mm, t->top_thickness_mm,
+                        t->bottom_thickness_mm, t->acr_mm, t->tilt_deg, t->fwtm_mm);
         } else {
             fprintf(f, "  %s:  ", wd_thickness_label(m));
             verdict_note(f, AN_UNMEASURABLE, t->reason);
