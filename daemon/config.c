@@ -63,13 +63,13 @@ static const field config_fields[] = {
     D("drift", "confidence", wd_config, drift.p.confidence, NULL, 0.5, 0.999, "confidence of the trend's intervals"),
     D("drift", "sigma_floor", wd_config, drift.sigma_floor_fraction, NULL, 0, 1, "sigma is at least this fraction of the tolerance half-width"),
     E("log", "level", wd_config, log_level, "info", log_levels, "debug, info, warning or error"),
-    D("hints", "thickness_fraction", wd_config, hints.thickness_fraction, "0.05", 0.001, 1, "a thickness this far from its reference (fraction) counts as off for the cause hints"),
-    D("hints", "scale_percent", wd_config, hints.scale_percent, "0.5", 0.01, 100, "a position scale this large (per cent) counts as off"),
-    D("hints", "shift_mm", wd_config, hints.shift_mm, "1.0", 0.01, 100, "a wedge slice displaced this far counts as off"),
-    D("hints", "tilt_deg", wd_config, hints.tilt_deg, "2.0", 0.1, 45, "a ramp tilt this large: phantom not level"),
-    D("hints", "k_sigma", wd_config, hints.k_sigma, "2", 0, 10, "... and beyond this many standard uncertainties"),
-    D("hints", "gradient_mT_per_m", wd_config, hints.gradient_mt_per_m, "0", 0, 1000, "slice-select gradient of the QA protocol, for the centre-frequency figure (0: unknown)"),
-    D("hints", "rf_bandwidth_hz", wd_config, hints.rf_bandwidth_hz, "0", 0, 1e6, "excitation bandwidth of the QA protocol; gives the gradient when it is unknown (0: unknown)"),
+    D("hints", "thickness_fraction", wd_config, drift.hints.thickness_fraction, "0.05", 0.001, 1, "a thickness this far from its reference (fraction) counts as off for the cause hints"),
+    D("hints", "scale_percent", wd_config, drift.hints.scale_percent, "0.5", 0.01, 100, "a position scale this large (per cent) counts as off"),
+    D("hints", "shift_mm", wd_config, drift.hints.shift_mm, "1.0", 0.01, 100, "a wedge slice displaced this far counts as off"),
+    D("hints", "tilt_deg", wd_config, drift.hints.tilt_deg, "2.0", 0.1, 45, "a ramp tilt this large: phantom not level"),
+    D("hints", "k_sigma", wd_config, drift.hints.k_sigma, "2", 0, 10, "... and beyond this many standard uncertainties"),
+    D("hints", "gradient_mT_per_m", wd_config, drift.hints.gradient_mt_per_m, "0", 0, 1000, "slice-select gradient of the QA protocol, for the centre-frequency figure (0: unknown)"),
+    D("hints", "rf_bandwidth_hz", wd_config, drift.hints.rf_bandwidth_hz, "0", 0, 1e6, "excitation bandwidth of the QA protocol; gives the gradient when it is unknown (0: unknown)"),
 };
 
 /* The phantom model file's table lives with the model in analysis/model_file.c, so that the

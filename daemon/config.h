@@ -34,6 +34,9 @@ typedef struct wd_drift_opts {
     char baseline_from[32]; /* ISO 8601 date or date-time; with baseline_to: the baseline period */
     char baseline_to[32];   /* [from, to); both empty: the first p.baseline_n accepted results */
     double sigma_floor_fraction; /* sigma >= this fraction of the pass limits' half-width (0.1) */
+    /* [hints] (additive): when a number counts as off for the cause hints, beside results (the
+     * measurement takes them from here too) and beside drift alarms */
+    wd_hint_settings hints;
 } wd_drift_opts;
 
 typedef struct wd_config {
@@ -65,8 +68,6 @@ typedef struct wd_config {
     wd_drift_opts drift;
     /* [log] */
     int log_level;        /* wd_log_level */
-    /* [hints] (added for the cause hints, additive): when a number counts as off */
-    wd_hint_settings hints;
     /* [aliases] station = alias */
     int n_aliases;
     wd_alias alias[WD_MAX_ALIASES];

@@ -21,6 +21,7 @@ void wd_drift_opts_default(wd_drift_opts *o)
     /* A shift of a tenth of the tolerance is the smallest worth an alarm: a baseline that happens
      * to be tighter than that must not make smaller, clinically meaningless shifts signal. */
     o->sigma_floor_fraction = 0.1;
+    wd_hint_settings_default(&o->hints);
 }
 
 double wd_iso_days(const char *iso)
@@ -333,9 +334,121 @@ static void describe(const db_drift_key *k, const wd_history *h, const wd_drift_
 #undef PUT
 }
 
+/* What a drift alarm's hint reads from the same run: which metric and slice hold the thickness,
+ * and which slices are the wedge slices (from the run's own rows). */
+typedef struct hint_ctx {
+    char thickness_metric[48];
+    int thickness_slice;
+    int n_wedges;
+    int wedge_slice[2];
+} hint_ctx;
+
+/* A companion metric of the alarm's key (same scanner, protocol and echo) on one slice: its
+ * baseline's mean and SD (the baseline period, else the first baseline_n accepted results) and its
+ * value in run `run`. Returns 1 when both exist. */
+static int companion(db *d, const db_drift_key *k, const char *metric, int slice,
+                     const wd_drift_opts *o, int64_t run, double *latest, double *latest_unc,
+                     double *mean, double *sd)
+{
+    db_drift_key ck = *k;
+    ck.metric = metric;
+    ck.slice = slice;
+    wd_history h;
+    sw_error e;
+    sw_error_clear(&e);
+    if (wd_history_load(d, &ck, &h, &e) != SW_OK)
+        return 0;
+    double from = o->baseline_from[0] ? wd_iso_days(o->baseline_from) : NAN;
+    double to = o->baseline_to[0] ? wd_iso_days(o->baseline_to) : NAN;
+    double s1 = 0, s2 = 0;
+    int n = 0, found = 0;
+    for (int i = 0; i < h.n; i++) {
+        const wd_hpoint *p = &h.pt[i];
+        if (p->run_id == run) {
+            *latest = p->value;
+            *latest_unc = isfinite(p->uncertainty) ? p->uncertainty : 0;
+            found = 1;
+        }
+        int in_base = p->accepted && p->run_id != run &&
+                      (isfinite(from) ? p->t >= from && (!isfinite(to) || p->t < to)
+                                      : n < o->p.baseline_n);
+        if (in_base) {
+            s1 += p->value;
+            s2 += p->value * p->value;
+            n++;
+        }
+    }
+    wd_history_free(&h);
+    if (!found || n < 2)
+        return 0;
+    *mean = s1 / n;
+    double var = (s2 - s1 * s1 / n) / (n - 1);
+    *sd = var > 0 ? sqrt(var) : 0;
+    return 1;
+}
+
+/* The cause hints of a drift: each companion's change since its baseline, judged against the
+ * baseline's spread. */
+static int drift_hints(db *d, const db_drift_key *k, int64_t run, const wd_drift_opts *o,
+                       const hint_ctx *c, wd_hint *out, int max)
+{
+    if (!c)
+        return 0;
+    wd_hint_input in;
+    memset(&in, 0, sizeof in);
+    in.since_baseline = 1;
+    double v, u, mean, sd;
+    if (c->thickness_metric[0]) {
+        in.partition = !strcmp(c->thickness_metric, "partition_thickness");
+        if (companion(d, k, c->thickness_metric, c->thickness_slice, o, run, &v, &u, &mean, &sd) &&
+            mean > 0) {
+            in.has_thickness = 1;
+            in.thickness_mm = v - mean;
+            in.thickness_unc_mm = sd;
+            in.thickness_ref_mm = mean;
+        }
+        if (companion(d, k, "tilt_angle", c->thickness_slice, o, run, &v, &u, &mean, &sd)) {
+            in.has_tilt = 1;
+            in.tilt_deg = v;
+            in.tilt_unc_deg = u;
+        }
+    }
+    if (companion(d, k, "position_scale", 0, o, run, &v, &u, &mean, &sd)) {
+        in.has_scale = 1;
+        in.scale_percent = v - mean;
+        in.scale_unc_percent = sd;
+    }
+    if (companion(d, k, "position_offset", 0, o, run, &v, &u, &mean, &sd)) {
+        in.has_offset = 1;
+        in.offset_mm = v - mean;
+        in.offset_unc_mm = sd;
+    }
+    for (int j = 0; j < c->n_wedges && j < 2; j++)
+        if (companion(d, k, "slice_displacement", c->wedge_slice[j], o, run, &v, &u, &mean, &sd)) {
+            in.has_shift[j] = 1;
+            in.shift_slice[j] = c->wedge_slice[j];
+            in.shift_mm[j] = v - mean;
+            in.shift_unc_mm[j] = sd;
+        }
+    return wd_hints(&in, &o->hints, out, max);
+}
+
+static sw_status drift_check(db *d, const db_drift_key *k, const wd_drift_opts *o,
+                             const char *png_path, const hint_ctx *hc, wd_drift_outcome *out,
+                             sw_error *err);
+
 sw_status wd_drift_check(db *d, const db_drift_key *k, const wd_drift_opts *o, const char *png_path,
                          wd_drift_outcome *out, sw_error *err)
 {
+    return drift_check(d, k, o, png_path, NULL, out, err);
+}
+
+static sw_status drift_check(db *d, const db_drift_key *k, const wd_drift_opts *o,
+                             const char *png_path, const hint_ctx *hc, wd_drift_outcome *out,
+                             sw_error *err)
+{
+    wd_hint hints[WD_MAX_HINTS];
+    int n_hints = 0;
     sw_status rc = SW_OK;
     wd_history h;
     wd_drift_eval e;
@@ -366,6 +479,12 @@ sw_status wd_drift_check(db *d, const db_drift_key *k, const wd_drift_opts *o, c
     if (e.sum.status == AN_DRIFT_OUT && !found) {
         char stat[64];
         describe(k, &h, &e, out->message, sizeof out->message);
+        n_hints = drift_hints(d, k, last->run_id, o, hc, hints, WD_MAX_HINTS);
+        if (n_hints) {
+            size_t len = strlen(out->message);
+            snprintf(out->message + len, sizeof out->message - len, "; hint: %s",
+                     hints[0].brief);
+        }
         wd_drift_flags_text(e.sum.last_flags, stat, sizeof stat);
         unsigned f = e.sum.last_flags;
         double limit = f & AN_DRIFT_F_EWMA_HI   ? e.track.ucl[h.n - 1]
@@ -383,6 +502,16 @@ sw_status wd_drift_check(db *d, const db_drift_key *k, const wd_drift_opts *o, c
                            .png_path = png_path};
         if ((rc = db_alert_add(d, &a, &out->alert_id, err)) != SW_OK)
             goto out;
+        for (int i = 0; i < n_hints; i++) {
+            db_hint_info hi = {.run_id = last->run_id,
+                               .alert_id = out->alert_id,
+                               .echo = k->echo,
+                               .code = wd_hint_name(hints[i].code),
+                               .brief = hints[i].brief,
+                               .text = hints[i].text};
+            if ((rc = db_hint_add(d, &hi, err)) != SW_OK)
+                goto out;
+        }
         if ((rc = db_drift_episode_open(d, k, stat, last->series_id, last->acquired_at,
                                         out->alert_id, &out->episode_id, err)) != SW_OK)
             goto out;
@@ -462,6 +591,21 @@ sw_status wd_drift_check_run(db *d, int64_t scanner_id, int64_t run_id, const wd
     c = NULL;
     if (rc != SW_OK)
         goto out;
+    hint_ctx hc;
+    memset(&hc, 0, sizeof hc);
+    for (int i = 0; i < nk; i++) {
+        if (!strcmp(keys[i].metric, "slice_thickness") ||
+            !strcmp(keys[i].metric, "partition_thickness")) {
+            sw_strlcpy(hc.thickness_metric, keys[i].metric, sizeof hc.thickness_metric);
+            hc.thickness_slice = keys[i].slice;
+        } else if (!strcmp(keys[i].metric, "bar_length_difference") && hc.n_wedges < 2) {
+            int dup = 0;
+            for (int j = 0; j < hc.n_wedges; j++)
+                dup |= hc.wedge_slice[j] == keys[i].slice;
+            if (!dup)
+                hc.wedge_slice[hc.n_wedges++] = keys[i].slice;
+        }
+    }
     for (int i = 0; i < nk; i++) {
         db_drift_key k = {.scanner_id = scanner_id,
                           .series_type = keys[i].series_type,
@@ -469,7 +613,7 @@ sw_status wd_drift_check_run(db *d, int64_t scanner_id, int64_t run_id, const wd
                           .slice = keys[i].slice,
                           .metric = keys[i].metric};
         wd_drift_outcome oc;
-        if ((rc = wd_drift_check(d, &k, o, png_path, &oc, err)) != SW_OK)
+        if ((rc = drift_check(d, &k, o, png_path, &hc, &oc, err)) != SW_OK)
             goto out;
         if (started)
             *started += oc.started;

@@ -188,7 +188,7 @@ static int redo(db *d, const wd_settings *s, int64_t series_id, int png, int ale
     wd_match match = !strcmp(os.type, "t1")   ? WD_MATCH_T1
                      : !strcmp(os.type, "t2") ? WD_MATCH_T2
                                               : WD_MATCH_CONTENT;
-    wd_method method = {.model = s->model, .params = s->params, .hints = s->cfg.hints};
+    wd_method method = {.model = s->model, .params = s->params, .hints = s->cfg.drift.hints};
     method.tol = *wd_tolerances_for(&s->tol, sc.station, wd_tolerance_key(match, imgs[0]));
     sw_error e3;
     sw_error_clear(&e3);

@@ -378,6 +378,7 @@ typedef struct wseries {
     double last_arrival; /* epoch seconds */
     double retry_at;     /* monotonic; after a busy store, or while looking for moved files */
     int looks;           /* times measuring waited for files missing from their recorded paths */
+    int retries;         /* measurements of it that failed for want of memory, I/O or the store */
 } wseries;
 
 static void series_free(wseries *s)
@@ -1407,6 +1408,17 @@ static void crash_read(crash_info *ci)
 
 enum { TAKEN = 0, RETRY, SKIPPED, SETTLE };
 
+/* A file or series that fails for a reason of this machine's (out of memory, a full disk, an I/O
+ * error: the reader buffers a file in an anonymous memory file), not of its content, is tried
+ * again this many times before it is quarantined or failed with the reason: a transient fault
+ * never quarantines a good file, and a fault that persists never loops for ever. */
+#define TRANSIENT_TRIES 4
+
+static int transient(sw_status st)
+{
+    return st == SW_ENOMEM || st == SW_EIO;
+}
+
 /* A file found by listing a folder that changed less than this long ago may still be written by
  * a receiver that writes under its final name (storescp does): it waits until it has settled, or
  * until inotify says it was closed. */
@@ -1500,7 +1512,7 @@ static sw_status follow_rename(watcher *w, int64_t id, const char *path, const c
 }
 
 /* seen -> parsed (or a final state): reads the file's header and pixels, files it in its series. */
-static int parse(watcher *w, int64_t id, const char *path, const wd_blob *b)
+static int parse(watcher *w, int64_t id, const char *path, const wd_blob *b, int tries)
 {
     sw_error err;
     sw_error_clear(&err);
@@ -1509,7 +1521,12 @@ static int parse(watcher *w, int64_t id, const char *path, const wd_blob *b)
     int result = TAKEN;
     char why[512];
     const char *hash = b->hash;
-    if (dcm_read_buffer(b->data, b->len, path, NULL, &f, &err) != SW_OK) {
+    sw_status rd = dcm_read_buffer(b->data, b->len, path, NULL, &f, &err);
+    if (rd != SW_OK && transient(rd) && tries < TRANSIENT_TRIES) {
+        st = rd; /* the machine's fault, not the file's: nothing recorded, tried again */
+        goto out;
+    }
+    if (rd != SW_OK) {
         /* Still being written? Then the bytes read were not the file's: never quarantine those. */
         char now_hash[WD_HASH_MAX];
         sw_error e2;
@@ -1659,7 +1676,8 @@ out:
 
 /* A known file in state parsed: back into its series in memory (after a restart, or an event for
  * a file already filed). */
-static int reattach(watcher *w, int64_t id, const char *path, const wd_blob *b, int64_t series_id)
+static int reattach(watcher *w, int64_t id, const char *path, const wd_blob *b, int64_t series_id,
+                    int tries)
 {
     wseries *s = series_find(w, series_id);
     if (s) {
@@ -1671,7 +1689,12 @@ static int reattach(watcher *w, int64_t id, const char *path, const wd_blob *b, 
     sw_error_clear(&err);
     dcm_file *f = NULL;
     int result = TAKEN;
-    if (dcm_read_buffer(b->data, b->len, path, NULL, &f, &err) != SW_OK) {
+    sw_status rd = dcm_read_buffer(b->data, b->len, path, NULL, &f, &err);
+    if (rd != SW_OK && transient(rd) && tries < TRANSIENT_TRIES) {
+        wd_error("%s; tried again later", err.msg);
+        return RETRY;
+    }
+    if (rd != SW_OK) {
         if (to_final(w, id, path, b->hash, DB_FILE_PARSED, DB_FILE_QUARANTINED, err.msg, 0, &err) !=
             SW_OK)
             result = RETRY;
@@ -1721,7 +1744,7 @@ static int reattach(watcher *w, int64_t id, const char *path, const wd_blob *b, 
     return result;
 }
 
-static int take_file(watcher *w, const char *path, int scanned)
+static int take_file(watcher *w, const char *path, int scanned, int tries)
 {
     sw_error err;
     sw_error_clear(&err);
@@ -1814,9 +1837,9 @@ static int take_file(watcher *w, const char *path, int scanned)
     note_file(path, hash);
     crash_test_hook("file", path);
     if (fl.state == DB_FILE_SEEN)
-        result = parse(w, id, path, &b);
+        result = parse(w, id, path, &b, tries);
     else if (fl.state == DB_FILE_PARSED)
-        result = reattach(w, id, path, &b, fl.series_id);
+        result = reattach(w, id, path, &b, fl.series_id, tries);
     else
         wd_debug("%s: file %lld is %s; its series finishes it", path, (long long)id,
                  db_file_state_name(fl.state));
@@ -1975,7 +1998,7 @@ static int measure_series(watcher *w, wseries *s, int quiet)
     wd_method method;
     method.model = w->s->model;
     method.params = w->s->params;
-    method.hints = w->s->cfg.hints;
+    method.hints = w->s->cfg.drift.hints;
     const dcm_image *first = n_img ? imgs[0] : NULL;
     method.tol = *wd_tolerances_for(&w->s->tol, s->station, wd_tolerance_key(s->match, first));
     int measured = 0;
@@ -2577,7 +2600,7 @@ static int loop(watcher *w)
         qitem it;
         if (dequeue(&w->q, &it)) {
             progress_clear(w);
-            int r = take_file(w, it.path, it.scanned);
+            int r = take_file(w, it.path, it.scanned, it.tries);
             after_take(w, &it, r);
             if (r == TAKEN)
                 last_progress = wd_now_mono();
