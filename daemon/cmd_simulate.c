@@ -19,22 +19,22 @@ static void usage(FILE *f)
     fprintf(
         f,
         "usage: slicewarden simulate [OPTIONS] OUTDIR\n"
-        "Writes a simulated series of the ramp-and-wedge phantom into OUTDIR (created if absent),\n"
+        "Writes a simulated series of a ramp-and-wedge phantom into OUTDIR (created if absent),\n"
         "with truth.json beside the files: the slice profile's FWHM, each slice's displacement,\n"
         "the expected ramp lengths and bar length differences, the pose and the noise.\n"
         "\n"
         "Series\n"
         "  --series t1|t2          T1 spin echo TR 500 TE 20, or double-echo T2 TR 2000 TE 20/80 "
         "[t1]\n"
-        "  --slices N              slices [the model's, 11]\n"
-        "  --model FILE            phantom model file [the built-in large phantom]\n"
+        "  --slices N              slices [the model's]\n"
+        "  --model FILE            phantom model file (docs/models.md) [the built-in large phantom]\n"
         "  --orientation O         standard, flip-rows, flip-columns, transposed, feet-first\n"
         "  --enhanced              one Enhanced MR multi-frame file instead of one file per image\n"
         "  --shuffle               random file order and file names\n"
         "  --reverse-instances     InstanceNumber runs from the last slice to the first\n"
         "  --seed N                noise and order seed [1]\n"
         "Slice profile\n"
-        "  --thickness MM          wanted FWHM [the model's nominal, 5]\n"
+        "  --thickness MM          wanted FWHM [the model's nominal]\n"
         "  --prescribed MM         SliceThickness written in the files [the wanted FWHM]\n"
         "  --profile K             bloch (Hamming-windowed sinc), rect, gauss, rect-gauss [bloch]\n"
         "  --tbw X                 time-bandwidth product [4]\n"
@@ -126,17 +126,19 @@ static void summary(const sim_series *s, const char *dir)
 {
     const sim_truth *t = &s->truth;
     const sim_params *p = &s->params;
-    printf("simulated %s series: %d image%s in %s%s\n", p->kind == SIM_SERIES_T2 ? "T2" : "T1",
-           s->n_images, s->n_images == 1 ? "" : "s", dir,
+    printf("simulated %s series of %s: %d image%s in %s%s\n", p->kind == SIM_SERIES_T2 ? "T2" : "T1",
+           s->model.name, s->n_images, s->n_images == 1 ? "" : "s", dir,
            p->enhanced ? " (one Enhanced MR file)" : "");
     printf("  series %s, %s, %s, seed %" PRIu64 "\n", s->images[0].series_instance_uid,
            orient_names[p->orientation], s->images[0].patient_position, p->seed);
     for (int e = 0; e < t->n_echoes; e++) {
         printf("  echo %d (TE %g ms): slice thickness (profile FWHM) %.3f mm", e + 1, p->te_ms[e],
                t->thickness_mm[e]);
-        if (t->has_ramps)
+        if (t->has_ramps && s->model.n_ramps > 1)
             printf(", ramp strips %.2f / %.2f mm on slice %d", t->ramp[e].length_mm[0],
-                   s->model.n_ramps > 1 ? t->ramp[e].length_mm[1] : NAN, t->ramp_ordinal);
+                   t->ramp[e].length_mm[1], t->ramp_ordinal);
+        else if (t->has_ramps)
+            printf(", ramp strip %.2f mm on slice %d", t->ramp[e].length_mm[0], t->ramp_ordinal);
         printf("\n");
     }
     for (int j = 0; j < 2; j++)

@@ -365,6 +365,7 @@ void sim_image_view(const sim_series *s, int i, an_image *out)
     memcpy(out->iop, im->iop, sizeof out->iop);
     out->has_geometry = im->has_geometry;
     out->nominal_thickness_mm = im->slice_thickness_mm;
+    out->feet_first = !strncmp(im->patient_position, "FF", 2); /* as daemon/pipeline.c reads it */
 }
 
 static void now_strings(const sim_identity *id, char date[9], char tm[17])
@@ -407,12 +408,14 @@ static void fill_common(const sim_series *s, const sim_timing *tm, const char *s
     sw_strlcpy(im->manufacturer, id->manufacturer, sizeof im->manufacturer);
     sw_strlcpy(im->model, id->model, sizeof im->model);
     sw_strlcpy(im->institution, id->institution, sizeof im->institution);
-    const char *desc = id->series_description[0]  ? id->series_description
-                       : p->kind == SIM_SERIES_T2 ? "QA large phantom T2 double echo axial"
-                                                  : "QA large phantom T1 axial";
-    const char *prot = id->protocol_name[0]       ? id->protocol_name
-                       : p->kind == SIM_SERIES_T2 ? "ALD_QA_LARGE_T2"
-                                                  : "ALD_QA_LARGE_T1";
+    /* the defaults name the phantom model, so that series of different phantoms differ */
+    char dbuf[DCM_STR_MAX], pbuf[DCM_STR_MAX];
+    snprintf(dbuf, sizeof dbuf, "QA %.40s %s", s->model.name,
+             p->kind == SIM_SERIES_T2 ? "T2 double echo axial" : "T1 axial");
+    snprintf(pbuf, sizeof pbuf, "ALD_QA_%.40s_%s", s->model.name,
+             p->kind == SIM_SERIES_T2 ? "T2" : "T1");
+    const char *desc = id->series_description[0] ? id->series_description : dbuf;
+    const char *prot = id->protocol_name[0] ? id->protocol_name : pbuf;
     sw_strlcpy(im->series_description, desc, sizeof im->series_description);
     sw_strlcpy(im->protocol_name, prot, sizeof im->protocol_name);
     sw_strlcpy(im->patient_name, id->patient_name, sizeof im->patient_name);
