@@ -28,13 +28,13 @@ typedef struct field {
 
 static const char *const methods[] = {"crossed-ramps", "single-ramp", "single-wedge", NULL};
 
+/* clang-format off */
 #define S(sec, k, member, h) {sec, k, F_STR, offsetof(an_model, member), sizeof(((an_model *)0)->member), NULL, 0, 0, NULL, h}
 #define I(sec, k, member, d, lo, hi, h) {sec, k, F_INT, offsetof(an_model, member), 0, d, lo, hi, NULL, h}
 #define D(sec, k, member, d, lo, hi, h) {sec, k, F_DBL, offsetof(an_model, member), 0, d, lo, hi, NULL, h}
 #define B(sec, k, member, d, h) {sec, k, F_BOOL, offsetof(an_model, member), 0, d, 0, 1, NULL, h}
 #define E(sec, k, member, d, ch, h) {sec, k, F_ENUM, offsetof(an_model, member), 0, d, 0, 0, ch, h}
 
-/* clang-format off */
 static const field model_fields[] = {
     S("phantom", "name", name, "model name, stored with every result"),
     D("phantom", "radius_mm", radius_mm, NULL, 10, 500, "fluid cylinder radius"),
@@ -242,8 +242,7 @@ sw_status an_model_parse(an_model *m, const char *text, const char *origin, sw_e
     return parse_over(m, text, origin ? origin : "phantom model", 0, err);
 }
 
-sw_status an_model_parse_complete(an_model *m, const char *text, const char *origin,
-                                  sw_error *err)
+sw_status an_model_parse_complete(an_model *m, const char *text, const char *origin, sw_error *err)
 {
     if (!m || !text)
         return sw_error_set(err, SW_EINVAL, "phantom model: no text");
@@ -325,7 +324,8 @@ char *an_model_format(const an_model *m)
         case F_ENUM: {
             int v = *(const int *)p;
             rc = append(&buf, &len, &cap, "%s = %s", f->key,
-                        v >= 0 && v < (int)(sizeof methods / sizeof methods[0]) - 1 ? f->choices[v] : "invalid");
+                        v >= 0 && v < (int)(sizeof methods / sizeof methods[0]) - 1 ? f->choices[v]
+                                                                                    : "invalid");
             break;
         }
         }
