@@ -22,6 +22,7 @@ static const command commands[] = {
     {"report", wd_cmd_report, "write a self-contained HTML report with trends and drift"},
     {"watch", wd_cmd_watch, "watch a folder: measure, store, archive and alert, unattended"},
     {"reanalyze", wd_cmd_reanalyze, "measure stored series again from their archived files (a new run)"},
+    {"selftest", wd_cmd_selftest, "measure a fixed sweep of simulated series against the guaranteed accuracy"},
 };
 
 static void usage(FILE *f)

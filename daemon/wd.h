@@ -13,6 +13,7 @@ int wd_cmd_export(int argc, char **argv);
 int wd_cmd_report(int argc, char **argv);
 int wd_cmd_watch(int argc, char **argv);
 int wd_cmd_reanalyze(int argc, char **argv);
+int wd_cmd_selftest(int argc, char **argv);
 
 /* ---- log: to stderr in the foreground, syslog when wd_log_syslog(1); errno preserved ---- */
 typedef enum wd_log_level { WD_LOG_DEBUG = 0, WD_LOG_INFO, WD_LOG_WARN, WD_LOG_ERROR } wd_log_level;
