@@ -14,6 +14,12 @@
                  C.7.6.2.1.1) and must equal the standard series pixel for pixel.
   cli BIN DIR    runs `BIN simulate` into DIR (emptied first) with options and checks with pydicom
                  that the files and truth.json carry what the options asked for.
+  model BIN DIR MODEL
+                 simulates the phantom of model file MODEL (a single-ramp model) with
+                 `BIN simulate --model`, reads the files with pydicom, measures the ramp strip's FWHM
+                 on slice 1 with numpy alone (NEMA MS 5 single ramp: T = FWHM x tan(theta)), and
+                 checks it and `BIN analyze --model` against truth.json; a bad model file is refused
+                 by both commands naming the line.
 Exit status 0 when every check holds; the first failure is printed."""
 import glob
 import json
@@ -268,7 +274,111 @@ def check_cli(binary, root):
     print("cli: options reach the files and truth.json")
 
 
+def read_model(path):
+    """The model file's keys by section, read with Python's own INI parser (inline ';' comments)."""
+    import configparser
+    cp = configparser.ConfigParser(inline_comment_prefixes=(";",))
+    cp.read(path)
+    return cp
+
+
+def check_model(binary, root, model):
+    import pydicom
+    shutil.rmtree(root, ignore_errors=True)
+    os.makedirs(root)
+    m = read_model(model)
+    n_slices = m.getint("phantom", "slices")
+    slope = m.getfloat("ramp.top", "slope")
+    v0, v1 = m.getfloat("ramp.top", "v_min_mm"), m.getfloat("ramp.top", "v_max_mm")
+    d = os.path.join(root, "s")
+    rc, out, err = run(binary, "--model", model, "--thickness", "6", "--prescribed", "5",
+                       "--position-offset", "0.5", "--seed", "3", "--snr", "200", d)
+    if rc != 0:
+        fail("simulate --model failed (%d): %s" % (rc, err))
+    with open(os.path.join(d, "truth.json")) as fh:
+        t = json.load(fh)
+    if t["model"] != m.get("phantom", "name"):
+        fail("truth.json model %r, file %r" % (t["model"], m.get("phantom", "name")))
+    names = sorted(n for n in os.listdir(d) if n != "truth.json")
+    if len(names) != n_slices:
+        fail("%d files for a %d-slice model" % (len(names), n_slices))
+    ds = [pydicom.dcmread(os.path.join(d, n)) for n in names]
+    ds.sort(key=lambda x: float(x.ImagePositionPatient[2]))
+    z = [float(x.ImagePositionPatient[2]) for x in ds]
+    gap = m.getfloat("phantom", "slice_gap_mm")
+    if max(abs(b - a - gap) for a, b in zip(z, z[1:])) > 1e-6:
+        fail("slice positions %s, the model's gap %.1f mm" % (z, gap))
+    if m.get("phantom", "name") not in str(ds[0].SeriesDescription):
+        fail("SeriesDescription %r does not name the model" % ds[0].SeriesDescription)
+    # Slice 1 (head first: the inferior end, smallest z) holds the ramp. Standard orientation, no
+    # pose: u along the columns, v up (rows run down); the phantom centred in the image.
+    img = ds[0].pixel_array.astype(float)
+    ps = [float(x) for x in ds[0].PixelSpacing]
+    rows, cols = img.shape
+    rc_ = (rows - 1) / 2 - np.arange(rows)  # v of each row, mm / spacing
+    vmid = 0.5 * (v0 + v1)
+    band = np.abs(rc_ * ps[0] - vmid) <= 0.25 * (v1 - v0)
+    prof = img[band, :].mean(axis=0)
+    u = (np.arange(cols) - (cols - 1) / 2) * ps[1]
+    ui0, ui1 = m.getfloat("insert", "u_min_mm"), m.getfloat("insert", "u_max_mm")
+    inside = (u > ui0 + 3) & (u < ui1 - 3)
+    pk = prof[inside]
+    uu = u[inside]
+    # the plateau: the highest 5-pixel running mean (the strip is the slice profile stretched ten
+    # times, so its top is as rounded as the profile's)
+    top = np.convolve(pk, np.ones(5) / 5, mode="valid").max()
+    above = np.nonzero(pk >= 0.5 * top)[0]
+    a, b = above[0], above[-1]
+    # linear interpolation of the outermost half-level crossings
+    ua = uu[a - 1] + (0.5 * top - pk[a - 1]) / (pk[a] - pk[a - 1]) * (uu[a] - uu[a - 1])
+    ub = uu[b] + (pk[b] - 0.5 * top) / (pk[b] - pk[b + 1]) * (uu[b + 1] - uu[b])
+    length = ub - ua
+    want = t["echoes"][0]["ramps"]["top_length_mm"]
+    if abs(length - want) > 1.5:
+        fail("strip FWHM %.2f mm by numpy, truth %.2f mm" % (length, want))
+    T = length * abs(slope)
+    truth = t["echoes"][0]["thickness_fwhm_mm"]
+    if abs(T - truth) > 0.15:
+        fail("numpy's single-ramp thickness %.3f mm, truth %.3f mm" % (T, truth))
+    # the program's own measurement of the same files with the same model
+    p = subprocess.run([binary, "analyze", "--json", "--model", model, d], capture_output=True,
+                       text=True, timeout=120)
+    if p.returncode not in (0, 1):
+        fail("analyze --model failed (%d): %s" % (p.returncode, p.stderr))
+    res = json.loads(p.stdout)["series"][0]
+    th = res["slice_thickness"]
+    if th["bottom_mm"] is not None or abs(th["corrected_mm"] - truth) > 0.1:
+        fail("analyze: %s vs truth %.3f" % (th, truth))
+    if abs(th["corrected_mm"] - T) > 0.2:
+        fail("analyze %.3f mm and numpy %.3f mm disagree" % (th["corrected_mm"], T))
+    pos = res["slice_position"]
+    if [q["slice"] for q in pos] != [m.getint("wedges", "slice_first"),
+                                     m.getint("wedges", "slice_last")]:
+        fail("position slices %s" % [q["slice"] for q in pos])
+    for q, w in zip(pos, t["wedges"]):
+        if abs(q["bar_difference_mm"] - w["bar_difference_mm"]) > 0.2:
+            fail("slice %d bar difference %.3f, truth %.3f" % (q["slice"], q["bar_difference_mm"],
+                                                              w["bar_difference_mm"]))
+    # a bad model file: both commands refuse it, naming the file and the line
+    bad = os.path.join(root, "bad.model")
+    with open(bad, "w") as fh:
+        fh.write("[phantom]\nname = x\nslices = many\n")
+    for cmd in (["simulate", "--model", bad, os.path.join(root, "never")],
+                ["analyze", "--model", bad, d]):
+        p = subprocess.run([binary] + cmd, capture_output=True, text=True, timeout=60)
+        if p.returncode != 2 or (bad + ":3:") not in p.stderr:
+            fail("%s with a bad model: status %d, %r" % (cmd[0], p.returncode, p.stderr))
+    if os.path.exists(os.path.join(root, "never")):
+        fail("simulate wrote files for a refused model")
+    print("model: %s simulated and measured: numpy %.3f mm, analyze %.3f mm, truth %.3f mm"
+          % (m.get("phantom", "name"), T, th["corrected_mm"], truth))
+
+
 def main():
+    if len(sys.argv) == 5 and sys.argv[1] == "model":
+        check_model(sys.argv[2], sys.argv[3], sys.argv[4])
+        print("ok")
+        return 0
     if len(sys.argv) == 4 and sys.argv[1] == "cli":
         check_cli(sys.argv[2], sys.argv[3])
         print("ok")
