@@ -231,8 +231,8 @@ static int key_order(const void *a, const void *b)
     if (c)
         return c;
     /* Slice thickness before bar length difference, then by name. */
-    int tx = strcmp(x->metric, "slice_thickness") != 0,
-        ty = strcmp(y->metric, "slice_thickness") != 0;
+    int tx = strcmp(x->metric, "slice_thickness") && strcmp(x->metric, "partition_thickness"),
+        ty = strcmp(y->metric, "slice_thickness") && strcmp(y->metric, "partition_thickness");
     if (tx != ty)
         return tx - ty;
     if ((c = strcmp(x->metric, y->metric)))
@@ -246,6 +246,8 @@ static const char *metric_title(const char *m)
 {
     if (!strcmp(m, "slice_thickness"))
         return "Slice thickness";
+    if (!strcmp(m, "partition_thickness"))
+        return "Partition thickness (3D)";
     if (!strcmp(m, "bar_length_difference"))
         return "Bar length difference";
     return m;
@@ -515,6 +517,25 @@ static void run_images(db *d, pool *pl, const char *images, const scanner *s,
     }
 }
 
+typedef struct hint_collect {
+    pool *pl;
+    const latest_series *ls;
+    const char **v;
+    int n, max;
+} hint_collect;
+
+static int hint_cb(void *ctx, const db_hint_info *h, const char *created_at)
+{
+    (void)created_at;
+    hint_collect *c = ctx;
+    if (c->n >= c->max)
+        return 1;
+    c->v[c->n++] = pool_printf(c->pl, "%s series acquired %s, echo %d%s: %s", c->ls->series_type,
+                               c->ls->date, h->echo, h->alert_id ? " (drift alarm)" : "",
+                               h->text);
+    return 0;
+}
+
 static sw_status build_section(db *d, pool *pl, const scanner *s, int index, const wd_drift_opts *o,
                                const char *from, const char *to, const char *images, int max_images,
                                rp_scanner_section *sec, sw_error *err)
@@ -594,7 +615,89 @@ static sw_status build_section(db *d, pool *pl, const scanner *s, int index, con
     }
     sec->n_images = ni;
     sec->images = im;
+    /* Cause hints of the latest series of each type (its results and its drift alarms). */
+    hint_collect hc = {.pl = pl, .max = 24};
+    if (!(hc.v = pool_calloc(pl, (size_t)hc.max, sizeof *hc.v)))
+        return sw_error_set(err, SW_ENOMEM, "report: out of memory");
+    for (int i = 0; i < ps->nt; i++) {
+        hc.ls = &ps->type[i];
+        if ((rc = db_hints_each(d, ps->type[i].run_id, 0, hint_cb, &hc, err)) != SW_OK)
+            return rc;
+    }
+    sec->n_hints = hc.n;
+    sec->hints = hc.v;
     return pl->failed ? sw_error_set(err, SW_ENOMEM, "report: out of memory") : SW_OK;
+}
+
+/* ---- software validation ---- */
+
+typedef struct selftest_collect {
+    db *d;
+    pool *pl;
+    rp_selftest v[20];
+    int n;
+} selftest_collect;
+
+typedef struct row_collect {
+    pool *pl;
+    rp_selftest_row *v;
+    int n, max;
+} row_collect;
+
+static int row_cb(void *ctx, const db_selftest_row *r)
+{
+    row_collect *c = ctx;
+    if (c->n >= c->max)
+        return 1;
+    rp_selftest_row *w = &c->v[c->n++];
+    w->model = pool_strdup(c->pl, r->model);
+    w->quantity = pool_strdup(c->pl, r->quantity);
+    w->condition = pool_strdup(c->pl, r->condition);
+    w->unit = pool_strdup(c->pl, r->unit);
+    w->n = r->n;
+    w->n_measured = r->n_measured;
+    w->bias = r->bias;
+    w->sd = r->sd;
+    w->max_abs_error = r->max_abs_error;
+    w->limit_bias = r->limit_bias;
+    w->limit_sd = r->limit_sd;
+    w->min_fraction = r->min_fraction;
+    w->guaranteed = r->guaranteed;
+    w->passed = r->passed;
+    return 0;
+}
+
+/* Newest first; the rows of the newest self-test of each program version. */
+static int selftest_cb(void *ctx, int64_t id, const db_selftest_info *s)
+{
+    selftest_collect *c = ctx;
+    if (c->n >= (int)(sizeof c->v / sizeof c->v[0]))
+        return 1;
+    rp_selftest *t = &c->v[c->n];
+    memset(t, 0, sizeof *t);
+    t->program_version = pool_strdup(c->pl, s->program_version);
+    t->started_at = pool_strdup(c->pl, s->started_at);
+    t->host = pool_strdup(c->pl, s->host);
+    t->summary = pool_strdup(c->pl, s->summary);
+    t->seconds = s->seconds;
+    t->n_series = s->n_series;
+    t->passed = s->passed;
+    int newest_of_version = 1;
+    for (int i = 0; i < c->n; i++)
+        if (!strcmp(c->v[i].program_version, s->program_version))
+            newest_of_version = 0;
+    c->n++;
+    if (newest_of_version) {
+        row_collect rc = {.pl = c->pl, .max = 64};
+        sw_error err;
+        sw_error_clear(&err);
+        if ((rc.v = pool_calloc(c->pl, (size_t)rc.max, sizeof *rc.v)) &&
+            db_selftest_rows_each(c->d, id, row_cb, &rc, &err) == SW_OK) {
+            t->rows = rc.v;
+            t->n_rows = rc.n;
+        }
+    }
+    return 0;
 }
 
 /* ---- the command ---- */
@@ -817,7 +920,16 @@ int wd_cmd_report(int argc, char **argv)
                                          o.baseline_from, o.baseline_to)
                            : pool_printf(&pl, "the first %d accepted results", o.p.baseline_n),
         o.p.confidence * 100);
+    selftest_collect stc = {.d = d, .pl = &pl};
+    if (db_selftests_each(d, 20, selftest_cb, &stc, &err) != SW_OK)
+        goto out;
+    if (pl.failed) {
+        sw_error_set(&err, SW_ENOMEM, "out of memory");
+        goto out;
+    }
     rp_report r = {
+        .n_selftests = stc.n,
+        .selftests = stc.v,
         .title = title ? title
                        : (only ? pool_printf(&pl, "Slice thickness and position QA: %s",
                                              ss.n ? sec[0].name : only)

@@ -386,6 +386,17 @@ static sw_status section(rp_buf *b, const rp_scanner_section *s, int index, rp_h
         rp_buf_put(b, "</tbody></table>");
     }
 
+    if (s->n_hints > 0) {
+        rp_buf_put(b, "<h3>Cause hints for the latest series</h3><ul class=\"hints\">");
+        for (int i = 0; i < s->n_hints; i++) {
+            rp_buf_put(b, "<li>");
+            rp_buf_esc(b, s->hints[i]);
+            rp_buf_put(b, "</li>");
+        }
+        rp_buf_put(b, "</ul><p class=\"note\">Hints read the numbers above the way a physicist "
+                      "might; they point where to look first and are not diagnoses.</p>");
+    }
+
     rp_buf_put(b, "<h3>Alarms</h3>");
     if (s->n_alarms == 0)
         rp_buf_put(b, "<p class=\"note\">No alerts in the period and no open drift episode.</p>");
@@ -468,6 +479,113 @@ static sw_status section(rp_buf *b, const rp_scanner_section *s, int index, rp_h
     return SW_OK;
 }
 
+static void limit_cell(rp_buf *b, double v, const char *fmt)
+{
+    if (isfinite(v))
+        rp_buf_printf(b, fmt, v);
+    else
+        rp_buf_put(b, "&#8212;");
+}
+
+/* Software validation: which program versions passed their self-test, the rows of the newest. */
+static void validation(rp_buf *b, const rp_report *r)
+{
+    rp_buf_put(b, "<section class=\"validation\" id=\"validation\"><h2>Software validation</h2>");
+    const rp_selftest *own = NULL;
+    for (int i = 0; i < r->n_selftests && !own; i++)
+        if (r->selftests[i].program_version &&
+            !strcmp(r->selftests[i].program_version, r->program_version))
+            own = &r->selftests[i];
+    rp_buf_put(b, "<p data-selftest-own=\"");
+    rp_buf_put(b, !own ? "none" : own->passed ? "passed" : "failed");
+    rp_buf_put(b, "\">");
+    if (!own) {
+        rp_buf_put(b, "<span class=\"v v-warn\">NOT CHECKED</span> No self-test of slicewarden ");
+        rp_buf_esc(b, r->program_version);
+        rp_buf_put(b, " (the version writing this report) is stored: run <code>slicewarden "
+                      "selftest</code> on this installation.");
+    } else {
+        rp_buf_put(b, own->passed ? "<span class=\"v v-pass\">PASSED</span> "
+                                  : "<span class=\"v v-fail\">FAILED</span> ");
+        rp_buf_put(b, "slicewarden ");
+        rp_buf_esc(b, own->program_version);
+        rp_buf_put(b, " measured its self-test sweep on ");
+        rp_buf_esc(b, own->started_at);
+        if (own->host && *own->host) {
+            rp_buf_put(b, " (host ");
+            rp_buf_esc(b, own->host);
+            rp_buf_put(b, ")");
+        }
+        rp_buf_put(b, ": ");
+        rp_buf_esc(b, own->summary);
+        rp_buf_put(b, ".");
+    }
+    rp_buf_put(b, "</p>");
+    for (int i = 0; i < r->n_selftests; i++) {
+        const rp_selftest *t = &r->selftests[i];
+        if (t->n_rows <= 0)
+            continue;
+        rp_buf_put(b, "<table class=\"selftest\" data-version=\"");
+        rp_buf_esc(b, t->program_version);
+        rp_buf_put(b, "\"><caption>Self-test of slicewarden ");
+        rp_buf_esc(b, t->program_version);
+        rp_buf_put(b, ", ");
+        rp_buf_esc(b, t->started_at);
+        rp_buf_printf(b, ", %d simulated series, %.1f s</caption>", t->n_series, t->seconds);
+        rp_buf_put(b, "<thead><tr><th>Model</th><th>Quantity</th><th>Condition</th>"
+                      "<th>Measured</th><th>Bias</th><th>SD</th><th>Max |error|</th>"
+                      "<th>Guaranteed |bias| / SD / fraction</th><th>Result</th></tr></thead>"
+                      "<tbody>");
+        for (int k = 0; k < t->n_rows; k++) {
+            const rp_selftest_row *w = &t->rows[k];
+            rp_buf_put(b, "<tr class=\"selftest-row\"><td>");
+            rp_buf_esc(b, w->model);
+            rp_buf_put(b, "</td><td>");
+            rp_buf_esc(b, w->quantity);
+            rp_buf_put(b, "</td><td>");
+            rp_buf_esc(b, w->condition);
+            rp_buf_printf(b, "</td><td class=\"num\">%d of %d</td><td class=\"num\">",
+                          w->n_measured, w->n);
+            limit_cell(b, w->bias, "%+.3f");
+            rp_buf_put(b, "</td><td class=\"num\">");
+            limit_cell(b, w->sd, "%.3f");
+            rp_buf_put(b, "</td><td class=\"num\">");
+            limit_cell(b, w->max_abs_error, "%.3f");
+            rp_buf_put(b, " ");
+            rp_buf_esc(b, w->unit);
+            rp_buf_put(b, "</td><td class=\"num\">");
+            limit_cell(b, w->limit_bias, "%.2f");
+            rp_buf_put(b, " / ");
+            limit_cell(b, w->limit_sd, "%.2f");
+            rp_buf_put(b, " / ");
+            limit_cell(b, w->min_fraction, "%.2f");
+            rp_buf_put(b, "</td><td>");
+            rp_buf_put(b, !w->guaranteed ? "<span class=\"v v-info\">INFO</span>"
+                          : w->passed    ? "<span class=\"v v-pass\">PASS</span>"
+                                         : "<span class=\"v v-fail\">FAIL</span>");
+            rp_buf_put(b, "</td></tr>");
+        }
+        rp_buf_put(b, "</tbody></table>");
+    }
+    if (r->n_selftests > 0) {
+        rp_buf_put(b, "<p class=\"note\">Stored self-tests, newest first: ");
+        for (int i = 0; i < r->n_selftests; i++) {
+            const rp_selftest *t = &r->selftests[i];
+            if (i)
+                rp_buf_put(b, "; ");
+            rp_buf_esc(b, t->program_version);
+            rp_buf_put(b, " on ");
+            rp_buf_esc(b, t->started_at);
+            rp_buf_put(b, t->passed ? " passed" : " failed");
+        }
+        rp_buf_put(b, ".</p>");
+    }
+    rp_buf_put(b, "<p class=\"note\">The self-test measures simulated series of known truth "
+                  "through the same path as the service; the guaranteed limits are stated in "
+                  "the documentation (accuracy). It checks the software, not the scanner.</p>"
+                  "</section>");
+}
+
 sw_status rp_html_write(const char *path, const rp_report *r, rp_html_info *info, sw_error *err)
 {
     sw_status rc = SW_OK;
@@ -515,6 +633,7 @@ sw_status rp_html_write(const char *path, const rp_report *r, rp_html_info *info
                    "number can be re-checked from the annotated images and the stored "
                    "details.</aside>");
     overview(&b, r);
+    validation(&b, r);
     for (int i = 0; i < r->n_sections && rc == SW_OK; i++)
         rc = section(&b, &r->sec[i], i, info, err);
     if (rc != SW_OK)

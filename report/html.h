@@ -78,7 +78,27 @@ typedef struct rp_scanner_section {
     const rp_chart *charts;
     int n_images;
     const rp_image *images;
+    /* added (additive): the cause hints of the latest series, each one reading */
+    int n_hints;
+    const char *const *hints;
 } rp_scanner_section;
+
+/* Software validation evidence: one stored self-test and its rows. */
+typedef struct rp_selftest_row {
+    const char *model, *quantity, *condition, *unit;
+    int n, n_measured;
+    double bias, sd, max_abs_error;
+    double limit_bias, limit_sd, min_fraction; /* NAN: none */
+    int guaranteed, passed;
+} rp_selftest_row;
+
+typedef struct rp_selftest {
+    const char *program_version, *started_at, *host, *summary;
+    double seconds;
+    int n_series, passed;
+    int n_rows; /* rows are given for the newest self-test of each version only (0 else) */
+    const rp_selftest_row *rows;
+} rp_selftest;
 
 typedef struct rp_report {
     const char *title;
@@ -89,6 +109,10 @@ typedef struct rp_report {
     const char *settings; /* the drift settings in one line */
     int n_sections;
     const rp_scanner_section *sec;
+    /* added (additive): self-tests, newest first (the section says whether the version writing
+     * the report has a passing one) */
+    int n_selftests;
+    const rp_selftest *selftests;
 } rp_report;
 
 typedef struct rp_html_info {
