@@ -720,10 +720,16 @@ static int compose_results(const scene *sc, hline *L, int max)
             fmt_pm(a, sizeof a, "%.2f", t->corrected_mm, t->uncertainty_mm, "mm");
             snprintf(h->main, sizeof h->main, "Slice thickness %s", a);
             fmt_pm(b, sizeof b, "%+.2f", t->tilt_deg, t->tilt_unc_deg, "\xC2\xB0");
-            snprintf(h->rest, sizeof h->rest,
-                     "nominal %.2f mm, limits %.2f\xE2\x80\x93%.2f mm \xC2\xB7 ACR formula %.2f mm"
-                     " \xC2\xB7 tilt %s",
-                     t->nominal_mm, t->limit_lo_mm, t->limit_hi_mm, t->acr_mm, b);
+            if (!t->bottom.measured) /* single-ramp or single-wedge model: one strip */
+                snprintf(h->rest, sizeof h->rest,
+                         "nominal %.2f mm, limits %.2f\xE2\x80\x93%.2f mm \xC2\xB7 one strip, "
+                         "no tilt correction",
+                         t->nominal_mm, t->limit_lo_mm, t->limit_hi_mm);
+            else
+                snprintf(h->rest, sizeof h->rest,
+                         "nominal %.2f mm, limits %.2f\xE2\x80\x93%.2f mm \xC2\xB7 ACR formula "
+                         "%.2f mm \xC2\xB7 tilt %s",
+                         t->nominal_mm, t->limit_lo_mm, t->limit_hi_mm, t->acr_mm, b);
         } else {
             snprintf(h->main, sizeof h->main, "Slice thickness not measured: %s",
                      reason_or(t->reason, r->reason, "no reason given"));
