@@ -2,6 +2,7 @@
 #include "dcm_internal.h"
 
 #include <cerrno>
+#include <cfloat>
 #include <cmath>
 #include <cstdint>
 #include <cstdio>
@@ -598,6 +599,14 @@ sw_status read_pixels(const Reader &r, DcmDataset *ds, E_TransferSyntax xfer, dc
             !std::isfinite(im.rescale_intercept))
             return dcm_fail(r.err, SW_EFORMAT, r.name, "frame %d: bad RescaleSlope %g", fi + 1,
                             im.rescale_slope);
+        /* Every value must be a finite float: |stored| < 2^bs, so |slope| 2^bs + |intercept|
+         * bounds it (a value beyond FLT_MAX would turn into an infinite pixel). */
+        if (std::fabs(im.rescale_slope) * std::ldexp(1.0, bs) + std::fabs(im.rescale_intercept) >
+            static_cast<double>(FLT_MAX))
+            return dcm_fail(r.err, SW_EFORMAT, r.name,
+                            "frame %d: RescaleSlope %g and RescaleIntercept %g give values beyond "
+                            "the float range",
+                            fi + 1, im.rescale_slope, im.rescale_intercept);
         im.pixels = static_cast<float *>(malloc(fbytes));
         if (!im.pixels)
             return dcm_fail(r.err, SW_ENOMEM, r.name, "out of memory for %d x %d pixels", cols,
