@@ -149,7 +149,8 @@ typedef struct sim_identity {
 } sim_identity;
 
 typedef struct sim_params {
-    const an_model *model; /* the phantom; NULL: an_model_large(). Not owned; must outlive calls. */
+    const an_model *model; /* the phantom; NULL: an_model_large() (config/large-phantom.model,
+                              built in). Not owned; must outlive calls. */
     sim_profile_params profile; /* thickness_mm 0: the model's nominal thickness */
     sim_pose pose;
     sim_series_kind kind;
@@ -237,8 +238,13 @@ typedef struct sim_series {
     sim_truth truth;
 } sim_series;
 
-/* Renders a series in memory. On success *out is a new series the caller frees with
- * sim_series_free; on failure *out is NULL and err says why. */
+/* Renders a series in memory: the entry point for self-tests and benches (docs/models.md, "In-memory
+ * simulation for self-tests"). The truth to impose is p: p->model (any phantom model, for example
+ * from a model file), p->seed, p->profile.thickness_mm, p->position_offset_mm / position_scale
+ * (displacement), p->pose (tilt_v_deg, tilt_u_deg, rot_deg) and p->snr; (*out)->truth holds what
+ * the analysis should find, and sim_image_view gives each image the daemon's analysis view. On
+ * success *out is a new series the caller frees with sim_series_free; on failure *out is NULL and
+ * err says why. */
 sw_status sim_series_render(const sim_params *p, sim_series **out, sw_error *err);
 /* Writes the series into dir (created if absent; must not already hold a truth.json): one file per
  * image, or one Enhanced MR file, and truth.json. On failure files already written are left. */
@@ -247,7 +253,8 @@ sw_status sim_series_write(const sim_series *s, const char *dir, sw_error *err);
  * allocation failure. */
 char *sim_truth_json(const sim_series *s);
 void sim_series_free(sim_series *s);
-/* An analysis view of image i of s (pixels borrowed from s; valid while s lives). */
+/* An analysis view of image i of s, as daemon/pipeline.c builds one from a DICOM image (pixels
+ * borrowed from s; valid while s lives). */
 void sim_image_view(const sim_series *s, int i, an_image *out);
 
 /* Releases the cached FFTW plans (optional, at exit, when no render runs). */
