@@ -167,10 +167,22 @@ sw_status db_refuse_readonly(db *d, sw_error *err)
 
 /* ---- statements ---- */
 
+/* The first failed bind since the statement was taken (db_stmt): binding text copies it, which
+ * can fail for want of memory, and a statement run with a parameter left NULL would answer another
+ * question (a lookup that finds nothing, an insert that breaks a constraint). db_step returns the
+ * bind's failure instead of running. One statement is bound and run at a time per thread. */
+static _Thread_local int bind_failed;
+
+
 int db_step(db *d, sqlite3_stmt *st)
 {
     d->steps++;
     d->fault_fired = 0;
+    if (bind_failed) {
+        int rc = bind_failed;
+        bind_failed = 0;
+        return rc;
+    }
     if (d->fault_at > 0 && d->steps == d->fault_at) {
         d->fault_fired = 1;
         return SQLITE_IOERR;
@@ -193,6 +205,7 @@ sw_status db_stmt(db *d, db_stmt_id id, sqlite3_stmt **out, sw_error *err)
     }
     sqlite3_reset(d->stmt[id]);
     sqlite3_clear_bindings(d->stmt[id]);
+    bind_failed = 0;
     *out = d->stmt[id];
     return SW_OK;
 }
@@ -210,6 +223,7 @@ sw_status db_stmt_iter(db *d, db_stmt_id id, sqlite3_stmt **out, int *owned, sw_
             return db_sqlerr(d, rc, err);
         }
         *owned = 1;
+        bind_failed = 0;
         return SW_OK;
     }
     return db_stmt(d, id, out, err);
@@ -265,24 +279,32 @@ sw_status db_exec_script(db *d, const char *sql, sw_error *err)
 
 /* ---- binding and columns ---- */
 
+static int bound(int rc)
+{
+    if (rc != SQLITE_OK && !bind_failed)
+        bind_failed = rc;
+    return rc;
+}
+
 int db_bind_text(sqlite3_stmt *st, int i, const char *s)
 {
-    return s ? sqlite3_bind_text(st, i, s, -1, SQLITE_TRANSIENT) : sqlite3_bind_null(st, i);
+    return bound(s ? sqlite3_bind_text(st, i, s, -1, SQLITE_TRANSIENT) : sqlite3_bind_null(st, i));
 }
 
 int db_bind_text_or_null(sqlite3_stmt *st, int i, const char *s)
 {
-    return s && *s ? sqlite3_bind_text(st, i, s, -1, SQLITE_TRANSIENT) : sqlite3_bind_null(st, i);
+    return bound(s && *s ? sqlite3_bind_text(st, i, s, -1, SQLITE_TRANSIENT)
+                         : sqlite3_bind_null(st, i));
 }
 
 int db_bind_double_or_null(sqlite3_stmt *st, int i, double v)
 {
-    return isnan(v) ? sqlite3_bind_null(st, i) : sqlite3_bind_double(st, i, v);
+    return bound(isnan(v) ? sqlite3_bind_null(st, i) : sqlite3_bind_double(st, i, v));
 }
 
 int db_bind_id_or_null(sqlite3_stmt *st, int i, int64_t id)
 {
-    return id ? sqlite3_bind_int64(st, i, id) : sqlite3_bind_null(st, i);
+    return bound(id ? sqlite3_bind_int64(st, i, id) : sqlite3_bind_null(st, i));
 }
 
 const char *db_col_text(sqlite3_stmt *st, int i)
@@ -320,13 +342,30 @@ sw_status db_begin(db *d, sw_error *err)
         return db_refuse_readonly(d, err);
     if (db_in_transaction(d))
         return sw_error_set(err, SW_EINVAL, "db: %s: a transaction is already open", d->path);
-    return run_fixed(d, ST_BEGIN, err);
+    sw_status rc = run_fixed(d, ST_BEGIN, err);
+    d->txn_open = rc == SW_OK;
+    d->savepoint_depth = 0;
+    return rc;
+}
+
+/* SQLite rolls a transaction back by itself after some failures (SQLITE_FULL, SQLITE_IOERR,
+ * SQLITE_NOMEM, SQLITE_BUSY in a statement): the statements after that would each commit on
+ * their own, so that half of a series' transaction lands. Refused instead. */
+static sw_status lost_transaction(db *d, sw_error *err)
+{
+    if (d->txn_open && !db_in_transaction(d))
+        return sw_error_set(err, SW_EIO,
+                            "db: %s: the transaction was rolled back after an earlier failure; "
+                            "nothing more is written in it",
+                            d->path);
+    return SW_OK;
 }
 
 sw_status db_rollback(db *d, sw_error *err)
 {
     if (!d)
         return sw_error_set(err, SW_EINVAL, "db: no handle");
+    d->txn_open = 0;
     if (!db_in_transaction(d))
         return SW_OK;
     d->savepoint_depth = 0;
@@ -337,6 +376,10 @@ sw_status db_commit(db *d, sw_error *err)
 {
     if (!d)
         return sw_error_set(err, SW_EINVAL, "db: no handle");
+    sw_status lost = lost_transaction(d, err);
+    d->txn_open = 0;
+    if (lost != SW_OK)
+        return lost;
     if (!db_in_transaction(d))
         return sw_error_set(err, SW_EINVAL, "db: %s: no transaction is open", d->path);
     sw_status rc = run_fixed(d, ST_COMMIT, err);
@@ -351,7 +394,7 @@ sw_status db_commit(db *d, sw_error *err)
 sw_status db_atomic_begin(db *d, sw_error *err)
 {
     sw_status rc;
-    if ((rc = db_refuse_readonly(d, err)) != SW_OK)
+    if ((rc = db_refuse_readonly(d, err)) != SW_OK || (rc = lost_transaction(d, err)) != SW_OK)
         return rc;
     if (!db_in_transaction(d)) {
         if ((rc = run_fixed(d, ST_BEGIN, err)) != SW_OK)
@@ -497,6 +540,15 @@ sw_status db_open_ex(const char *path, int flags, const db_open_opts *o, db **ou
     }
     d->readonly = ro;
     d->fault_at = o ? o->fault_at : 0;
+    /* A test facility (tests/fault): the environment may ask for the same fault in a whole
+     * program. Read only when set; a value that is not a positive number is ignored. */
+    const char *fault_env = d->fault_at ? NULL : getenv("SLICEWARDEN_TEST_DB_FAULT_AT");
+    if (fault_env && *fault_env) {
+        char *end = NULL;
+        long v = strtol(fault_env, &end, 10);
+        if (end && !*end && v > 0)
+            d->fault_at = v;
+    }
     int oflags = (ro ? SQLITE_OPEN_READONLY : SQLITE_OPEN_READWRITE) |
                  ((flags & DB_OPEN_CREATE) ? SQLITE_OPEN_CREATE : 0) | SQLITE_OPEN_NOMUTEX |
                  SQLITE_OPEN_EXRESCODE;

@@ -57,9 +57,12 @@ struct db {
     char *path;
     int readonly;
     int savepoint_depth; /* nesting of internal savepoints */
+    int txn_open;        /* the caller's db_begin is in force (until db_commit or db_rollback) */
     sqlite3_stmt *stmt[ST_COUNT];
     /* Fault injection (tests): when fault_at > 0, the fault_at-th call of db_step on this handle
-     * (counting from the open) fails with SQLITE_IOERR without running. steps counts every call. */
+     * (counting from the open) fails with SQLITE_IOERR without running. steps counts every call.
+     * When the options give none, SLICEWARDEN_TEST_DB_FAULT_AT in the environment sets it (a test
+     * facility for whole-program sweeps, tests/fault; read only when set). */
     long steps;
     long fault_at;
     int fault_fired; /* the last failure was injected */

@@ -322,7 +322,7 @@ static sw_status record_step(db *d, const db_migration *m, const char *now, sw_e
     sqlite3_bind_int(st, 1, m->version);
     sqlite3_bind_text(st, 2, m->description, -1, SQLITE_STATIC);
     sqlite3_bind_text(st, 3, SW_VERSION, -1, SQLITE_STATIC);
-    sqlite3_bind_text(st, 4, now, -1, SQLITE_TRANSIENT);
+    db_bind_text(st, 4, now);
     rc = db_exec_stmt(d, st, err);
 out:
     sqlite3_finalize(st);
@@ -343,8 +343,8 @@ static sw_status set_meta(db *d, const char *key, const char *value, int keep, c
         goto out;
     }
     sqlite3_bind_text(st, 1, key, -1, SQLITE_STATIC);
-    sqlite3_bind_text(st, 2, value, -1, SQLITE_TRANSIENT);
-    sqlite3_bind_text(st, 3, now, -1, SQLITE_TRANSIENT);
+    db_bind_text(st, 2, value);
+    db_bind_text(st, 3, now);
     rc = db_exec_stmt(d, st, err);
 out:
     sqlite3_finalize(st);
