@@ -33,8 +33,9 @@
 /* Conditions of the sweep. */
 enum { G_HIGH = 0, G_LOW, G_SHAPES, G_COUNT };
 static const char *const group_name[G_COUNT] = {
-    "SNR 50-100; thickness 0.6-1.4 x nominal; rotation +-5 deg, tilt +-1.5 deg, pitch +-0.5 deg, "
-    "offsets",
+    /* parenthesised: one element split over two lines (clang's -Wstring-concatenation) */
+    ("SNR 50-100; thickness 0.6-1.4 x nominal; rotation +-5 deg, tilt +-1.5 deg, pitch +-0.5 deg, "
+     "offsets"),
     "SNR 15-20; nominal thickness; small pose",
     "rect, Gaussian and blurred-rect profiles; nominal thickness; SNR 100",
 };
