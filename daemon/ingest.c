@@ -343,6 +343,30 @@ static sw_status copy_then_unlink(const char *src, const char *dst, sw_error *er
     dir_of(dst, dir, sizeof dir);
     if (snprintf(tmp, sizeof tmp, "%s/.%s.swpart", dir, base_of(dst)) >= (int)sizeof tmp)
         return sw_error_set(err, SW_EINVAL, "%s: path too long", dst);
+    if (lstat(src, &st) == 0 && S_ISLNK(st.st_mode)) {
+        /* A symbolic link moves as a link (the watch folder records links, never follows them). */
+        char target[PATH_MAX];
+        ssize_t n = readlink(src, target, sizeof target - 1);
+        if (n < 0)
+            return sw_error_set(err, errno == ENOENT ? SW_ENOTFOUND : SW_EIO, "%s: %s", src,
+                                strerror(errno));
+        target[n] = '\0';
+        (void)unlink(tmp); /* a leftover of a killed move */
+        if (symlink(target, tmp) != 0)
+            return sw_error_set(err, SW_EIO, "%s: cannot create: %s", tmp, strerror(errno));
+        if (place_noreplace(tmp, dst) != 0) {
+            int e = errno;
+            (void)unlink(tmp);
+            return e == EEXIST ? sw_error_set(err, SW_EBUSY, "%s: exists", dst)
+                               : sw_error_set(err, SW_EIO, "%s: cannot create: %s", dst, strerror(e));
+        }
+        sync_dir_of(dst);
+        if (unlink(src) != 0)
+            return sw_error_set(err, SW_EIO, "%s: copied to %s but cannot remove: %s", src, dst,
+                                strerror(errno));
+        sync_dir_of(src);
+        return SW_OK;
+    }
     if ((in = open(src, O_RDONLY | O_CLOEXEC | O_NOFOLLOW)) < 0 || fstat(in, &st) != 0) {
         rc = sw_error_set(err, errno == ENOENT ? SW_ENOTFOUND : SW_EIO, "%s: cannot open: %s", src,
                           strerror(errno));

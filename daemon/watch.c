@@ -614,7 +614,8 @@ static void scan_dir(watcher *w, const char *dir)
             t = S_ISDIR(st.st_mode) ? DT_DIR : S_ISREG(st.st_mode) ? DT_REG : DT_LNK;
         }
         type[i] = t;
-        if (t == DT_REG && !wd_name_is_temporary(name))
+        /* Links are queued too: they are recorded (and never followed), see take_link. */
+        if ((t == DT_REG || t == DT_LNK) && !wd_name_is_temporary(name))
             (void)enqueue_item(&w->q, path, 0, 0, 1);
     }
     /* The folder stack is last in, first out: push in reverse name order. */
@@ -712,6 +713,10 @@ static void read_events(watcher *w)
                     push_dir(w, path); /* watched and listed: files may be in it already */
                 continue;
             }
+            struct stat lst;
+            if ((ev->mask & IN_CREATE) && !wd_name_is_temporary(ev->name) &&
+                lstat(path, &lst) == 0 && S_ISLNK(lst.st_mode))
+                (void)enqueue(&w->q, path, 0, 0); /* a new symbolic link: recorded, not followed */
             if ((ev->mask & (IN_CLOSE_WRITE | IN_MOVED_TO)) && !wd_name_is_temporary(ev->name))
                 (void)enqueue(&w->q, path, 0, 0);
         }
@@ -1419,6 +1424,30 @@ static int transient(sw_status st)
     return st == SW_ENOMEM || st == SW_EIO;
 }
 
+/* Reads a file's bytes as DICOM. DCMTK reports an allocation that failed inside its parser as a
+ * malformed-data condition ("Virtual Memory exhausted"), which cannot be told from a damaged file
+ * by its status: a refusal is confirmed by a second read of the same bytes before the file is
+ * quarantined for it. A damaged file costs one read more; a good one nothing. */
+static sw_status read_dicom(const unsigned char *data, size_t len, const char *path, dcm_file **out,
+                            sw_error *err)
+{
+    sw_status rc = dcm_read_buffer(data, len, path, NULL, out, err);
+    if (rc == SW_OK || transient(rc))
+        return rc;
+    sw_error again;
+    sw_error_clear(&again);
+    dcm_file *f = NULL;
+    if (dcm_read_buffer(data, len, path, NULL, &f, &again) != SW_OK) {
+        dcm_file_free(f);
+        return rc;
+    }
+    wd_warn("%s; a second read of the same bytes succeeded", err ? err->msg : path);
+    if (err)
+        sw_error_clear(err);
+    *out = f;
+    return SW_OK;
+}
+
 /* A file found by listing a folder that changed less than this long ago may still be written by
  * a receiver that writes under its final name (storescp does): it waits until it has settled, or
  * until inotify says it was closed. */
@@ -1521,7 +1550,7 @@ static int parse(watcher *w, int64_t id, const char *path, const wd_blob *b, int
     int result = TAKEN;
     char why[512];
     const char *hash = b->hash;
-    sw_status rd = dcm_read_buffer(b->data, b->len, path, NULL, &f, &err);
+    sw_status rd = read_dicom(b->data, b->len, path, &f, &err);
     if (rd != SW_OK && transient(rd) && tries < TRANSIENT_TRIES) {
         st = rd; /* the machine's fault, not the file's: nothing recorded, tried again */
         goto out;
@@ -1689,7 +1718,7 @@ static int reattach(watcher *w, int64_t id, const char *path, const wd_blob *b, 
     sw_error_clear(&err);
     dcm_file *f = NULL;
     int result = TAKEN;
-    sw_status rd = dcm_read_buffer(b->data, b->len, path, NULL, &f, &err);
+    sw_status rd = read_dicom(b->data, b->len, path, &f, &err);
     if (rd != SW_OK && transient(rd) && tries < TRANSIENT_TRIES) {
         wd_error("%s; tried again later", err.msg);
         return RETRY;
@@ -1744,6 +1773,70 @@ static int reattach(watcher *w, int64_t id, const char *path, const wd_blob *b, 
     return result;
 }
 
+/* A symbolic link in the watch folder is never followed: a link to a file outside would let
+ * anyone who can write the folder make the service read (and archive) any file it can read, and a
+ * link inside names bytes that are taken where they lie. It is recorded as ignored with its target
+ * in the reason, and moved to ignored/ like any ignored file (the link itself; its target is not
+ * touched). Links to folders, and loops, are links like any other. */
+static int take_link(watcher *w, const char *path)
+{
+    sw_error err;
+    sw_error_clear(&err);
+    char target[PATH_MAX], hash[WD_HASH_MAX], why[PATH_MAX + 200];
+    ssize_t n = readlink(path, target, sizeof target - 1);
+    if (n < 0)
+        return errno == ENOENT ? SKIPPED : RETRY;
+    target[n] = '\0';
+    char resolved[PATH_MAX];
+    const char *where = !realpath(path, resolved) ? "which names nothing that exists (or a loop)"
+                        : wd_path_inside(resolved, w->s->cfg.folder)
+                            ? "inside the watch folder, taken where it lies"
+                            : "outside the watch folder";
+    /* Known by path and target: "link:" and the SHA-256 of the target's text. */
+    char th[WD_HASH_MAX];
+    wd_sha256_text(target, (size_t)n, th);
+    snprintf(hash, sizeof hash, "link:%s", th + 7);
+    snprintf(why, sizeof why, "a symbolic link to %s (%s); links are not followed", target, where);
+    db_file_info fi = {.path = path, .content_hash = hash, .size = 0};
+    int64_t id = 0;
+    db_file_outcome how;
+    int result = TAKEN;
+    sw_status rc = txn_begin(w, &err);
+    if (rc == SW_OK)
+        rc = db_file_add(w->d, &fi, &id, &how, NULL, &err);
+    file_look fl;
+    memset(&fl, 0, sizeof fl);
+    fl.state = DB_FILE_SEEN;
+    if (rc == SW_OK && how == DB_FILE_KNOWN)
+        rc = db_file_get(w->d, id, file_cb, &fl, &err);
+    if (rc == SW_OK && db_file_state_final(fl.state)) {
+        txn_rollback(w); /* known: only its move is left */
+        fmove m = {.id = id,
+                   .path = path,
+                   .hash = hash,
+                   .state = fl.state,
+                   .reason = fl.reason,
+                   .location = fl.location,
+                   .series_id = 0};
+        result = move_or_report(w, &m) == 0 ? TAKEN : SKIPPED;
+        goto out;
+    }
+    if (rc == SW_OK)
+        rc = to_final(w, id, path, hash, fl.state, DB_FILE_IGNORED, why, 0, &err);
+    if (rc == SW_OK)
+        rc = txn_commit(w, &err);
+    if (rc != SW_OK) {
+        if (w->in_txn)
+            txn_rollback(w);
+        if (rc != SW_EBUSY)
+            wd_error("%s: %s; tried again later", path, err.msg);
+        result = RETRY;
+    }
+out:
+    run_jobs(w);
+    return result;
+}
+
 static int take_file(watcher *w, const char *path, int scanned, int tries)
 {
     sw_error err;
@@ -1756,6 +1849,8 @@ static int take_file(watcher *w, const char *path, int scanned, int tries)
         return SKIPPED;
     if (lstat(path, &st) != 0)
         return SKIPPED; /* gone (moved on, or a temporary file renamed) */
+    if (S_ISLNK(st.st_mode))
+        return take_link(w, path);
     if (!S_ISREG(st.st_mode)) {
         wd_debug("%s: not a regular file; left in place", path);
         return SKIPPED;
@@ -1770,6 +1865,12 @@ static int take_file(watcher *w, const char *path, int scanned, int tries)
     if (rs == SW_EINVAL) {
         wd_debug("%s", err.msg);
         return SKIPPED;
+    }
+    if ((rs == SW_ENOMEM || (rs == SW_EIO && eno != EACCES && eno != EPERM)) &&
+        tries < TRANSIENT_TRIES) {
+        /* Out of memory, out of file descriptors, a read error: perhaps not the file's fault. */
+        wd_error("%s; tried again later", err.msg);
+        return RETRY;
     }
     int unreadable = rs != SW_OK;
     char unreadable_why[SW_ERROR_MAX];
@@ -1958,7 +2059,13 @@ static int measure_series(watcher *w, wseries *s, int quiet)
         sw_error e2;
         sw_error_clear(&e2);
         ld[i].fate = DB_FILE_STORED;
-        sw_status rs = wd_blob_read(s->files[i].path, &b, NULL, &e2);
+        int eno = 0;
+        sw_status rs = wd_blob_read(s->files[i].path, &b, &eno, &e2);
+        if (((rs == SW_EIO && eno != EACCES && eno != EPERM) || rs == SW_ENOMEM) &&
+            s->retries < TRANSIENT_TRIES) {
+            st = sw_error_set(&err, rs, "%s", e2.msg); /* nothing recorded: measured again later */
+            goto out;
+        }
         if (rs != SW_OK) {
             ld[i].fate = DB_FILE_QUARANTINED;
             snprintf(ld[i].why, sizeof ld[i].why, "%s before its series was measured",
@@ -1974,7 +2081,13 @@ static int measure_series(watcher *w, wseries *s, int quiet)
             wd_blob_free(&b);
             continue;
         }
-        if (dcm_read_buffer(b.data, b.len, s->files[i].path, NULL, &ld[i].f, &e2) != SW_OK) {
+        sw_status rd = read_dicom(b.data, b.len, s->files[i].path, &ld[i].f, &e2);
+        if (rd != SW_OK && transient(rd) && s->retries < TRANSIENT_TRIES) {
+            wd_blob_free(&b);
+            st = sw_error_set(&err, rd, "%s", e2.msg);
+            goto out;
+        }
+        if (rd != SW_OK) {
             ld[i].fate = DB_FILE_QUARANTINED;
             sw_strlcpy(ld[i].why, e2.msg, sizeof ld[i].why);
         } else {
@@ -2005,7 +2118,12 @@ static int measure_series(watcher *w, wseries *s, int quiet)
     if (!not_phantom && n_img) {
         sw_error e3;
         sw_error_clear(&e3);
-        if (wd_measure(imgs, n_img, &method, &m, &e3) == SW_OK)
+        sw_status ms = wd_measure(imgs, n_img, &method, &m, &e3);
+        if (ms == SW_ENOMEM && s->retries < TRANSIENT_TRIES) {
+            st = sw_error_set(&err, ms, "%s", e3.msg); /* not the series' fault: measured again */
+            goto out;
+        }
+        if (ms == SW_OK)
             measured = 1;
         else
             snprintf(fail_why, sizeof fail_why, "not measurable: %s", e3.msg);
@@ -2138,10 +2256,24 @@ out:
     if (began)
         (void)db_rollback(w->d, NULL);
     if (st != SW_OK) {
+        /* The run was rolled back: its PNGs name a run that does not exist, whose number the
+         * next run (of any series) gets. */
+        for (int i = 0; i < res.n_pngs; i++)
+            if (unlink(res.png[i].path) != 0 && errno != ENOENT)
+                wd_warn("%s: cannot remove the image of a run rolled back: %s", res.png[i].path,
+                        strerror(errno));
         if (st != SW_EBUSY)
             wd_error("series %s: %s; tried again later", s ? s->uid : "?", err.msg);
-        if (s)
-            s->retry_at = wd_now_mono() + (st == SW_EBUSY ? 1.0 : 30.0);
+        if (s) {
+            if (st != SW_EBUSY)
+                s->retries++;
+            /* --once tries a few times within its run (then leaves the series to the next run
+             * and exits 1); the service every 30 s. */
+            double delay = st == SW_EBUSY                                ? 1.0
+                           : w->once && s->retries < TRANSIENT_TRIES ? 1.0 * s->retries
+                                                                     : 30.0;
+            s->retry_at = wd_now_mono() + delay;
+        }
         result = RETRY;
     }
     wd_measured_free(&m);
@@ -2278,7 +2410,14 @@ static sw_status rebuild(watcher *w, sw_error *err)
             wd_blob b;
             sw_error e2;
             sw_error_clear(&e2);
-            sw_status rs = wd_blob_read(f->path, &b, NULL, &e2);
+            int eno = 0;
+            sw_status rs = wd_blob_read(f->path, &b, &eno, &e2);
+            if (rs == SW_ENOMEM || (rs == SW_EIO && eno != EACCES && eno != EPERM)) {
+                /* Not the file's fault, and its series must not be measured without it: the
+                 * start fails (nothing was recorded for the file) and the next one resumes. */
+                rc = sw_error_set(err, rs, "%s", e2.msg);
+                goto out;
+            }
             if (rs == SW_ENOTFOUND || (rs == SW_OK && strcmp(b.hash, f->hash))) {
                 int changed = rs == SW_OK;
                 wd_blob_free(&b);
@@ -2297,10 +2436,14 @@ static sw_status rebuild(watcher *w, sw_error *err)
             }
             dcm_file *df = NULL;
             note_file(f->path, f->hash);
-            int bad =
-                rs != SW_OK || dcm_read_buffer(b.data, b.len, f->path, NULL, &df, &e2) != SW_OK;
+            sw_status rd = rs != SW_OK ? rs : read_dicom(b.data, b.len, f->path, &df, &e2);
             note_clear();
-            if (bad) {
+            if (rs == SW_OK && transient(rd)) {
+                wd_blob_free(&b);
+                rc = sw_error_set(err, rd, "%s", e2.msg);
+                goto out;
+            }
+            if (rd != SW_OK) {
                 char why[SW_ERROR_MAX];
                 sw_strlcpy(why, e2.msg, sizeof why);
                 sw_status r2 = to_final(w, f->id, f->path, f->hash, f->state, DB_FILE_QUARANTINED,
@@ -2466,9 +2609,20 @@ static int looking(const watcher *w)
 {
     double mono = wd_now_mono();
     for (int i = 0; i < w->nseries; i++)
-        if (w->series[i]->looks > 0 && w->series[i]->retry_at > mono)
+        if ((w->series[i]->looks > 0 ||
+             (w->series[i]->retries > 0 && w->series[i]->retries < TRANSIENT_TRIES)) &&
+            w->series[i]->retry_at > mono)
             return 1;
     return 0;
+}
+
+/* Series whose measurement failed and is still to be done (--once exits 1 for them). */
+static int failed_to_measure(const watcher *w)
+{
+    int n = 0;
+    for (int i = 0; i < w->nseries; i++)
+        n += w->series[i]->retries > 0;
+    return n;
 }
 
 static double next_quiet_s(const watcher *w)
@@ -2896,7 +3050,7 @@ int wd_cmd_watch(int argc, char **argv)
     else
         summary(w, stderr);
     rc = w->stop == 2 ? 1 : 0;
-    if (w->once && (queue_len(&w->q) || w->st.move_failures))
+    if (w->once && (queue_len(&w->q) || w->st.move_failures || failed_to_measure(w)))
         rc = 1;
 out:
     if (w->alerts)
