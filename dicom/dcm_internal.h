@@ -14,6 +14,9 @@
 /* The limit on NumberOfFrames we accept from a header: bounds the per-frame records allocated
  * before any pixel is read (about 3 kB each). */
 #define DCM_MAX_FRAMES 100000
+/* Decoded pixel data of one file, at most (stored values; the float copy is twice that for 16-bit
+ * data). 256 MiB holds 128 frames of 1024 x 1024 or 2048 of 256 x 256 at 16 bits. */
+#define DCM_MAX_PIXEL_BYTES (256 * 1048576)
 
 /* 1 after a successful dcm_init, 0 before and after dcm_shutdown. */
 int dcm_is_initialised(void);

@@ -490,6 +490,61 @@ struct Raw {
     }
 };
 
+/* The image pixel module as the dataset states it, checked: what the reader supports and a
+ * decoded size within DCM_MAX_PIXEL_BYTES. */
+struct PixelModule {
+    int rows, cols, ba, bs, hb, rep;
+    char photometric[17];
+};
+
+sw_status pixel_module(const Reader &r, DcmDataset *ds, int nframes, PixelModule *pm)
+{
+    int samples = 1, x;
+    if (get_int(ds, DCM_SamplesPerPixel, &x))
+        samples = x;
+    get_text(ds, DCM_PhotometricInterpretation, pm->photometric, sizeof pm->photometric);
+    if (samples != 1)
+        return dcm_fail(r.err, SW_EUNSUPPORTED, r.name,
+                        "SamplesPerPixel %d (%s) is not supported: only monochrome images", samples,
+                        pm->photometric[0] ? pm->photometric : "colour");
+    if (!pm->photometric[0])
+        sw_strlcpy(pm->photometric, "MONOCHROME2", sizeof pm->photometric);
+    if (strcmp(pm->photometric, "MONOCHROME1") != 0 && strcmp(pm->photometric, "MONOCHROME2") != 0)
+        return dcm_fail(r.err, SW_EUNSUPPORTED, r.name,
+                        "PhotometricInterpretation %s is not supported: only MONOCHROME1/2",
+                        pm->photometric);
+    pm->rows = pm->cols = pm->ba = pm->rep = 0;
+    get_int(ds, DCM_Rows, &pm->rows);
+    get_int(ds, DCM_Columns, &pm->cols);
+    get_int(ds, DCM_BitsAllocated, &pm->ba);
+    if (!get_int(ds, DCM_BitsStored, &pm->bs))
+        pm->bs = pm->ba;
+    if (!get_int(ds, DCM_HighBit, &pm->hb))
+        pm->hb = pm->bs - 1;
+    get_int(ds, DCM_PixelRepresentation, &pm->rep);
+    if (pm->rows < 1 || pm->cols < 1 || pm->rows > 65535 || pm->cols > 65535)
+        return dcm_fail(r.err, SW_EFORMAT, r.name,
+                        "bad or missing image size (Columns %d, Rows %d)", pm->cols, pm->rows);
+    if (pm->ba != 8 && pm->ba != 16 && pm->ba != 32)
+        return dcm_fail(r.err, SW_EUNSUPPORTED, r.name,
+                        "BitsAllocated %d is not supported (8, 16 or 32)", pm->ba);
+    if (pm->bs < 1 || pm->bs > pm->ba || pm->hb < pm->bs - 1 || pm->hb >= pm->ba)
+        return dcm_fail(r.err, SW_EFORMAT, r.name, "inconsistent BitsStored %d / HighBit %d",
+                        pm->bs, pm->hb);
+    if (pm->rep != 0 && pm->rep != 1)
+        return dcm_fail(r.err, SW_EFORMAT, r.name, "bad PixelRepresentation %d", pm->rep);
+    /* at most 2^16 * 2^16 * 4 * 1e5 < 2^64 */
+    uint64_t bytes = static_cast<uint64_t>(pm->rows) * static_cast<uint64_t>(pm->cols) *
+                     static_cast<uint64_t>(pm->ba / 8) * static_cast<uint64_t>(nframes);
+    if (bytes > DCM_MAX_PIXEL_BYTES)
+        return dcm_fail(r.err, SW_EUNSUPPORTED, r.name,
+                        "%d frame(s) of %d x %d x %d bits are %.0f MiB of pixels, over the %d MiB "
+                        "this reader takes",
+                        nframes, pm->cols, pm->rows, pm->ba, static_cast<double>(bytes) / 1048576.0,
+                        DCM_MAX_PIXEL_BYTES / 1048576);
+    return SW_OK;
+}
+
 /* Decodes the pixel data into every frame's float buffer. */
 sw_status read_pixels(const Reader &r, DcmDataset *ds, E_TransferSyntax xfer, dcm_file *out)
 {
@@ -504,6 +559,13 @@ sw_status read_pixels(const Reader &r, DcmDataset *ds, E_TransferSyntax xfer, dc
 
     DcmXfer xf(xfer);
     bool big = false;
+    PixelModule pm;
+    /* The pixel module is checked before any decoder runs: a decoder sizes its output from it
+     * (rows x columns x samples x frames), so a damaged one would make it allocate gigabytes
+     * for a few kilobytes of input. */
+    sw_status st = pixel_module(r, ds, out->nframes, &pm);
+    if (st != SW_OK)
+        return st;
     if (xf.isEncapsulated()) {
         OFCondition c = ds->chooseRepresentation(EXS_LittleEndianExplicit, nullptr);
         if (c.bad() || !ds->canWriteXfer(EXS_LittleEndianExplicit))
@@ -512,45 +574,14 @@ sw_status read_pixels(const Reader &r, DcmDataset *ds, E_TransferSyntax xfer, dc
         /* The decoder may have changed the pixel module (bits allocated, photometric). */
         if (ds->findAndGetElement(DCM_PixelData, pe).bad() || !pe)
             return dcm_fail(r.err, SW_EFORMAT, r.name, "pixel data lost in decoding");
+        st = pixel_module(r, ds, out->nframes, &pm);
+        if (st != SW_OK)
+            return st;
     } else {
         big = xf.isBigEndian();
     }
-
-    int samples = 1, x;
-    if (get_int(ds, DCM_SamplesPerPixel, &x))
-        samples = x;
-    char photometric[17];
-    get_text(ds, DCM_PhotometricInterpretation, photometric, sizeof photometric);
-    if (samples != 1)
-        return dcm_fail(r.err, SW_EUNSUPPORTED, r.name,
-                        "SamplesPerPixel %d (%s) is not supported: only monochrome images", samples,
-                        photometric[0] ? photometric : "colour");
-    if (!photometric[0])
-        sw_strlcpy(photometric, "MONOCHROME2", sizeof photometric);
-    if (strcmp(photometric, "MONOCHROME1") != 0 && strcmp(photometric, "MONOCHROME2") != 0)
-        return dcm_fail(r.err, SW_EUNSUPPORTED, r.name,
-                        "PhotometricInterpretation %s is not supported: only MONOCHROME1/2",
-                        photometric);
-    int rows = 0, cols = 0, ba = 0, bs, hb, rep = 0;
-    get_int(ds, DCM_Rows, &rows);
-    get_int(ds, DCM_Columns, &cols);
-    get_int(ds, DCM_BitsAllocated, &ba);
-    if (!get_int(ds, DCM_BitsStored, &bs))
-        bs = ba;
-    if (!get_int(ds, DCM_HighBit, &hb))
-        hb = bs - 1;
-    get_int(ds, DCM_PixelRepresentation, &rep);
-    if (rows < 1 || cols < 1 || rows > 65535 || cols > 65535)
-        return dcm_fail(r.err, SW_EFORMAT, r.name,
-                        "bad or missing image size (Columns %d, Rows %d)", cols, rows);
-    if (ba != 8 && ba != 16 && ba != 32)
-        return dcm_fail(r.err, SW_EUNSUPPORTED, r.name,
-                        "BitsAllocated %d is not supported (8, 16 or 32)", ba);
-    if (bs < 1 || bs > ba || hb < bs - 1 || hb >= ba)
-        return dcm_fail(r.err, SW_EFORMAT, r.name, "inconsistent BitsStored %d / HighBit %d", bs,
-                        hb);
-    if (rep != 0 && rep != 1)
-        return dcm_fail(r.err, SW_EFORMAT, r.name, "bad PixelRepresentation %d", rep);
+    const int rows = pm.rows, cols = pm.cols, ba = pm.ba, bs = pm.bs, hb = pm.hb, rep = pm.rep;
+    const char *photometric = pm.photometric;
 
     /* Sizes from the header: check before trusting them. */
     size_t npix, frame_bytes, need;
