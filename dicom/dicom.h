@@ -111,9 +111,11 @@ void dcm_shutdown(void);
  *
  * Full read: refuses (SW_EUNSUPPORTED) JPEG 2000 ("JPEG 2000 is not supported"), syntaxes DCMTK
  * cannot decode, SamplesPerPixel other than 1, PhotometricInterpretation other than MONOCHROME1/2,
- * BitsAllocated other than 8, 16, 32, float pixel data and files without pixel data; refuses
- * (SW_EFORMAT) truncated or malformed data, pixel data shorter than the frames need, a zero or
- * non-finite rescale slope, UIDs over 64 characters and NumberOfFrames over 100000.
+ * BitsAllocated other than 8, 16, 32, float pixel data, files without pixel data and pixel data
+ * that decodes to more than 256 MiB (the pixel module is checked before any decoder runs);
+ * refuses (SW_EFORMAT) truncated or malformed data, pixel data shorter than the frames need, a
+ * zero or non-finite rescale slope, a rescale that takes values beyond the float range, UIDs
+ * over 64 characters and NumberOfFrames over 100000.
  * header_only: the attributes whatever the pixel encoding (a JPEG 2000 or RGB file reads, so that
  * the caller can sort it by modality and SOP class); fails only when the data set cannot be
  * parsed or is inconsistent in itself (UIDs, NumberOfFrames against the pixel data length and the
