@@ -295,11 +295,14 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
             j1 = want == 1 ? nv - 1
                  : s == 0  ? nv - 1
                            : jc - 2;
+        /* The highest local maximum inside the half: the other strip's blurred flank (a long
+         * strip beside a short one, on a tilted phantom at a coarse matrix) rises toward the
+         * range's end and must not stand in for this strip's peak. */
         int jp = -1;
-        for (int j = j0; j <= j1; j++)
-            if (jp < 0 || As[j] > As[jp])
+        for (int j = j0 + 2; j <= j1 - 2; j++)
+            if (As[j] >= As[j - 1] && As[j] >= As[j + 1] && (jp < 0 || As[j] > As[jp]))
                 jp = j;
-        if (jp < 0 || jp <= j0 + 1 || jp >= j1 - 1 || !(As[jp] - floor > 0.02 * d->fluid)) {
+        if (jp < 0 || !(As[jp] - floor > 0.02 * d->fluid)) {
             ins->found = 0;
             snprintf(ins->reason, sizeof ins->reason, "strip not found: no %s strip in the insert",
                      want == 1 ? ""

@@ -583,6 +583,19 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
         }
         for (int c = c0; c < ncand && ramp < 0; c++) {
             int i = cand[c];
+            /* An interior slice can hold the ramps only when the stack runs past the phantom's
+             * standard series: the model's slices must fit between it and the far end. A
+             * neighbour of the ramp slice that cuts the insert's end otherwise passes for it and
+             * shifts every ordinal by one (seen on tilted phantoms at coarse matrices). */
+            if (i != ends[0] && i != ends[nends - 1]) {
+                int rank = 0;
+                for (int k = 0; k < n; k++)
+                    if (order[k] == i)
+                        rank = k;
+                int beyond = rank > n - 1 - rank ? rank : n - 1 - rank;
+                if (n <= model->n_slices || beyond < model->n_slices - 1)
+                    continue;
+            }
             /* the other wedge slice lies toward the far end of the stack */
             int oth = -1;
             if (nends == 2)

@@ -478,6 +478,15 @@ void wd_tolerances_default(wd_tolerances *t)
 {
     memset(t, 0, sizeof *t);
     an_tolerance_default(&t->base);
+    /* 3D acquisitions have their own entry: the ramp slice's measurement is a partition's
+     * thickness, which the 2D guidance does not cover. Until a site sets its own, the built-in
+     * entry has the 2D figures under its own name, so results say which entry judged them. A
+     * tolerance file replaces it (a file without a 3d rule judges 3D series by its [default]). */
+    wd_tol_rule *r = &t->rule[t->n_rules++];
+    sw_strlcpy(r->station, "*", sizeof r->station);
+    sw_strlcpy(r->series_type, "3d", sizeof r->series_type);
+    r->tol = t->base;
+    snprintf(r->tol.name, sizeof r->tol.name, "%s", "partition-3d-default");
 }
 
 static const char *tol_check(const an_tolerance *t)
@@ -497,6 +506,7 @@ sw_status wd_tolerances_load(wd_tolerances *t, const char *path, sw_error *err)
     if (!tmp)
         return sw_error_set(err, SW_ENOMEM, "%s: out of memory", path);
     wd_tolerances_default(tmp);
+    tmp->n_rules = 0; /* the file's rules only */
     parse_ctx ctx = {.kind = 2, .target = tmp};
     sw_status st = parse(path, tol_handler, &ctx, err);
     for (int i = -1; st == SW_OK && i < tmp->n_rules; i++) {
