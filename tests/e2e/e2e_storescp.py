@@ -1,9 +1,12 @@
 #!/usr/bin/python3
 """e2e_storescp.py: the pairing docs/operations.md recommends, end to end: DCMTK's storescp (Debian's
 dcmtk package) receives a simulated T1 series and a double-echo T2 series over the network from
-DCMTK's storescu, writing into the watch folder with a subfolder per study (-su); a running
-`slicewarden watch` takes each file as storescp closes it, and stores both series. Reports
+DCMTK's storescu, one image per association, the two series interleaved, with pauses, writing into
+the watch folder with a subfolder per study (-su); a running `slicewarden watch` takes each file as
+storescp closes it, measures each series once as soon as it is complete, and stores the same
+results as `slicewarden analyze` gives on the files sent. Reports
 "skipped" (exit 77) when the dcmtk tools are not installed."""
+import json
 import os
 import shutil
 import socket
@@ -11,7 +14,7 @@ import subprocess
 import sys
 import time
 
-from swe2e import (Daemon, check, cleanup, files_under, finish, query, simulate, sha256,
+from swe2e import (SW, Daemon, check, cleanup, files_under, finish, query, simulate, sha256,
                    stored_series, tmpdir, tree_hashes, wait_for)
 
 if not (shutil.which("storescp") and shutil.which("storescu")):
@@ -45,11 +48,30 @@ deadline = time.monotonic() + 30
 while not listening(port) and time.monotonic() < deadline and scp.poll() is None:
     time.sleep(0.1)
 check(listening(port), "storescp listens on port %d" % port)
+sent_at = {}
 try:
-    for name, files in (("T1", t1), ("T2", t2)):
+    # One image per association, the two series interleaved, with pauses: the way a scanner that
+    # sends as it reconstructs, or two consoles sending at once, deliver.
+    order = []
+    for k in range(max(len(t1), len(t2))):
+        if k < len(t1):
+            order.append(("T1", t1[k]))
+        if k < len(t2):
+            order.append(("T2", t2[k]))
+    sends_ok = 0
+    t1_done_at = None
+    for name, f in order:
         r = subprocess.run(["storescu", "-aet", "ALDMR1", "-aec", "SLICEWARDEN", "127.0.0.1",
-                            str(port)] + files, capture_output=True, text=True, timeout=120)
-        check(r.returncode == 0, "storescu sent the %s series: %s" % (name, r.stderr[-300:]))
+                            str(port), f], capture_output=True, text=True, timeout=60)
+        sends_ok += r.returncode == 0
+        if r.returncode != 0:
+            print("storescu:", r.stderr[-300:], file=sys.stderr)
+        if name == "T1" and f == t1[-1]:
+            t1_done_at = time.time()
+        time.sleep(0.15)
+    last_sent_at = time.time()
+    check(sends_ok == len(order), "storescu sent every image, one association each (%d of %d)"
+          % (sends_ok, len(order)))
     wait_for(lambda: stored_series(db) == 2, 120, "both series stored")
     wait_for(lambda: not [p for p in files_under(inbox) if os.path.isfile(p)], 30,
              "storescp's files all taken")
@@ -71,5 +93,47 @@ sent = {str(pydicom.dcmread(p, stop_before_pixels=True).SOPInstanceUID) for p in
 check(sops == sent, "every sent SOP instance arrived and was stored")
 check(len(sum(tree_hashes(os.path.join(base, "archive")).values(), [])) == 33,
       "33 files in the archive")
+# Each series measured once, as soon as it was complete: the T1 series (its last image sent
+# while eleven T2 images were still to come) stored before the last T2 image was sent, and by its
+# completeness, not the quiet period (600 s here).
+import datetime  # noqa: E402
+
+
+def epoch(iso):
+    return datetime.datetime.fromisoformat(iso.replace("Z", "+00:00")).timestamp()
+
+
+t1_uid = str(pydicom.dcmread(t1[0], stop_before_pixels=True).SeriesInstanceUID)
+fin = query(db, "SELECT r.finished_at FROM runs r JOIN series s ON s.id = r.series_id "
+                "WHERE s.series_instance_uid = ?", (t1_uid,))
+check(len(fin) == 1, "the T1 series has exactly one run: %s" % fin)
+if fin and t1_done_at:
+    check(epoch(fin[0][0]) < last_sent_at,
+          "the T1 series was stored before the T2 series finished arriving (%.1f s after its "
+          "last image, %.1f s before the T2's last)"
+          % (epoch(fin[0][0]) - t1_done_at, last_sent_at - epoch(fin[0][0])))
+# The same results as `analyze` on the files as they were sent.
+res = subprocess.run([SW, "analyze", "--json", os.path.join(base, "src", "t1"),
+                      os.path.join(base, "src", "t2")], capture_output=True, text=True)
+ref = {}
+for e in json.loads(res.stdout)["series"]:
+    key = (e["series_instance_uid"], e["echo_number"])
+    ref[key + ("slice_thickness", e["slice_thickness"]["slice"])] = \
+        e["slice_thickness"]["corrected_mm"]
+    for p in e["slice_position"]:
+        ref[key + ("bar_length_difference", p["slice"])] = p["bar_difference_mm"]
+got = {}
+for uid, echo, metric, sl, value in query(
+        db, "SELECT s.series_instance_uid, m.echo, m.metric, m.slice, m.value FROM measurements m "
+            "JOIN runs r ON r.id = m.run_id JOIN series s ON s.id = r.series_id WHERE m.metric IN "
+            "('slice_thickness', 'bar_length_difference')"):
+    got[(uid, echo, metric, sl)] = value
+check(len(ref) == 9 and set(got) == set(ref),
+      "the stored results cover what analyze reports (%d keys: T1 and two T2 echoes, each a "
+      "thickness and two bar differences)" % len(ref))
+same = [k for k in ref if k in got and ref[k] is not None and got[k] is not None and
+        abs(ref[k] - got[k]) < 1e-4]
+check(len(same) == len(ref), "every stored value equals analyze's on the sent files "
+      "(%d of %d)" % (len(same), len(ref)))
 cleanup(base)
 finish()
