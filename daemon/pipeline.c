@@ -150,101 +150,123 @@ static json_t *reason_or_null(const char *r)
     return r && r[0] ? json_string(r) : json_null();
 }
 
+/* jansson reports a failed allocation only by a return value (or a NULL value): a document with a
+ * key missing would be printed as if whole. Every set and append of the JSON output goes through
+ * these, and wd_measured_json fails when one failed. */
+static _Thread_local int json_failed;
+
+static void set_new(json_t *o, const char *key, json_t *v)
+{
+    if (!v || json_object_set_new(o, key, v) != 0)
+        json_failed = 1;
+}
+
+static void append_new(json_t *a, json_t *v)
+{
+    if (!v || json_array_append_new(a, v) != 0)
+        json_failed = 1;
+}
+
 static json_t *thickness_json(const an_thickness *t)
 {
     json_t *o = json_object();
-    json_object_set_new(o, "slice", t->slice > 0 ? json_integer(t->slice) : json_null());
-    json_object_set_new(o, "top_mm", num(t->top.length_mm));
-    json_object_set_new(o, "bottom_mm", num(t->bottom.length_mm));
-    json_object_set_new(o, "top_uncertainty_mm", num(t->top.length_unc_mm));
-    json_object_set_new(o, "bottom_uncertainty_mm", num(t->bottom.length_unc_mm));
-    json_object_set_new(o, "top_thickness_mm", num(t->top_thickness_mm));
-    json_object_set_new(o, "bottom_thickness_mm", num(t->bottom_thickness_mm));
-    json_object_set_new(o, "acr_mm", num(t->acr_mm));
-    json_object_set_new(o, "corrected_mm", num(t->corrected_mm));
-    json_object_set_new(o, "tilt_deg", num(t->tilt_deg));
-    json_object_set_new(o, "tilt_uncertainty_deg", num(t->tilt_unc_deg));
-    json_object_set_new(o, "fwtm_mm", num(t->fwtm_mm));
-    json_object_set_new(o, "uncertainty_mm", num(t->uncertainty_mm));
-    json_object_set_new(o, "nominal_mm", num(t->nominal_mm));
-    json_object_set_new(o, "limit_low_mm", num(t->limit_lo_mm));
-    json_object_set_new(o, "limit_high_mm", num(t->limit_hi_mm));
-    json_object_set_new(o, "verdict", json_string(an_verdict_name(t->verdict)));
-    json_object_set_new(o, "reason", reason_or_null(t->reason));
+    set_new(o, "slice", t->slice > 0 ? json_integer(t->slice) : json_null());
+    set_new(o, "top_mm", num(t->top.length_mm));
+    set_new(o, "bottom_mm", num(t->bottom.length_mm));
+    set_new(o, "top_uncertainty_mm", num(t->top.length_unc_mm));
+    set_new(o, "bottom_uncertainty_mm", num(t->bottom.length_unc_mm));
+    set_new(o, "top_thickness_mm", num(t->top_thickness_mm));
+    set_new(o, "bottom_thickness_mm", num(t->bottom_thickness_mm));
+    set_new(o, "acr_mm", num(t->acr_mm));
+    set_new(o, "corrected_mm", num(t->corrected_mm));
+    set_new(o, "tilt_deg", num(t->tilt_deg));
+    set_new(o, "tilt_uncertainty_deg", num(t->tilt_unc_deg));
+    set_new(o, "fwtm_mm", num(t->fwtm_mm));
+    set_new(o, "uncertainty_mm", num(t->uncertainty_mm));
+    set_new(o, "nominal_mm", num(t->nominal_mm));
+    set_new(o, "limit_low_mm", num(t->limit_lo_mm));
+    set_new(o, "limit_high_mm", num(t->limit_hi_mm));
+    set_new(o, "verdict", json_string(an_verdict_name(t->verdict)));
+    set_new(o, "reason", reason_or_null(t->reason));
     return o;
 }
 
 static json_t *position_json(const an_position *p)
 {
     json_t *o = json_object();
-    json_object_set_new(o, "slice", p->slice > 0 ? json_integer(p->slice) : json_null());
-    json_object_set_new(o, "bar_difference_mm", num(p->bar_difference_mm));
-    json_object_set_new(o, "left_bar_mm", num(p->left.length_mm));
-    json_object_set_new(o, "right_bar_mm", num(p->right.length_mm));
-    json_object_set_new(o, "displacement_mm", num(p->displacement_mm));
-    json_object_set_new(o, "ramp_displacement_mm", num(p->ramp_displacement_mm));
-    json_object_set_new(o, "ramp_displacement_uncertainty_mm", num(p->ramp_displacement_unc_mm));
-    json_object_set_new(o, "uncertainty_mm", num(p->uncertainty_mm));
-    json_object_set_new(o, "z_mm", num(p->z_mm));
-    json_object_set_new(o, "limit_mm", num(p->limit_mm));
-    json_object_set_new(o, "verdict", json_string(an_verdict_name(p->verdict)));
-    json_object_set_new(o, "reason", reason_or_null(p->reason));
+    set_new(o, "slice", p->slice > 0 ? json_integer(p->slice) : json_null());
+    set_new(o, "bar_difference_mm", num(p->bar_difference_mm));
+    set_new(o, "left_bar_mm", num(p->left.length_mm));
+    set_new(o, "right_bar_mm", num(p->right.length_mm));
+    set_new(o, "displacement_mm", num(p->displacement_mm));
+    set_new(o, "ramp_displacement_mm", num(p->ramp_displacement_mm));
+    set_new(o, "ramp_displacement_uncertainty_mm", num(p->ramp_displacement_unc_mm));
+    set_new(o, "uncertainty_mm", num(p->uncertainty_mm));
+    set_new(o, "z_mm", num(p->z_mm));
+    set_new(o, "limit_mm", num(p->limit_mm));
+    set_new(o, "verdict", json_string(an_verdict_name(p->verdict)));
+    set_new(o, "reason", reason_or_null(p->reason));
     return o;
 }
 
 sw_status wd_measured_json(const wd_measured *m, json_t *array)
 {
     const dcm_image *d = m->first;
+    json_failed = 0;
     for (int i = 0; i < m->n_echoes; i++) {
         const wd_echo *e = &m->echo[i];
         const an_series_result *r = e->res;
         json_t *o = json_object();
         if (!o)
             return SW_ENOMEM;
-        json_object_set_new(o, "series_instance_uid", json_string(d->series_instance_uid));
-        json_object_set_new(o, "station_name", json_string(d->station_name));
-        json_object_set_new(o, "series_description", json_string(d->series_description));
-        json_object_set_new(o, "protocol_name", json_string(d->protocol_name));
-        json_object_set_new(o, "device_serial_number", json_string(d->device_serial));
-        json_object_set_new(o, "acquisition_date", json_string(d->acquisition_date[0]
+        set_new(o, "series_instance_uid", json_string(d->series_instance_uid));
+        set_new(o, "station_name", json_string(d->station_name));
+        set_new(o, "series_description", json_string(d->series_description));
+        set_new(o, "protocol_name", json_string(d->protocol_name));
+        set_new(o, "device_serial_number", json_string(d->device_serial));
+        set_new(o, "acquisition_date", json_string(d->acquisition_date[0]
                                                                     ? d->acquisition_date
                                                                     : d->series_date));
-        json_object_set_new(o, "echo_number", json_integer(e->echo_number));
-        json_object_set_new(o, "echo_time_ms", num(e->echo_time_ms));
-        json_object_set_new(o, "images", json_integer(e->n));
-        json_object_set_new(o, "snr", num(r->snr));
-        json_object_set_new(o, "noise_sd", num(r->noise_sd));
-        json_object_set_new(o, "rotation_deg", num(r->rotation_deg));
-        json_object_set_new(o, "slice_thickness", thickness_json(&r->thickness));
-        json_object_set_new(o, "thickness_kind", json_string(m->partition ? "partition" : "slice"));
+        set_new(o, "echo_number", json_integer(e->echo_number));
+        set_new(o, "echo_time_ms", num(e->echo_time_ms));
+        set_new(o, "images", json_integer(e->n));
+        set_new(o, "snr", num(r->snr));
+        set_new(o, "noise_sd", num(r->noise_sd));
+        set_new(o, "rotation_deg", num(r->rotation_deg));
+        set_new(o, "slice_thickness", thickness_json(&r->thickness));
+        set_new(o, "thickness_kind", json_string(m->partition ? "partition" : "slice"));
         json_t *pos = json_array();
         for (int k = 0; k < 2; k++)
             if (r->position[k].slice > 0 || r->position[k].measured)
-                json_array_append_new(pos, position_json(&r->position[k]));
-        json_object_set_new(o, "slice_position", pos);
+                append_new(pos, position_json(&r->position[k]));
+        set_new(o, "slice_position", pos);
         json_t *pm = json_object();
         const an_position_model *model = &r->position_model;
-        json_object_set_new(pm, "offset_mm", num(model->measured ? model->offset_mm : NAN));
-        json_object_set_new(pm, "scale_percent", num(model->measured ? model->scale_percent : NAN));
-        json_object_set_new(pm, "offset_uncertainty_mm",
+        set_new(pm, "offset_mm", num(model->measured ? model->offset_mm : NAN));
+        set_new(pm, "scale_percent", num(model->measured ? model->scale_percent : NAN));
+        set_new(pm, "offset_uncertainty_mm",
                             num(model->measured ? model->offset_unc_mm : NAN));
-        json_object_set_new(pm, "scale_uncertainty_percent",
+        set_new(pm, "scale_uncertainty_percent",
                             num(model->measured ? model->scale_unc_percent : NAN));
-        json_object_set_new(o, "position_model", pm);
-        json_object_set_new(o, "pitch_deg", num(r->pitch_measured ? r->pitch_deg : NAN));
-        json_object_set_new(o, "pitch_uncertainty_deg",
+        set_new(o, "position_model", pm);
+        set_new(o, "pitch_deg", num(r->pitch_measured ? r->pitch_deg : NAN));
+        set_new(o, "pitch_uncertainty_deg",
                             num(r->pitch_measured ? r->pitch_unc_deg : NAN));
-        json_object_set_new(o, "verdict", json_string(an_verdict_name(r->verdict)));
-        json_object_set_new(o, "reason", reason_or_null(r->reason));
+        set_new(o, "verdict", json_string(an_verdict_name(r->verdict)));
+        set_new(o, "reason", reason_or_null(r->reason));
         json_t *hints = json_array();
         for (int h = 0; h < e->n_hints; h++) {
             json_t *ho = json_object();
-            json_object_set_new(ho, "code", json_string(wd_hint_name(e->hint[h].code)));
-            json_object_set_new(ho, "brief", json_string(e->hint[h].brief));
-            json_object_set_new(ho, "text", json_string(e->hint[h].text));
-            json_array_append_new(hints, ho);
+            set_new(ho, "code", json_string(wd_hint_name(e->hint[h].code)));
+            set_new(ho, "brief", json_string(e->hint[h].brief));
+            set_new(ho, "text", json_string(e->hint[h].text));
+            append_new(hints, ho);
         }
-        json_object_set_new(o, "hints", hints);
+        set_new(o, "hints", hints);
+        if (json_failed) {
+            json_decref(o);
+            return SW_ENOMEM;
+        }
         if (json_array_append_new(array, o))
             return SW_ENOMEM;
     }
