@@ -116,10 +116,15 @@ static int measure_series(entry *e, int ne, int k, const wd_method *method, json
         rc = 2;
         goto out;
     }
-    if (out_json)
-        wd_measured_json(&m, json_object_get(out_json, "series"));
-    else
+    if (out_json) {
+        if (wd_measured_json(&m, json_object_get(out_json, "series")) != SW_OK) {
+            fprintf(stderr, "slicewarden: %s: out of memory while writing the results of series %s\n",
+                    e[first].path, m.first->series_instance_uid);
+            rc = 2;
+        }
+    } else {
         wd_measured_text(&m, stdout);
+    }
     report_unmeasurable(&m, e[first].path);
     if (png_dir) {
         sw_error_clear(&err);
@@ -276,9 +281,21 @@ int wd_cmd_analyze(int argc, char **argv)
         if (r > rc)
             rc = r;
     }
-    if (doc) {
-        json_dumpf(doc, stdout, JSON_INDENT(2) | JSON_REAL_PRECISION(6));
-        fputc('\n', stdout);
+    if (json) {
+        /* Dumped whole into memory first: a failed dump never prints half a document. */
+        char *text = json_dumps(doc, JSON_INDENT(2) | JSON_REAL_PRECISION(6));
+        if (!text || json_object_size(doc) != 2) {
+            fprintf(stderr, "slicewarden: out of memory while writing the results\n");
+            rc = 2;
+        } else {
+            fputs(text, stdout);
+            fputc('\n', stdout);
+        }
+        free(text);
+    }
+    if (fflush(stdout) != 0 || ferror(stdout)) {
+        fprintf(stderr, "slicewarden: cannot write the results: %s\n", strerror(errno));
+        rc = 2;
     }
     if (rc == 0 && ns == 0) {
         fprintf(stderr, "slicewarden: no MR series found\n");
