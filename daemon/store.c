@@ -307,9 +307,18 @@ static void write_pngs(const wd_series_ctx *ctx, const wd_measured *m, int64_t r
 {
     char scanner[96], series[160], dir[PATH_MAX];
     const dcm_image *d = m->first;
-    wd_safe_component(ctx->station, "unknown-scanner", scanner, sizeof scanner);
-    wd_series_dir_name(d->series_date, d->series_number, d->series_instance_uid, series,
-                       sizeof series);
+    /* The same folder names as the archive's (watch.c): StationName, else serial-SERIAL, and
+     * the series date, else the acquisition date. */
+    if (ctx->station && *ctx->station) {
+        wd_safe_component(ctx->station, "unknown-scanner", scanner, sizeof scanner);
+    } else {
+        char raw[DCM_STR_MAX + 8];
+        snprintf(raw, sizeof raw, "serial-%s", d->device_serial);
+        wd_safe_component(d->device_serial[0] ? raw : NULL, "unknown-scanner", scanner,
+                          sizeof scanner);
+    }
+    wd_series_dir_name(d->series_date[0] ? d->series_date : d->acquisition_date, d->series_number,
+                       d->series_instance_uid, series, sizeof series);
     if (snprintf(dir, sizeof dir, "%s/%s/%s", ctx->images_dir, scanner, series) >= (int)sizeof dir)
         return;
     sw_error err;
