@@ -6,7 +6,10 @@ calling user, who is unprivileged already. Checked: an unreadable file is quaran
 reason (and moved, since its folder is writable); an archive folder the service may not write
 leaves the files where they are (status 1, nothing lost), and a later run moves them once the
 folder is fixed; a database the service may not write is refused with a message naming it, and no
-file is touched."""
+file is touched. Also: a read-only watch folder (files read and measured, none moved or lost, status
+1 with the path; moved once writable), a quarantine folder the service may not write (the file
+stays, its state and reason recorded, the message names the folder), and a database whose folder
+the service may not write (no lock, no -wal: refused with the path, nothing touched)."""
 import os
 import pwd
 import shutil
@@ -109,6 +112,94 @@ r = run_once(inbox2, ro_db, prefix=prefix)
 check(r.returncode != 0, "a read-only database is refused (status %d)" % r.returncode)
 check(ro_db in r.stderr or "qa.sqlite" in r.stderr, "the message names it: %s" % r.stderr[-200:])
 check(sorted(files_under(inbox2)) == before, "no file was touched")
+
+
+# ---- 4. a read-only watch folder: read and measured, nothing moved, nothing lost ----
+inbox4 = os.path.join(base, "incoming4")
+os.makedirs(inbox4)
+files4, _ = simulate(os.path.join(base, "src4", "s"), seed=54, station="ALDMR2")
+for p in files4:
+    shutil.copyfile(p, os.path.join(inbox4, os.path.basename(p)))
+os.chmod(inbox4, 0o755)  # the test's user owns it (root in CI): the service may read, not write
+state4 = owned(os.path.join(base, "state4"))
+outs4 = {k: owned(os.path.join(base, "%s4" % k)) for k in ("archive", "quarantine", "ignored",
+                                                          "images")}
+cfg4 = os.path.join(state4, "sw.conf")
+with open(cfg4, "w") as f:
+    f.write("[watch]\n" + "".join("%s = %s\n" % kv for kv in outs4.items()))
+os.chmod(cfg4, 0o644)
+db4 = os.path.join(state4, "qa.sqlite")
+before4 = {sha256(p) for p in files_under(inbox4)}
+r = run_once(inbox4, db4, "-c", cfg4, prefix=prefix)
+check(r.returncode == 1, "a read-only watch folder: status 1 (%d): %s" % (r.returncode,
+                                                                        r.stderr[-300:]))
+check(inbox4 in r.stderr and "Permission denied" in r.stderr,
+      "the failure names the watch folder's file and the reason: %s" % r.stderr[-300:])
+check({sha256(p) for p in files_under(inbox4)} == before4, "every file is still there, unchanged")
+check(query(db4, "SELECT count(*) FROM series WHERE state = 'stored'")[0][0] == 1,
+      "the series is measured and stored even so")
+os.chown(inbox4, uid, gid)
+r = run_once(inbox4, db4, "-c", cfg4, prefix=prefix)
+check(r.returncode == 0 and not files_under(inbox4),
+      "once writable, a second run moves the files (%d): %s" % (r.returncode, r.stderr[-300:]))
+check({sha256(p) for p in files_under(outs4["archive"])} == before4,
+      "every file arrived in the archive once")
+check(query(db4, "SELECT count(*) FROM runs")[0][0] == 1, "and the series was measured once")
+
+# ---- 5. a quarantine folder the service may not write ----
+inbox5 = owned(os.path.join(base, "incoming5"))
+junk = os.path.join(inbox5, "notes.txt")
+with open(junk, "w") as f:
+    f.write("not DICOM\n")
+os.chown(junk, uid, gid)
+state5 = owned(os.path.join(base, "state5"))
+q5 = os.path.join(base, "quarantine5")
+os.makedirs(q5)
+os.chmod(q5, 0o755)  # not the service's
+cfg5 = os.path.join(state5, "sw.conf")
+with open(cfg5, "w") as f:
+    f.write("[watch]\nquarantine = %s\narchive = %s\nignored = %s\nimages = %s\n" %
+            (q5, owned(os.path.join(base, "archive5")), owned(os.path.join(base, "ignored5")),
+             owned(os.path.join(base, "images5"))))
+os.chmod(cfg5, 0o644)
+db5 = os.path.join(state5, "qa.sqlite")
+r = run_once(inbox5, db5, "-c", cfg5, prefix=prefix)
+check(r.returncode == 1, "an unwritable quarantine: status 1 (%d)" % r.returncode)
+check(q5 in r.stderr and "Permission denied" in r.stderr,
+      "the message names the quarantine folder and the reason: %s" % r.stderr[-300:])
+check(os.path.exists(junk), "the file stays in the watch folder")
+row = query(db5, "SELECT state, reason FROM files WHERE path = ?", (junk,))
+check(row and row[0][0] == "quarantined" and "not a DICOM file" in row[0][1],
+      "its state and reason are recorded: %s" % row)
+
+# ---- 6. a database in a folder the service may not write ----
+ro6 = os.path.join(base, "ro-state6")
+os.makedirs(ro6)
+db6 = os.path.join(ro6, "qa.sqlite")
+shutil.copyfile(db4, db6)
+os.chown(db6, uid, gid)  # the file is the service's; its folder is not (no -wal, no .lock)
+os.chmod(ro6, 0o755)
+inbox6 = owned(os.path.join(base, "incoming6"))
+for p in files[:3]:
+    dst = os.path.join(inbox6, os.path.basename(p))
+    shutil.copyfile(p, dst)
+    os.chown(dst, uid, gid)
+before6 = sorted(files_under(inbox6))
+r = run_once(inbox6, db6, prefix=prefix)
+check(r.returncode in (1, 2), "a database in a read-only folder is refused (%d)" % r.returncode)
+check(ro6 in r.stderr and ("Permission denied" in r.stderr or "unable to open" in r.stderr
+                           or "readonly" in r.stderr),
+      "the message names the database's path and the reason: %s" % r.stderr[-300:])
+check(sorted(files_under(inbox6)) == before6, "no file was touched")
+lock6 = db6 + ".lock"
+with open(lock6, "w"):
+    pass
+os.chown(lock6, uid, gid)  # the lock can be taken; SQLite still cannot make its -wal and -shm
+r = run_once(inbox6, db6, prefix=prefix)
+check(r.returncode in (1, 2) and ro6 in r.stderr,
+      "with its lock file there, still refused with the path (%d): %s" %
+      (r.returncode, r.stderr[-300:]))
+check(sorted(files_under(inbox6)) == before6, "and no file was touched")
 
 cleanup(base)
 finish()
