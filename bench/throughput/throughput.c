@@ -395,11 +395,16 @@ static meas watch_once(const char *name, const char *src, int png, int expect_se
 typedef struct stat_acc {
     int n;
     double sum, sum2, maxabs;
-    int over; /* beyond the per-series limit */
+    int over;     /* beyond the per-series limit */
+    int one_only; /* measured by one of the two programs only */
 } stat_acc;
 
 static void acc_add(stat_acc *a, double d, double limit)
 {
+    if (isnan(d)) {
+        a->one_only++;
+        return;
+    }
     a->n++;
     a->sum += d;
     a->sum2 += d * d;
@@ -420,6 +425,11 @@ static double acc_sd(const stat_acc *a)
         return NAN;
     double m = acc_mean(a);
     return sqrt(fmax(0, (a->sum2 - a->n * m * m) / (a->n - 1)));
+}
+
+static const char *str_or(const char *s, const char *dflt)
+{
+    return s ? s : dflt;
 }
 
 static double jnum(json_t *o, const char *k)
@@ -466,8 +476,11 @@ static int agreement(const char *ours_path, const char *ref_path, int expect)
             matched++;
             json_t *t = json_object_get(s, "slice_thickness");
             double u = jnum(t, "uncertainty_mm");
-            acc_add(&th, jnum(r, "corrected_mm") - jnum(t, "corrected_mm"),
-                    AGREE_FIXED_MM + AGREE_K * sqrt(2.0) * u);
+            double d = jnum(r, "corrected_mm") - jnum(t, "corrected_mm");
+            if (isnan(d))
+                printf("  measured by one only: series %s echo %d thickness (ours: %s)\n", uid, echo,
+                       str_or(json_string_value(json_object_get(t, "reason")), "measured"));
+            acc_add(&th, d, AGREE_FIXED_MM + AGREE_K * sqrt(2.0) * u);
             size_t k;
             json_t *p;
             json_array_foreach(json_object_get(s, "slice_position"), k, p)
@@ -475,8 +488,14 @@ static int agreement(const char *ours_path, const char *ref_path, int expect)
                 int sl = (int)json_integer_value(json_object_get(p, "slice"));
                 json_t *rp = json_object_get(r, sl == 1 ? "slice1" : "slice11");
                 double ub = jnum(p, "uncertainty_mm");
-                acc_add(&bld, jnum(rp, "bar_difference_mm") - jnum(p, "bar_difference_mm"),
-                        AGREE_FIXED_MM + AGREE_K * sqrt(2.0) * ub);
+                double d = jnum(rp, "bar_difference_mm") - jnum(p, "bar_difference_mm");
+                if (isnan(d))
+                    printf("  measured by one only: series %s echo %d slice %d bar length "
+                           "difference (ours: %s; reference: %.3f mm)\n",
+                           uid, echo, sl,
+                           str_or(json_string_value(json_object_get(p, "reason")), "measured"),
+                           jnum(rp, "bar_difference_mm"));
+                acc_add(&bld, d, AGREE_FIXED_MM + AGREE_K * sqrt(2.0) * ub);
             }
         }
         json_decref(r);
@@ -489,11 +508,16 @@ static int agreement(const char *ours_path, const char *ref_path, int expect)
     printf("  per-series limit: %.2f mm + %.0f x sqrt(2) x our reported uncertainty; mean within "
            "%.2f mm\n",
            AGREE_FIXED_MM, AGREE_K, AGREE_MEAN_MM);
-    printf("  %-26s n %4d  mean %+.4f mm  SD %.4f mm  max |d| %.3f mm  beyond limit %d\n",
-           "thickness (corrected)", th.n, acc_mean(&th), acc_sd(&th), th.maxabs, th.over);
-    printf("  %-26s n %4d  mean %+.4f mm  SD %.4f mm  max |d| %.3f mm  beyond limit %d\n",
-           "bar length difference", bld.n, acc_mean(&bld), acc_sd(&bld), bld.maxabs, bld.over);
-    int ok = matched == expect && th.over == 0 && bld.over == 0 &&
+    printf("  %-24s n %4d  mean %+.4f mm  SD %.4f mm  max |d| %.3f mm  beyond limit %d  "
+           "measured by one only %d\n",
+           "thickness (corrected)", th.n, acc_mean(&th), acc_sd(&th), th.maxabs, th.over,
+           th.one_only);
+    printf("  %-24s n %4d  mean %+.4f mm  SD %.4f mm  max |d| %.3f mm  beyond limit %d  "
+           "measured by one only %d\n",
+           "bar length difference", bld.n, acc_mean(&bld), acc_sd(&bld), bld.maxabs, bld.over,
+           bld.one_only);
+    int ok = matched == expect && th.over == 0 && bld.over == 0 && th.one_only == 0 &&
+             bld.one_only == 0 &&
              fabs(acc_mean(&th)) <= AGREE_MEAN_MM && fabs(acc_mean(&bld)) <= AGREE_MEAN_MM;
     printf("  agreement: %s\n", ok ? "within the limits" : "NOT within the limits");
     return ok;
@@ -794,6 +818,16 @@ int main(int argc, char **argv)
            w_plain.wall / dump_plain.wall, w_plain_np.wall / dump_plain.wall);
     printf("  ours / dcmdump, JPEG-LS:     watch %.2f (with PNGs), %.2f (--no-png)\n",
            w_jls.wall / dump_jls.wall, w_jls_np.wall / dump_jls.wall);
+#define CPU(m) ((m).user + (m).sys)
+    printf("ratios (CPU time, user + system: what the machine's other load inflates less)\n");
+    printf("  ours / I/O floor, plain:     watch %.1f (with PNGs), %.1f (--no-png)\n",
+           CPU(w_plain) / CPU(cat_plain), CPU(w_plain_np) / CPU(cat_plain));
+    printf("  ours / dcmdump, plain:       watch %.2f (with PNGs), %.2f (--no-png)\n",
+           CPU(w_plain) / CPU(dump_plain), CPU(w_plain_np) / CPU(dump_plain));
+    printf("  ours / dcmdump, JPEG-LS:     watch %.2f (with PNGs), %.2f (--no-png)\n",
+           CPU(w_jls) / CPU(dump_jls), CPU(w_jls_np) / CPU(dump_jls));
+    printf("  python / ours, one series as a whole process: %.1f\n", CPU(py1) / CPU(an1));
+    printf("ratios, both\n");
     printf("  python / ours, one series as a whole process: %.1f (%.3f s / %.3f s)\n",
            py1.wall / an1.wall, py1.wall, an1.wall);
     printf("  python / ours, steady state per series:       %.1f (%.1f ms / %.1f ms; CPU %.1f / %.1f ms)\n",
@@ -810,14 +844,17 @@ int main(int argc, char **argv)
     double rate_cpu = nimages / (w_plain.user + w_plain.sys);
     printf("\ngoals (issue 6)\n");
     goal("watch --once within 2x of dcmdump, plain", w_plain.wall <= 2 * dump_plain.wall,
-         "%.2f x (%.2f s against %.2f s; --no-png %.2f x)", w_plain.wall / dump_plain.wall,
-         w_plain.wall, dump_plain.wall, w_plain_np.wall / dump_plain.wall);
+         "%.2f x (%.2f s against %.2f s; --no-png %.2f x; by CPU time %.2f x, --no-png %.2f x)",
+         w_plain.wall / dump_plain.wall, w_plain.wall, dump_plain.wall,
+         w_plain_np.wall / dump_plain.wall, CPU(w_plain) / CPU(dump_plain),
+         CPU(w_plain_np) / CPU(dump_plain));
     goal("watch --once within 2x of dcmdump, JPEG-LS", w_jls.wall <= 2 * dump_jls.wall,
          "%.2f x (%.2f s against %.2f s; dcmdump does not decode the pixels)",
          w_jls.wall / dump_jls.wall, w_jls.wall, dump_jls.wall);
     goal("at least 2,000 images/s on one core, plain", rate_cpu >= 2000,
-         "%.0f images/s per CPU second (%.0f by the wall clock; watch is one thread)", rate_cpu,
-         nimages / w_plain.wall);
+         "%.0f images/s per CPU second (%.0f by the wall clock; watch is one thread; --no-png "
+         "%.0f per CPU second)",
+         rate_cpu, nimages / w_plain.wall, nimages / CPU(w_plain_np));
     goal("analysis no more than reading and decoding, per series",
          an_t1 <= rd_t1 && an_t2 <= rd_t2,
          "T1 %.2f <= %.2f ms, T2 %.2f <= %.2f ms (plain; JPEG-LS %.2f <= %.2f ms)", an_t1, rd_t1,
