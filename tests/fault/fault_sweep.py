@@ -15,7 +15,7 @@ store's own step hook for KIND sqlite), and checks after every run what docs/fau
 KIND: malloc, write, fsync, rename, open (the shim), sqlite (SLICEWARDEN_TEST_DB_FAULT_AT), or
 analyze (malloc, write and open faults in `slicewarden analyze --json --png`).
 N runs over every call of that kind that the run makes (counted by a run without faults) when
-there are at most SW_FAULT_MAX_RUNS of them (default 40); otherwise over SW_FAULT_MAX_RUNS values
+there are at most SW_FAULT_MAX_RUNS of them (default 25; 10 under ASan); otherwise over SW_FAULT_MAX_RUNS values
 in equal strata of 1..count, one drawn in each (seeded: SW_FAULT_SEED, default 1), plus the first
 and the last call. SW_FAULT_FULL=1 sweeps every call. Exit status 77: cannot run here."""
 import hashlib
@@ -34,8 +34,8 @@ SHIM = os.environ.get("SW_FAULTSHIM", "")
 ASAN = os.environ.get("SW_FAULT_ASAN", "")  # libasan's path when the program is built with ASan
 KIND = sys.argv[1] if len(sys.argv) > 1 else "write"
 # Under ASan each run costs about three times as much: fewer samples there.
-MAX_RUNS = int(os.environ.get("SW_FAULT_MAX_RUNS", "12" if os.environ.get("SW_FAULT_ASAN") else
-                              "40"))
+MAX_RUNS = int(os.environ.get("SW_FAULT_MAX_RUNS", "10" if os.environ.get("SW_FAULT_ASAN") else
+                              "25"))
 FULL = os.environ.get("SW_FAULT_FULL") == "1"
 SEED = int(os.environ.get("SW_FAULT_SEED", "1"))
 VERBOSE = os.environ.get("SW_FAULT_VERBOSE") == "1"
