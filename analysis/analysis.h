@@ -58,9 +58,10 @@ typedef struct an_model {
 } an_model;
 
 /* Fills m with the large phantom's model: config/large-phantom.model, compiled in as text and read
- * by an_model_parse_complete (docs/models.md). Never fails on a sound build; were the built-in
- * text broken, m would be a model that an_model_check refuses. */
-void an_model_large(an_model *m);
+ * by an_model_parse_complete (docs/models.md). Returns SW_OK; SW_ENOMEM when inih's line buffer
+ * could not be had (or SW_EINVAL on a broken build): m is then a model that an_model_check refuses,
+ * its name saying why, so a caller that ignores the status still measures nothing against it. */
+sw_status an_model_large(an_model *m);
 /* The text of config/large-phantom.model as it was at build time (NUL-terminated). */
 extern const char an_model_large_text[];
 /* Reads a model file's text (INI, docs/models.md) over *m: keys the text leaves out keep m's
