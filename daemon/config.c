@@ -454,7 +454,11 @@ sw_status wd_model_load(an_model *m, const char *path, sw_error *err)
     text[n] = '\0';
     /* over the built-in large phantom: keys the file leaves out keep its values */
     an_model tmp;
-    an_model_large(&tmp);
+    if ((st = an_model_large(&tmp)) != SW_OK) {
+        st = sw_error_set(err, st, "%s: the built-in model could not be read (%s)", path,
+                          tmp.name);
+        goto out;
+    }
     st = an_model_parse(&tmp, text, path, err);
     if (st == SW_OK)
         *m = tmp;
