@@ -18,8 +18,9 @@
                  simulates the phantom of model file MODEL (a single-ramp model) with
                  `BIN simulate --model`, reads the files with pydicom, measures the ramp strip's FWHM
                  on slice 1 with numpy alone (NEMA MS 5 single ramp: T = FWHM x tan(theta)), and
-                 checks it and `BIN analyze --model` against truth.json; a bad model file is refused
-                 by both commands naming the line.
+                 checks it and `BIN analyze --model` against truth.json; `BIN watch --once` with
+                 [phantom] model_file measures the series once, complete at the model's slice count,
+                 as analyze does; a bad model file is refused by simulate and analyze naming the line.
 Exit status 0 when every check holds; the first failure is printed."""
 import glob
 import json
@@ -359,6 +360,30 @@ def check_model(binary, root, model):
         if abs(q["bar_difference_mm"] - w["bar_difference_mm"]) > 0.2:
             fail("slice %d bar difference %.3f, truth %.3f" % (q["slice"], q["bar_difference_mm"],
                                                               w["bar_difference_mm"]))
+    # the watch service with [phantom] model_file: the series is complete at the model's slice
+    # count and measured with the same numbers as analyze
+    w = os.path.join(root, "watch")
+    inc = os.path.join(w, "incoming")
+    shutil.copytree(d, os.path.join(inc, "s"), ignore=shutil.ignore_patterns("truth.json"))
+    conf = os.path.join(w, "sw.conf")
+    with open(conf, "w") as fh:
+        fh.write("[watch]\nfolder = %s\ndatabase = %s\n[phantom]\nmodel_file = %s\n"
+                 % (inc, os.path.join(w, "qa.sqlite"), model))
+    p = subprocess.run([binary, "watch", "-c", conf, "--once", "--no-png", "--no-progress"],
+                       capture_output=True, text=True, timeout=120)
+    if p.returncode != 0:
+        fail("watch with model_file: status %d: %s" % (p.returncode, p.stderr[-2000:]))
+    import sqlite3
+    con = sqlite3.connect("file:%s?mode=ro" % os.path.join(w, "qa.sqlite"), uri=True)
+    got = con.execute("SELECT phantom_model FROM runs").fetchall()
+    if got != [(m.get("phantom", "name"),)]:
+        fail("watch runs %s, one run with model %s expected" % (got, m.get("phantom", "name")))
+    if ("complete, %d images" % n_slices) not in p.stderr:
+        fail("watch did not see a complete %d-image series:\n%s" % (n_slices, p.stderr[-2000:]))
+    if ("thickness %.2f" % th["corrected_mm"]) not in p.stderr:
+        fail("watch and analyze differ (analyze %.2f mm):\n%s" % (th["corrected_mm"],
+                                                                  p.stderr[-2000:]))
+    con.close()
     # a bad model file: both commands refuse it, naming the file and the line
     bad = os.path.join(root, "bad.model")
     with open(bad, "w") as fh:
