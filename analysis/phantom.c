@@ -296,6 +296,13 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
     double xc = an_lattice_t(w, f, 0) + (sx / cnt - kx) * f,
            yc = an_lattice_t(h, f, 0) + (sy / cnt - ky) * f;
     double R = sqrt(cnt * f * f * col * row / M_PI);
+    /* An absurd PixelSpacing (1e300 mm from a damaged file) makes R infinite or huge, and the ray
+     * sampling below would convert it to int (undefined); no phantom is a kilometre wide. */
+    if (!(R > 0 && R < 1e6)) {
+        sw_strlcpy(d->reason, "phantom not found: pixel spacing gives no plausible size",
+                   sizeof d->reason);
+        return 0;
+    }
     /* Fluid level: median of the blocks inside 0.6 R. */
     {
         float *buf = (float *)wk->stack; /* free now: cn ints hold cn floats */

@@ -111,7 +111,12 @@ static int bar_end(const an_image *im, const an_pose *pose, double u, double hw,
                    double reach, double sigma, an_bar *b, double *buf, double *g, double *var_end)
 {
     double step = 0.1;
-    int n = (int)(reach / step) + 1;
+    /* reach grows with the file's SliceThickness: test it as a double before it becomes a count
+     * (an absurd thickness such as 1e300 mm would overflow the int, which is undefined) */
+    if (!(reach > 0))
+        return -1;
+    double nd = floor(reach / step) + 1;
+    int n = nd > NMAX ? NMAX + 1 : (int)nd;
     if (n > NMAX)
         n = NMAX, step = reach / (n - 1);
     an_line l;

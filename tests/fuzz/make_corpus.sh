@@ -33,6 +33,10 @@ sim t2-enh --series t2 --slices 3 --enhanced --seed 3
 sim t1-trans --series t1 --slices 1 --orientation transposed --rotation 3 --snr 0
 sim t1-flip --series t1 --slices 1 --orientation flip-rows --profile rect --tilt-v 2
 sim t1-big --series t1 --slices 1 --matrix 128 --fov 250 --snr 30 --shading 0.3
+# whole standard series in one input (11 frames), so every step of the analysis is reached
+sim t1-enh11 --series t1 --enhanced --seed 4 --matrix 128
+sim t1-enh11-tilt --series t1 --enhanced --seed 5 --matrix 128 --tilt-v 2 --thickness 4 \
+  --position-offset 2
 echo "make_corpus: $n simulator files"
 
 # 2. the same bytes in other transfer syntaxes (DCMTK's converters)
