@@ -35,9 +35,20 @@ sw_status an_model_check(const an_model *m, sw_error *err)
         NEED(m->bar_len0_mm > 0, "bar length must be positive");
         NEED(m->bar_face_slope > 0 && isfinite(m->bar_face_slope),
              "bar end faces need a positive slope");
+        /* the vertices lie on their slices of the standard series (slice k at w = (k - ramp
+         * slice) gap), or the series' wedge slices would miss the bars */
+        for (int i = 0; i < 2; i++)
+            NEED(fabs(m->wedge_w[i] - (m->wedge_slice[i] - m->ramp_slice) * m->slice_gap_mm) <=
+                     0.25 * m->slice_gap_mm,
+                 "a wedge vertex (w_first_mm, w_last_mm) is not on its slice (slice_first, "
+                 "slice_last, at (slice - ramp_slice) x slice_gap_mm)");
         for (int i = 0; i < 2; i++)
             NEED(m->bar_u_min[i] < m->bar_u_max[i], "bar extent is empty");
     }
+    if (m->n_ramps > 0)
+        NEED(hypot(fmax(fabs(m->insert_u_min), fabs(m->insert_u_max)),
+                   fmax(fabs(m->insert_v_min), fabs(m->insert_v_max))) < m->radius_mm,
+             "the thickness insert reaches outside the fluid cylinder");
 #undef NEED
     return SW_OK;
 }

@@ -122,6 +122,8 @@ Test(models, bad_text_names_line_and_reason)
         {"[phantom]\nmethod = wedge\n", "small:2: method must be one of crossed-ramps"},
         {"[phantom]\nslice_gap_mm = 10 mm\n", "small:2: slice_gap_mm must be a number"},
         {"[insert]\nramps = 1\n", "crossed ramps need two ramps"},
+        {"[wedges]\nw_last_mm = 90\n", "small: phantom model large-ramp-wedge: a wedge vertex"},
+        {"[phantom]\nradius_mm = 60\n", "the thickness insert reaches outside the fluid cylinder"},
         {"[phantom\n", "small:1: syntax error"},
     };
     for (size_t i = 0; i < sizeof bad / sizeof bad[0]; i++) {
