@@ -136,7 +136,11 @@ int wd_hints(const wd_hint_input *in, const wd_hint_settings *s, wd_hint *out, i
         double dt = in->since_baseline ? in->thickness_mm : in->thickness_mm - in->thickness_ref_mm;
         if (in->since_baseline) /* the value is a change; the ratio is to the baseline's level */
             e_t = in->thickness_mm / in->thickness_ref_mm;
-        t_off = fabs(e_t) >= s->thickness_fraction && fabs(dt) >= k * in->thickness_unc_mm;
+        /* A drift alarm has already judged the change significant: against the baseline's
+         * spread it counts, whatever its size; a single result must also pass the threshold. */
+        t_off = in->since_baseline
+                    ? fabs(dt) > 0 && fabs(dt) >= k * in->thickness_unc_mm
+                    : fabs(e_t) >= s->thickness_fraction && fabs(dt) >= k * in->thickness_unc_mm;
     }
     int s_off = in->has_scale && off(in->scale_percent, in->scale_unc_percent, s->scale_percent, k);
     int s_normal = in->has_scale && !s_off && !(sign_of(in->scale_percent) == sign_of(e_t) &&
