@@ -60,5 +60,14 @@ check(len(got) == 1 and got[0].get("SLICEWARDEN_KIND") == "drift" and
       got[0].get("SLICEWARDEN_METRIC") == "slice_thickness" and
       got[0].get("SLICEWARDEN_STATION") == "ALDMR1",
       "the command got the drift alert's facts: %s" % got)
+# The cause hint of the drift alarm: the thickness rose by 9 % while the slice positions did not
+# move (the simulator changed the profile, not the gradient), which reads as the RF pulse.
+hints = query(db, "SELECT h.code, h.text FROM hints h JOIN alerts a ON a.id = h.alert_id "
+                  "WHERE a.kind = 'drift'")
+check([h[0] for h in hints] == ["rf-bandwidth"] and "Since the baseline" in hints[0][1],
+      "the drift alarm's hint reads the RF pulse, since the baseline: %s" % hints)
+msg = query(db, "SELECT message FROM alerts WHERE kind = 'drift'")
+check(msg and "hint: RF pulse or transmit bandwidth?" in msg[0][0],
+      "the drift alert's message carries the hint: %s" % (msg[0][0][-160:] if msg else msg))
 cleanup(base)
 finish()
