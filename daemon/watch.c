@@ -119,7 +119,9 @@ sw_status wd_settings_load(const char *path, const char *folder, const char *dat
         if ((rc = absolute(rel[i], sizeof s->cfg.folder, err)) != SW_OK)
             return rc;
     wd_config_resolve(&s->cfg);
-    an_model_large(&s->model);
+    if ((rc = an_model_large(&s->model)) != SW_OK)
+        return sw_error_set(err, rc, "the built-in phantom model could not be read (%s)",
+                            s->model.name);
     if (s->cfg.model_file[0] && (rc = wd_model_load(&s->model, s->cfg.model_file, err)) != SW_OK)
         return rc;
     wd_tolerances_default(&s->tol);
