@@ -66,7 +66,8 @@ int main(int argc, char **argv)
         first = 3;
     }
     if (repeat < 1 || first >= argc) {
-        fprintf(stderr, "usage: bench_analysis_cost [--repeat N] FILE... (the files of one series)\n");
+        fprintf(stderr,
+                "usage: bench_analysis_cost [--repeat N] FILE... (the files of one series)\n");
         goto out;
     }
     nfiles = argc - first;
@@ -117,7 +118,8 @@ int main(int argc, char **argv)
             int echo = -1;
             for (int i = 0; i < nfiles && echo < 0; i++)
                 for (int f = 0; f < files[i]->nframes && echo < 0; f++) {
-                    int e = files[i]->frames[f].echo_number > 0 ? files[i]->frames[f].echo_number : 1;
+                    int e =
+                        files[i]->frames[f].echo_number > 0 ? files[i]->frames[f].echo_number : 1;
                     int seen = 0;
                     for (int k = 0; k < n_echoes; k++)
                         seen |= echoes[k] == e;

@@ -15,8 +15,8 @@
 #include <ftw.h>
 #include <jansson.h>
 #include <math.h>
-#include <stdarg.h>
 #include <sqlite3.h>
+#include <stdarg.h>
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
@@ -66,7 +66,8 @@ static void die(const char *fmt, ...)
 }
 
 /* snprintf that stops the benchmark rather than truncate a path or a command. */
-static void xsnprintf(char *buf, size_t n, const char *fmt, ...) __attribute__((format(printf, 3, 4)));
+static void xsnprintf(char *buf, size_t n, const char *fmt, ...)
+    __attribute__((format(printf, 3, 4)));
 static void xsnprintf(char *buf, size_t n, const char *fmt, ...)
 {
     va_list ap;
@@ -289,8 +290,8 @@ static void make_archive(int nseries)
     printf("archive: simulating %d series into %s (2 at a time)\n", nseries, g_arch);
     fflush(stdout);
     double t0 = now_s();
-    sh("rm -rf '%s' '%s' && mkdir -p '%s/plain' '%s/jpegls' '%s/truth'", g_arch, log, g_arch, g_arch,
-       g_arch);
+    sh("rm -rf '%s' '%s' && mkdir -p '%s/plain' '%s/jpegls' '%s/truth'", g_arch, log, g_arch,
+       g_arch, g_arch);
     strv cmds = {0};
     for (int i = 0; i < nseries; i++) {
         char cmd[8192];
@@ -302,15 +303,15 @@ static void make_archive(int nseries)
         /* a varied but measurable archive: thickness 4-6 mm, SNR 60-149, rotation +-2.5 deg,
            offsets, tilt +-1 deg, slice position errors +-1 mm */
         xsnprintf(cmd, sizeof cmd,
-                 "'%s' simulate --quiet --series %s --seed %d --thickness %.1f --snr %d "
-                 "--rotation %.1f --offset %d,%d --tilt-v %.1f --position-offset %.2f "
-                 "--station %s --serial %s --scanner-model '%s' --field %s --date %s "
-                 "--series-number %d '%s/plain/s%03d' && mv '%s/plain/s%03d/truth.json' "
-                 "'%s/truth/s%03d.json'",
-                 g_sw, t2 ? "t2" : "t1", 7001 + i, 4.0 + 0.1 * ((i * 7) % 21), 60 + (i * 17) % 90,
-                 0.5 * ((i * 13) % 11 - 5), (i * 5) % 7 - 3, (i * 3) % 5 - 2,
-                 0.5 * ((i * 7) % 5 - 2), 0.25 * ((i * 11) % 9 - 4), stations[s], serials[s],
-                 models[s], fields[s], date, 100 + i, g_arch, i, g_arch, i, g_arch, i);
+                  "'%s' simulate --quiet --series %s --seed %d --thickness %.1f --snr %d "
+                  "--rotation %.1f --offset %d,%d --tilt-v %.1f --position-offset %.2f "
+                  "--station %s --serial %s --scanner-model '%s' --field %s --date %s "
+                  "--series-number %d '%s/plain/s%03d' && mv '%s/plain/s%03d/truth.json' "
+                  "'%s/truth/s%03d.json'",
+                  g_sw, t2 ? "t2" : "t1", 7001 + i, 4.0 + 0.1 * ((i * 7) % 21), 60 + (i * 17) % 90,
+                  0.5 * ((i * 13) % 11 - 5), (i * 5) % 7 - 3, (i * 3) % 5 - 2,
+                  0.5 * ((i * 7) % 5 - 2), 0.25 * ((i * 11) % 9 - 4), stations[s], serials[s],
+                  models[s], fields[s], date, 100 + i, g_arch, i, g_arch, i, g_arch, i);
         strv_push(&cmds, cmd);
     }
     run_pool(&cmds, 2, log);
@@ -323,12 +324,13 @@ static void make_archive(int nseries)
     for (int i = 0; i < plain.n; i++) {
         const char *rel = plain.v[i] + strlen(dir); /* "/sNNN/IMxxxx.dcm" */
         char cmd[9000];
-        xsnprintf(cmd, sizeof cmd, "mkdir -p \"$(dirname '%s/jpegls%s')\" && dcmcjpls '%s' '%s/jpegls%s'",
-                 g_arch, rel, plain.v[i], g_arch, rel);
+        xsnprintf(cmd, sizeof cmd,
+                  "mkdir -p \"$(dirname '%s/jpegls%s')\" && dcmcjpls '%s' '%s/jpegls%s'", g_arch,
+                  rel, plain.v[i], g_arch, rel);
         strv_push(&cmds, cmd);
     }
-    printf("archive: %d series simulated in %.0f s; %d files to JPEG-LS lossless\n", nseries, t1 - t0,
-           plain.n);
+    printf("archive: %d series simulated in %.0f s; %d files to JPEG-LS lossless\n", nseries,
+           t1 - t0, plain.n);
     fflush(stdout);
     run_pool(&cmds, 2, log);
     strv_free(&cmds);
@@ -347,8 +349,8 @@ static int stored_series(const char *db)
     sqlite3_stmt *st = NULL;
     int n = -1;
     if (sqlite3_open_v2(db, &h, SQLITE_OPEN_READONLY, NULL) == SQLITE_OK &&
-        sqlite3_prepare_v2(h, "SELECT count(*) FROM series WHERE state = 'stored'", -1, &st, NULL) ==
-            SQLITE_OK &&
+        sqlite3_prepare_v2(h, "SELECT count(*) FROM series WHERE state = 'stored'", -1, &st,
+                           NULL) == SQLITE_OK &&
         sqlite3_step(st) == SQLITE_ROW)
         n = sqlite3_column_int(st, 0);
     sqlite3_finalize(st);
@@ -368,8 +370,10 @@ static meas watch_once(const char *name, const char *src, int png, int expect_se
     FILE *f = fopen(conf, "w");
     if (!f)
         die("%s: cannot be written", conf);
-    fprintf(f, "[watch]\nfolder = %s/incoming\ndatabase = %s\nquiet_seconds = 1\n[log]\nlevel = warning\n",
-            root, db);
+    fprintf(
+        f,
+        "[watch]\nfolder = %s/incoming\ndatabase = %s\nquiet_seconds = 1\n[log]\nlevel = warning\n",
+        root, db);
     fclose(f);
     strv files = {0};
     char in[4300];
@@ -381,7 +385,8 @@ static meas watch_once(const char *name, const char *src, int png, int expect_se
        (SETTLE_S in daemon/watch.c) as still being written. A backlog is older than that. */
     struct timespec settle = {1, 200000000};
     nanosleep(&settle, NULL);
-    char *argv[] = {g_sw, "watch", "-c", conf, "--once", "--no-progress", png ? NULL : "--no-png", NULL};
+    char *argv[] = {g_sw, "watch", "-c", conf, "--once", "--no-progress", png ? NULL : "--no-png",
+                    NULL};
     meas m = run(argv, NULL, errlog);
     must(&m, name);
     int n = stored_series(db);
@@ -478,8 +483,8 @@ static int agreement(const char *ours_path, const char *ref_path, int expect)
             double u = jnum(t, "uncertainty_mm");
             double d = jnum(r, "corrected_mm") - jnum(t, "corrected_mm");
             if (isnan(d))
-                printf("  measured by one only: series %s echo %d thickness (ours: %s)\n", uid, echo,
-                       str_or(json_string_value(json_object_get(t, "reason")), "measured"));
+                printf("  measured by one only: series %s echo %d thickness (ours: %s)\n", uid,
+                       echo, str_or(json_string_value(json_object_get(t, "reason")), "measured"));
             acc_add(&th, d, AGREE_FIXED_MM + AGREE_K * sqrt(2.0) * u);
             size_t k;
             json_t *p;
@@ -517,8 +522,8 @@ static int agreement(const char *ours_path, const char *ref_path, int expect)
            "bar length difference", bld.n, acc_mean(&bld), acc_sd(&bld), bld.maxabs, bld.over,
            bld.one_only);
     int ok = matched == expect && th.over == 0 && bld.over == 0 && th.one_only == 0 &&
-             bld.one_only == 0 &&
-             fabs(acc_mean(&th)) <= AGREE_MEAN_MM && fabs(acc_mean(&bld)) <= AGREE_MEAN_MM;
+             bld.one_only == 0 && fabs(acc_mean(&th)) <= AGREE_MEAN_MM &&
+             fabs(acc_mean(&bld)) <= AGREE_MEAN_MM;
     printf("  agreement: %s\n", ok ? "within the limits" : "NOT within the limits");
     return ok;
 }
@@ -563,7 +568,8 @@ static void row(const char *name, const meas *m, double items, const char *unit)
     printf("\n");
 }
 
-static void goal(const char *what, int met, const char *fmt, ...) __attribute__((format(printf, 3, 4)));
+static void goal(const char *what, int met, const char *fmt, ...)
+    __attribute__((format(printf, 3, 4)));
 static void goal(const char *what, int met, const char *fmt, ...)
 {
     va_list ap;
@@ -630,8 +636,10 @@ int main(int argc, char **argv)
     }
     if (nseries < 20 || nseries % 2)
         die("--series must be even and at least 20");
-    const char *bin = getenv("SW_BENCH_BINARY_DIR") ? getenv("SW_BENCH_BINARY_DIR") : BENCH_BINARY_DIR;
-    const char *src = getenv("SW_BENCH_SOURCE_DIR") ? getenv("SW_BENCH_SOURCE_DIR") : BENCH_SOURCE_DIR;
+    const char *bin =
+        getenv("SW_BENCH_BINARY_DIR") ? getenv("SW_BENCH_BINARY_DIR") : BENCH_BINARY_DIR;
+    const char *src =
+        getenv("SW_BENCH_SOURCE_DIR") ? getenv("SW_BENCH_SOURCE_DIR") : BENCH_SOURCE_DIR;
     xsnprintf(g_sw, sizeof g_sw, "%s/daemon/slicewarden", bin);
     xsnprintf(g_cost, sizeof g_cost, "%s/bench/throughput/bench_analysis_cost", bin);
     xsnprintf(g_ref, sizeof g_ref, "%s/bench/reference/slicethick.py", src);
@@ -650,7 +658,8 @@ int main(int argc, char **argv)
     printf("machine: %ld online CPUs, load average %.2f %.2f %.2f at start\n",
            sysconf(_SC_NPROCESSORS_ONLN), load[0], load[1], load[2]);
     fflush(stdout);
-    sh("grep -m1 'model name' /proc/cpuinfo; uname -sr; git -C '%s' rev-parse --short HEAD 2>/dev/null || true",
+    sh("grep -m1 'model name' /proc/cpuinfo; uname -sr; git -C '%s' rev-parse --short HEAD "
+       "2>/dev/null || true",
        src);
 
     make_archive(nseries);
@@ -663,7 +672,8 @@ int main(int argc, char **argv)
     int nimages = plain.n;
     printf("archive: %d series (%d T1 x 11 images, %d T2 x 22), %d files, plain %.1f MiB, JPEG-LS "
            "%.1f MiB\n",
-           nseries, nseries / 2, nseries / 2, nimages, plain_bytes / 1048576.0, jls_bytes / 1048576.0);
+           nseries, nseries / 2, nseries / 2, nimages, plain_bytes / 1048576.0,
+           jls_bytes / 1048576.0);
     if (jls.n != plain.n)
         die("the JPEG-LS copy has %d files, the plain archive %d", jls.n, plain.n);
 
@@ -808,7 +818,8 @@ int main(int argc, char **argv)
     /* ratios and goals */
     double steady_ours = (an_all.wall - an1.wall) / (nseries - 1);
     double steady_py = (py_all.wall - py1.wall) / (nseries - 1);
-    double cpu_ours = (an_all.user + an_all.sys) / nseries, cpu_py = (py_all.user + py_all.sys) / nseries;
+    double cpu_ours = (an_all.user + an_all.sys) / nseries,
+           cpu_py = (py_all.user + py_all.sys) / nseries;
     printf("\nratios (wall clock)\n");
     printf("  ours / I/O floor, plain:     watch %.1f (with PNGs), %.1f (--no-png)\n",
            w_plain.wall / cat_plain.wall, w_plain_np.wall / cat_plain.wall);
@@ -830,9 +841,12 @@ int main(int argc, char **argv)
     printf("ratios, both\n");
     printf("  python / ours, one series as a whole process: %.1f (%.3f s / %.3f s)\n",
            py1.wall / an1.wall, py1.wall, an1.wall);
-    printf("  python / ours, steady state per series:       %.1f (%.1f ms / %.1f ms; CPU %.1f / %.1f ms)\n",
-           steady_py / steady_ours, 1e3 * steady_py, 1e3 * steady_ours, 1e3 * cpu_py, 1e3 * cpu_ours);
-    printf("  PNG writing: %.1f ms a series (watch plain with PNGs - --no-png, CPU), %.0f %% of the run\n",
+    printf("  python / ours, steady state per series:       %.1f (%.1f ms / %.1f ms; CPU %.1f / "
+           "%.1f ms)\n",
+           steady_py / steady_ours, 1e3 * steady_py, 1e3 * steady_ours, 1e3 * cpu_py,
+           1e3 * cpu_ours);
+    printf("  PNG writing: %.1f ms a series (watch plain with PNGs - --no-png, CPU), %.0f %% of "
+           "the run\n",
            1e3 * ((w_plain.user + w_plain.sys) - (w_plain_np.user + w_plain_np.sys)) / nseries,
            100.0 * (1.0 - (w_plain_np.user + w_plain_np.sys) / (w_plain.user + w_plain.sys)));
 
@@ -855,8 +869,7 @@ int main(int argc, char **argv)
          "%.0f images/s per CPU second (%.0f by the wall clock; watch is one thread; --no-png "
          "%.0f per CPU second)",
          rate_cpu, nimages / w_plain.wall, nimages / CPU(w_plain_np));
-    goal("analysis no more than reading and decoding, per series",
-         an_t1 <= rd_t1 && an_t2 <= rd_t2,
+    goal("analysis no more than reading and decoding, per series", an_t1 <= rd_t1 && an_t2 <= rd_t2,
          "T1 %.2f <= %.2f ms, T2 %.2f <= %.2f ms (plain; JPEG-LS %.2f <= %.2f ms)", an_t1, rd_t1,
          an_t2, rd_t2, an_j1, rd_j1);
     goal("peak RSS under 64 MiB whatever the backlog", peak < 64 * 1024,
