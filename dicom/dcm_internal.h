@@ -17,6 +17,8 @@
 /* Decoded pixel data of one file, at most (stored values; the float copy is twice that for 16-bit
  * data). 256 MiB holds 128 frames of 1024 x 1024 or 2048 of 256 x 256 at 16 bits. */
 #define DCM_MAX_PIXEL_BYTES (256 * 1048576)
+/* A deflated data set, inflated, at most: those pixels and 64 MiB of attributes. */
+#define DCM_MAX_INFLATED_BYTES (DCM_MAX_PIXEL_BYTES + 64 * 1048576)
 
 /* 1 after a successful dcm_init, 0 before and after dcm_shutdown. */
 int dcm_is_initialised(void);

@@ -112,7 +112,9 @@ void dcm_shutdown(void);
  * Full read: refuses (SW_EUNSUPPORTED) JPEG 2000 ("JPEG 2000 is not supported"), syntaxes DCMTK
  * cannot decode, SamplesPerPixel other than 1, PhotometricInterpretation other than MONOCHROME1/2,
  * BitsAllocated other than 8, 16, 32, float pixel data, files without pixel data and pixel data
- * that decodes to more than 256 MiB (the pixel module is checked before any decoder runs);
+ * that decodes to more than 256 MiB (the pixel module is checked before any decoder runs), and
+ * a deflated data set that inflates to more than 320 MiB (checked before DCMTK parses it, on the
+ * header-only path too);
  * refuses (SW_EFORMAT) truncated or malformed data, pixel data shorter than the frames need, a
  * zero or non-finite rescale slope, a rescale that takes values beyond the float range, UIDs
  * over 64 characters and NumberOfFrames over 100000.
