@@ -416,6 +416,7 @@ typedef struct watcher {
     wmap *map;
     size_t nmap, capmap;
     int watch_failed; /* watches could not all be set: rescan now and then */
+    int listing_lost; /* a folder or a file of a listing was dropped (out of memory, unreadable) */
     char **dirs;      /* folders waiting to be scanned */
     size_t ndirs, capdirs;
     queue q;
@@ -569,19 +570,42 @@ static void add_watch(watcher *w, const char *dir)
     map_set(w, wd, dir);
 }
 
+/* What a listing could not keep (out of memory, a folder that cannot be read) is not lost: the
+ * service lists the whole folder again every minute from then on (as when watches run out), and
+ * --once says so and exits 1, so that the next run takes it. */
+static void listing_lost(watcher *w, const char *what)
+{
+    if (!w->listing_lost)
+        wd_error("%s: not listed now (%s); %s", what, strerror(errno),
+                 w->once ? "left for the next run" : "the folder is listed again every minute");
+    w->listing_lost = 1;
+    w->watch_failed = 1;
+}
+
+/* Queues path again; a path that cannot be queued (out of memory) is left to the next listing. */
+static void requeue(watcher *w, const char *path, double delay, int tries)
+{
+    if (enqueue(&w->q, path, delay, tries) != 0)
+        listing_lost(w, path);
+}
+
 static void push_dir(watcher *w, const char *dir)
 {
     if (w->ndirs == w->capdirs) {
         size_t c = w->capdirs ? w->capdirs * 2 : 32;
         char **v = realloc(w->dirs, c * sizeof *v);
-        if (!v)
+        if (!v) {
+            listing_lost(w, dir);
             return;
+        }
         w->dirs = v;
         w->capdirs = c;
     }
     char *copy = strdup(dir);
     if (copy)
         w->dirs[w->ndirs++] = copy;
+    else
+        listing_lost(w, dir);
 }
 
 /* Lists one folder: files are queued, subfolders watched and scanned later. The watch is set
@@ -595,7 +619,7 @@ static void scan_dir(watcher *w, const char *dir)
     int n = scandir(dir, &list, NULL, alphasort);
     if (n < 0) {
         if (errno != ENOENT)
-            wd_warn("%s: cannot list: %s", dir, strerror(errno));
+            listing_lost(w, dir);
         return;
     }
     unsigned char *type = calloc((size_t)n + 1, 1);
@@ -618,7 +642,8 @@ static void scan_dir(watcher *w, const char *dir)
         type[i] = t;
         /* Links are queued too: they are recorded (and never followed), see take_link. */
         if ((t == DT_REG || t == DT_LNK) && !wd_name_is_temporary(name))
-            (void)enqueue_item(&w->q, path, 0, 0, 1);
+            if (enqueue_item(&w->q, path, 0, 0, 1) != 0)
+                listing_lost(w, path);
     }
     /* The folder stack is last in, first out: push in reverse name order. */
     for (int i = n - 1; i >= 0; i--)
@@ -626,7 +651,7 @@ static void scan_dir(watcher *w, const char *dir)
             snprintf(path, sizeof path, "%s/%s", dir, list[i]->d_name) < (int)sizeof path)
             push_dir(w, path);
     if (!type)
-        wd_warn("%s: out of memory while listing", dir);
+        listing_lost(w, dir);
     for (int i = 0; i < n; i++)
         free(list[i]);
     free(list);
@@ -718,9 +743,9 @@ static void read_events(watcher *w)
             struct stat lst;
             if ((ev->mask & IN_CREATE) && !wd_name_is_temporary(ev->name) &&
                 lstat(path, &lst) == 0 && S_ISLNK(lst.st_mode))
-                (void)enqueue(&w->q, path, 0, 0); /* a new symbolic link: recorded, not followed */
+                requeue(w, path, 0, 0); /* a new symbolic link: recorded, not followed */
             if ((ev->mask & (IN_CLOSE_WRITE | IN_MOVED_TO)) && !wd_name_is_temporary(ev->name))
-                (void)enqueue(&w->q, path, 0, 0);
+                requeue(w, path, 0, 0);
         }
     }
 }
@@ -956,7 +981,7 @@ static int move_or_report(watcher *w, const fmove *m)
     if (rc == SW_OK)
         return 0;
     if (rc == SW_EBUSY) {
-        (void)enqueue(&w->q, m->path, 1.0, 1);
+        requeue(w, m->path, 1.0, 1);
         return -1;
     }
     w->st.move_failures++;
@@ -966,7 +991,7 @@ static int move_or_report(watcher *w, const fmove *m)
         return -1;
     }
     wd_error("%s: %s; left in place, tried again in 30 s", m->path, err.msg);
-    (void)enqueue(&w->q, m->path, 30.0, 1);
+    requeue(w, m->path, 30.0, 1);
     return -1;
 }
 
@@ -1570,7 +1595,7 @@ static int parse(watcher *w, int64_t id, const char *path, const wd_blob *b, int
                                     &err);
             if (st == SW_OK) {
                 wd_info("%s: changed while it was read; taken again", path);
-                (void)enqueue(&w->q, path, SETTLE_S, 0);
+                requeue(w, path, SETTLE_S, 0);
             }
             goto out;
         }
@@ -2079,7 +2104,7 @@ static int measure_series(watcher *w, wseries *s, int quiet)
             snprintf(ld[i].why, sizeof ld[i].why,
                      "its content changed after it was seen; the new content is taken as a new "
                      "file");
-            (void)enqueue(&w->q, s->files[i].path, 0.5, 0);
+            requeue(w, s->files[i].path, 0.5, 0);
             wd_blob_free(&b);
             continue;
         }
@@ -2433,7 +2458,7 @@ static sw_status rebuild(watcher *w, sw_error *err)
                     goto out;
                 wd_warn("%s: %s", f->path, why);
                 if (changed)
-                    (void)enqueue(&w->q, f->path, 0, 0);
+                    requeue(w, f->path, 0, 0);
                 continue;
             }
             dcm_file *df = NULL;
@@ -2733,7 +2758,7 @@ static void after_take(watcher *w, const qitem *it, int r)
          * for it a second anyway. */
         int tries = it->tries + 1;
         double delay = tries < 3 ? (double)(1 << (tries - 1)) : 4.0;
-        (void)enqueue(&w->q, it->path, delay, tries);
+        requeue(w, it->path, delay, tries);
         return;
     }
     w->st.files_done++;
@@ -3052,7 +3077,8 @@ int wd_cmd_watch(int argc, char **argv)
     else
         summary(w, stderr);
     rc = w->stop == 2 ? 1 : 0;
-    if (w->once && (queue_len(&w->q) || w->st.move_failures || failed_to_measure(w)))
+    if (w->once &&
+        (queue_len(&w->q) || w->st.move_failures || failed_to_measure(w) || w->listing_lost))
         rc = 1;
 out:
     if (w->alerts)
