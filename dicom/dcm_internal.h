@@ -19,6 +19,8 @@
 #define DCM_MAX_PIXEL_BYTES (256 * 1048576)
 /* A deflated data set, inflated, at most: those pixels and 64 MiB of attributes. */
 #define DCM_MAX_INFLATED_BYTES (DCM_MAX_PIXEL_BYTES + 64 * 1048576)
+/* Sequences nest at most this deep (Enhanced MR needs 2, structured reports a dozen or two). */
+#define DCM_MAX_DEPTH 128
 
 /* 1 after a successful dcm_init, 0 before and after dcm_shutdown. */
 int dcm_is_initialised(void);
