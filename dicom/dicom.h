@@ -114,7 +114,8 @@ void dcm_shutdown(void);
  * BitsAllocated other than 8, 16, 32, float pixel data, files without pixel data and pixel data
  * that decodes to more than 256 MiB (the pixel module is checked before any decoder runs), and
  * a deflated data set that inflates to more than 320 MiB (checked before DCMTK parses it, on the
- * header-only path too);
+ * header-only path too); refuses (SW_EFORMAT) sequences nested deeper than 128 levels (walked
+ * before DCMTK parses, whose recursion would overflow the stack);
  * refuses (SW_EFORMAT) truncated or malformed data, pixel data shorter than the frames need, a
  * zero or non-finite rescale slope, a rescale that takes values beyond the float range, UIDs
  * over 64 characters and NumberOfFrames over 100000.
