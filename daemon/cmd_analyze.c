@@ -42,6 +42,32 @@ static void usage(FILE *f)
             "Results support, and never replace, a qualified medical physicist's review.\n");
 }
 
+/* dcm_read_file, with a refusal confirmed by a second read: DCMTK reports an allocation that
+ * failed inside its parser as malformed data, which would leave a good file out of its series. */
+static sw_status read_checked(const char *path, const dcm_read_opts *o, dcm_file **out,
+                              sw_error *err)
+{
+    sw_status rs = dcm_read_file(path, o, out, err);
+    if (rs == SW_OK || rs == SW_ENOMEM || rs == SW_EIO)
+        return rs;
+    sw_error again;
+    sw_error_clear(&again);
+    dcm_file *f = NULL;
+    sw_status r2 = dcm_read_file(path, o, &f, &again);
+    if (r2 == SW_OK) {
+        sw_error_clear(err);
+        *out = f;
+        return SW_OK;
+    }
+    dcm_file_free(f);
+    if (r2 == SW_ENOMEM || r2 == SW_EIO) {
+        sw_error_clear(err);
+        sw_error_set(err, r2, "%s", again.msg);
+        return r2;
+    }
+    return rs;
+}
+
 static int find_series(series_ref *s, int n, const char *uid)
 {
     for (int i = 0; i < n; i++)
@@ -89,17 +115,27 @@ static int measure_series(entry *e, int ne, int k, const wd_method *method, json
             first = i;
     if (!files)
         goto oom;
+    int lost = 0;
     for (int i = 0; i < ne; i++) {
         if (e[i].series != k)
             continue;
         sw_error err;
         sw_error_clear(&err);
-        if (dcm_read_file(e[i].path, NULL, &files[i], &err) != SW_OK) {
+        sw_status rs = read_checked(e[i].path, NULL, &files[i], &err);
+        if (rs != SW_OK) {
             fprintf(stderr, "slicewarden: %s\n", err.msg);
             rc = 2;
+            /* Out of memory or an I/O error: the file is not known to be bad, and a series
+             * measured without it would print numbers of another series. */
+            lost |= rs == SW_ENOMEM || rs == SW_EIO;
             continue;
         }
         cap += files[i]->nframes;
+    }
+    if (lost) {
+        fprintf(stderr, "slicewarden: %s: series %s not measured: a file of it could not be read\n",
+                e[first].path, e[first].head->frames[0].series_instance_uid);
+        goto out;
     }
     imgs = calloc((size_t)cap + 1, sizeof *imgs);
     if (!imgs)
@@ -161,6 +197,7 @@ int wd_cmd_analyze(int argc, char **argv)
         {NULL, 0, NULL, 0},
     };
     int json = 0, rc = 0, ns = 0;
+    const char *unread = NULL; /* a file whose header failed for want of memory or an I/O error */
     const char *png_dir = NULL;
     wd_method method;
     wd_method_default(&method);
@@ -240,7 +277,16 @@ int wd_cmd_analyze(int argc, char **argv)
         e[i].path = paths.v[i];
         e[i].series = -1;
         sw_error_clear(&err);
-        if (dcm_read_file(paths.v[i], &head, &e[i].head, &err) != SW_OK) {
+        sw_status rs = read_checked(paths.v[i], &head, &e[i].head, &err);
+        if (rs == SW_ENOMEM || rs == SW_EIO) {
+            /* Not known to be bad, and of no known series: any series measured now might be
+             * measured without it. */
+            fprintf(stderr, "slicewarden: %s\n", err.msg);
+            unread = paths.v[i];
+            rc = 2;
+            continue;
+        }
+        if (rs != SW_OK) {
             if (!paths.named[i] && !wd_has_dicom_magic(paths.v[i])) {
                 /* Found in a folder and not DICOM at all (a note, a truth file): say so, go on. */
                 fprintf(stderr, "slicewarden: %s: skipped, not a DICOM file\n", paths.v[i]);
@@ -276,6 +322,11 @@ int wd_cmd_analyze(int argc, char **argv)
         json_object_set_new(doc, "series", json_array());
     }
     /* Pass 2: one series at a time, pixels read, measured and released. */
+    if (unread) {
+        fprintf(stderr, "slicewarden: no series measured: %s could not be read, and may belong to "
+                        "any of them\n", unread);
+        ns = 0;
+    }
     for (int k = 0; k < ns; k++) {
         int r = measure_series(e, (int)paths.n, k, &method, doc, png_dir, &worst);
         if (r > rc)
