@@ -1599,6 +1599,24 @@ static int parse(watcher *w, int64_t id, const char *path, const wd_blob *b, int
             }
             goto out;
         }
+        /* Well-formed but not ours (an RT plan, a colour CT): when its header reads and names
+         * another modality, it is ignored as such rather than quarantined as damaged. */
+        if (rd == SW_EUNSUPPORTED) {
+            dcm_file *h = NULL;
+            sw_error he;
+            sw_error_clear(&he);
+            const dcm_read_opts ho = {.header_only = 1};
+            int other = dcm_read_buffer(b->data, b->len, path, &ho, &h, &he) == SW_OK && h &&
+                        strcmp(h->frames[0].modality, "MR") != 0;
+            if (other)
+                snprintf(why, sizeof why, "not an MR image (Modality '%s')", h->frames[0].modality);
+            dcm_file_free(h);
+            if (other) {
+                sw_error_clear(&err);
+                st = to_final(w, id, path, hash, DB_FILE_SEEN, DB_FILE_IGNORED, why, 0, &err);
+                goto out;
+            }
+        }
         /* dcm_ messages begin with the path already */
         st = to_final(w, id, path, hash, DB_FILE_SEEN, DB_FILE_QUARANTINED, err.msg, 0, &err);
         goto out;
