@@ -827,6 +827,10 @@ out:
  * offset 128, so it is DICOM that is damaged rather than some other kind of file. */
 sw_status load_failed(const Reader &r, OFCondition c, bool has_dicm)
 {
+    /* DCMTK says so when an allocation failed: the machine's fault, not the file's (the service
+     * tries such a file again instead of quarantining it). */
+    if (c == EC_MemoryExhausted)
+        return dcm_fail(r.err, SW_ENOMEM, r.name, "out of memory while parsing (%s)", c.text());
     if (!has_dicm)
         return dcm_fail(r.err, SW_EFORMAT, r.name,
                         "not a DICOM file (no DICM prefix, and no readable dataset: %s)", c.text());
@@ -1124,6 +1128,9 @@ sw_status load(const Reader &r, const char *path, bool has_dicm, dcm_file **out)
         if (!r.header_only) {
             /* Everything into memory now: the file may be moved once we return. */
             c = ff.loadAllDataIntoMemory();
+            if (c == EC_MemoryExhausted)
+                return dcm_fail(r.err, SW_ENOMEM, r.name, "out of memory while loading (%s)",
+                                c.text());
             if (c.bad())
                 return dcm_fail(r.err, SW_EFORMAT, r.name, "truncated or unreadable data (%s)",
                                 c.text());
