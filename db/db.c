@@ -253,6 +253,29 @@ sw_status db_exec_stmt(db *d, sqlite3_stmt *st, sw_error *err)
     return rc;
 }
 
+sw_status db_set_durable(db *d, int durable, sw_error *err)
+{
+    if (d->txn_open || d->savepoint_depth)
+        return sw_error_set(err, SW_EINVAL, "%s: commit durability changed inside a transaction",
+                            d->path);
+    return db_exec_script(d, durable ? "PRAGMA synchronous = FULL" : "PRAGMA synchronous = NORMAL",
+                          err);
+}
+
+sw_status db_sync_log(db *d, sw_error *err)
+{
+    sqlite3_file *f = NULL;
+    int r = sqlite3_file_control(d->sql, "main", SQLITE_FCNTL_JOURNAL_POINTER, &f);
+    if (r != SQLITE_OK)
+        return db_sqlerr(d, r, err);
+    if (!f || !f->pMethods)
+        return SW_OK; /* no log open: nothing was written since the last durable point */
+    if ((r = f->pMethods->xSync(f, SQLITE_SYNC_NORMAL)) != SQLITE_OK)
+        return sw_error_set(err, SW_EIO, "%s: the write-ahead log could not be synced (%s)",
+                            d->path, sqlite3_errstr(r));
+    return SW_OK;
+}
+
 sw_status db_exec_script(db *d, const char *sql, sw_error *err)
 {
     sw_status rc = SW_OK;

@@ -46,6 +46,14 @@ sw_status db_begin(db *d, sw_error *err);
 sw_status db_commit(db *d, sw_error *err);
 sw_status db_rollback(db *d, sw_error *err); /* a no-op when no transaction is open */
 int db_in_transaction(const db *d);
+/* Whether the next commits wait for the disk (synchronous = FULL, db_open's setting) or only for
+ * the operating system (synchronous = NORMAL: in WAL mode the process may die at any point without
+ * a loss; a power failure may lose the latest commits, never leaving the store half-written). A
+ * later durable commit, or db_sync_log, makes every earlier commit durable too. SQLite refuses the
+ * change inside a transaction: SW_EINVAL then. */
+sw_status db_set_durable(db *d, int durable, sw_error *err);
+/* Makes the commits so far durable now (fdatasync of the write-ahead log). */
+sw_status db_sync_log(db *d, sw_error *err);
 
 /* ---- settings and metadata (table meta) ----
  * Keys written by the store: "application", "created_by_version", "created_at",
