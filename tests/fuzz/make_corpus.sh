@@ -69,7 +69,8 @@ copy_tree() { # copy_tree PREFIX DIR
     n=$((n + 1))
   done < <(find "$dir" -type f -print0 | sort -z)
 }
-pyd=/usr/lib/python3/dist-packages/pydicom/data
+pyd=$(/usr/bin/python3 -c 'import os, pydicom; print(os.path.dirname(pydicom.__file__))' \
+  2>/dev/null)/data
 copy_tree pydicom "$pyd/test_files"
 copy_tree pydicom-charset "$pyd/charset_files"
 copy_tree pydicom-palette "$pyd/palettes"
