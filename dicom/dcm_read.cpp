@@ -898,8 +898,9 @@ sw_status check_args(const Reader &r, dcm_file **out)
  * little or big endian, undefined lengths closed by delimiters, UN with undefined length and UN
  * whose dictionary VR is SQ read as implicit VR sequences (dcm_init enables that conversion),
  * implicit VR sequences of defined length told by the dictionary, encapsulated pixel data's
- * fragments skipped. Where the bytes stop making sense the walk stops and DCMTK's parse decides.
- * Returns the deepest level reached, or -1 past DCM_MAX_DEPTH. */
+ * fragments skipped, sequences longer than the file read to its end. Where the walk cannot follow,
+ * the item tags left bound what DCMTK could still nest. Returns the deepest level reached, or -1
+ * past DCM_MAX_DEPTH. */
 int nesting_depth(const unsigned char *p, size_t len, size_t pos, bool explicit_vr, bool big)
 {
     struct Level {
@@ -926,6 +927,17 @@ int nesting_depth(const unsigned char *p, size_t len, size_t pos, bool explicit_
             deepest = depth;
         return true;
     };
+    /* Where the walk cannot follow DCMTK (bytes that are no explicit VR, a value longer than the
+     * file): every level DCMTK could still open needs an item tag, so their count in the rest
+     * bounds the depth. */
+    auto rest_bound = [&](size_t from, size_t to) -> int {
+        size_t items = 0;
+        for (size_t k = from; k + 4 <= to; k++)
+            if ((p[k] == 0xFE && p[k + 1] == 0xFF && p[k + 2] == 0x00 && p[k + 3] == 0xE0) ||
+                (p[k] == 0xFF && p[k + 1] == 0xFE && p[k + 2] == 0xE0 && p[k + 3] == 0x00))
+                items++;
+        return static_cast<size_t>(depth) + items > DCM_MAX_DEPTH ? -1 : deepest;
+    };
     while (pos + 8 <= len) {
         while (depth > 0 && st[depth - 1].end != SIZE_MAX && pos >= st[depth - 1].end)
             depth--;
@@ -936,7 +948,7 @@ int nesting_depth(const unsigned char *p, size_t len, size_t pos, bool explicit_
             if (el == 0xE000) { /* item */
                 if (depth > 0 && st[depth - 1].fragments) {
                     if (n == 0xFFFFFFFFu || n > len - pos)
-                        break;
+                        return rest_bound(pos, len);
                     pos += n; /* a fragment: bytes */
                 } else if (!push(n == 0xFFFFFFFFu ? SIZE_MAX : pos + n,
                                  depth > 0 && st[depth - 1].implicit, false)) {
@@ -958,13 +970,13 @@ int nesting_depth(const unsigned char *p, size_t len, size_t pos, bool explicit_
         } else {
             char a = static_cast<char>(p[pos + 4]), b = static_cast<char>(p[pos + 5]);
             if (a < 'A' || a > 'Z' || b < 'A' || b > 'Z')
-                break; /* not an explicit VR: DCMTK decides */
+                return rest_bound(pos, len); /* not an explicit VR */
             /* VRs with a 4-byte length (PS3.5 7.1.2) */
             bool long_vr = (a == 'O' && strchr("BDFLVW", b)) || (a == 'S' && strchr("QV", b)) ||
                            (a == 'U' && strchr("CNRTV", b));
             if (long_vr) {
                 if (pos + 12 > len)
-                    break;
+                    return deepest;
                 n = u32(pos + 8);
                 pos += 12;
             } else {
@@ -983,13 +995,16 @@ int nesting_depth(const unsigned char *p, size_t len, size_t pos, bool explicit_
             if (!push(SIZE_MAX, content_implicit, pixels))
                 return -1;
         } else if (sq) {
-            if (n > len - pos)
-                break;
-            if (!push(pos + n, content_implicit, false))
+            /* a sequence longer than the file: DCMTK still reads what is there */
+            if (!push(n > len - pos ? len : pos + n, content_implicit, false))
                 return -1;
         } else {
             if (n > len - pos)
-                break;
+                return rest_bound(pos, len);
+            /* A private element the walk cannot type (DCMTK may know it as a sequence from its
+             * private dictionary, by creator): the item tags inside bound its nesting. */
+            if ((group & 1) && (implicit || un) && rest_bound(pos, pos + n) < 0)
+                return -1;
             pos += n;
         }
     }
