@@ -1053,48 +1053,73 @@ void dataset_start(const unsigned char *p, size_t len, size_t *pos, bool *explic
 }
 
 /* Inflates a deflated data set (PS3.5 A.5: raw deflate; a zlib header, which some writers add, is
- * accepted as DCMTK accepts it) into out, refusing past DCM_MAX_INFLATED_BYTES. A stream zlib
- * cannot read ends the output early: DCMTK's parse then says what is wrong. */
-sw_status inflate_dataset(const Reader &r, const unsigned char *p, size_t len,
-                          std::vector<unsigned char> &out)
+ * accepted as DCMTK accepts it). out == nullptr: only counts the inflated bytes into *total,
+ * stopping past DCM_MAX_INFLATED_BYTES; else fills out (reserved to the count) too. A stream zlib
+ * cannot read ends the output early: DCMTK's parse then says what is wrong. Returns -1 when zlib
+ * cannot start, 0 otherwise. */
+int inflate_pass(const unsigned char *p, size_t len, unsigned char *out, size_t *total)
 {
     z_stream zs;
     memset(&zs, 0, sizeof zs);
     bool zlib_hdr = len >= 2 && (p[0] & 0x0F) == 8 && ((p[0] << 8) | p[1]) % 31 == 0;
     if (inflateInit2(&zs, zlib_hdr ? 15 : -15) != Z_OK)
-        return dcm_fail(r.err, SW_ENOMEM, r.name, "out of memory for inflating");
-    sw_status st = SW_OK;
-    const size_t chunk = 1 << 20, cap = static_cast<size_t>(DCM_MAX_INFLATED_BYTES);
-    size_t fed = 0;
+        return -1;
+    static thread_local unsigned char scratch[1 << 16];
+    const size_t cap = static_cast<size_t>(DCM_MAX_INFLATED_BYTES);
+    size_t fed = 0, have = 0, room = out ? *total : 0;
     int z = Z_OK;
-    try {
-        while (z == Z_OK) {
-            if (zs.avail_in == 0) {
-                if (fed == len)
-                    break;
-                size_t step = len - fed < (1u << 30) ? len - fed : (1u << 30);
-                zs.next_in = const_cast<Bytef *>(p + fed);
-                zs.avail_in = static_cast<uInt>(step);
-                fed += step;
-            }
-            size_t have = out.size();
+    while (z == Z_OK) {
+        if (zs.avail_in == 0) {
+            if (fed == len)
+                break;
+            size_t step = len - fed < (1u << 30) ? len - fed : (1u << 30);
+            zs.next_in = const_cast<Bytef *>(p + fed);
+            zs.avail_in = static_cast<uInt>(step);
+            fed += step;
+        }
+        if (out) {
+            if (have == room)
+                break;
+            size_t step = room - have < (1u << 30) ? room - have : (1u << 30);
+            zs.next_out = out + have;
+            zs.avail_out = static_cast<uInt>(step);
+            z = inflate(&zs, Z_NO_FLUSH);
+            have += step - zs.avail_out;
+        } else {
+            zs.next_out = scratch;
+            zs.avail_out = sizeof scratch;
+            z = inflate(&zs, Z_NO_FLUSH); /* Z_STREAM_END, or an error: the output ends here */
+            have += sizeof scratch - zs.avail_out;
             if (have > cap)
                 break;
-            out.resize(have + chunk);
-            zs.next_out = out.data() + have;
-            zs.avail_out = static_cast<uInt>(chunk);
-            z = inflate(&zs, Z_NO_FLUSH); /* Z_STREAM_END, or an error: the output ends here */
-            out.resize(have + chunk - zs.avail_out);
         }
-        if (out.size() > cap)
-            st = dcm_fail(r.err, SW_EUNSUPPORTED, r.name,
-                          "the deflated data set inflates to more than %d MiB",
-                          DCM_MAX_INFLATED_BYTES / 1048576);
-    } catch (const std::bad_alloc &) {
-        st = dcm_fail(r.err, SW_ENOMEM, r.name, "out of memory for inflating");
     }
     inflateEnd(&zs);
-    return st;
+    *total = have;
+    return 0;
+}
+
+/* The inflated data set into out, refused past DCM_MAX_INFLATED_BYTES before anything is
+ * allocated: one pass counts, a second fills a buffer of that size. */
+sw_status inflate_dataset(const Reader &r, const unsigned char *p, size_t len,
+                          std::vector<unsigned char> &out)
+{
+    size_t total = 0;
+    if (inflate_pass(p, len, nullptr, &total) != 0)
+        return dcm_fail(r.err, SW_ENOMEM, r.name, "out of memory for inflating");
+    if (total > static_cast<size_t>(DCM_MAX_INFLATED_BYTES))
+        return dcm_fail(r.err, SW_EUNSUPPORTED, r.name,
+                        "the deflated data set inflates to more than %d MiB",
+                        DCM_MAX_INFLATED_BYTES / 1048576);
+    try {
+        out.resize(total);
+    } catch (const std::bad_alloc &) {
+        return dcm_fail(r.err, SW_ENOMEM, r.name, "out of memory for inflating");
+    }
+    if (total && inflate_pass(p, len, out.data(), &total) != 0)
+        return dcm_fail(r.err, SW_ENOMEM, r.name, "out of memory for inflating");
+    out.resize(total);
+    return SW_OK;
 }
 
 /* Checks what DCMTK would otherwise find out too late, before it parses: how deep sequences nest
