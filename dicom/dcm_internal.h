@@ -17,8 +17,10 @@
 /* Decoded pixel data of one file, at most (stored values; the float copy is twice that for 16-bit
  * data). 256 MiB holds 128 frames of 1024 x 1024 or 2048 of 256 x 256 at 16 bits. */
 #define DCM_MAX_PIXEL_BYTES (256 * 1048576)
-/* A deflated data set, inflated, at most: those pixels and 64 MiB of attributes. */
-#define DCM_MAX_INFLATED_BYTES (DCM_MAX_PIXEL_BYTES + 64 * 1048576)
+/* A deflated data set, inflated, at most. Deflate is rare for images and DCMTK reads the inflated
+ * data set whole; 64 MiB bounds what a small file can make the reader hold (a 337 kB file can
+ * inflate to 330 MiB). */
+#define DCM_MAX_INFLATED_BYTES (64 * 1048576)
 /* Sequences nest at most this deep (Enhanced MR needs 2, structured reports a dozen or two). */
 #define DCM_MAX_DEPTH 128
 

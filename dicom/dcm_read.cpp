@@ -9,6 +9,7 @@
 #include <cstdlib>
 #include <cstring>
 #include <fcntl.h>
+#include <memory>
 #include <new>
 #include <sys/mman.h>
 #include <sys/stat.h>
@@ -1054,7 +1055,7 @@ void dataset_start(const unsigned char *p, size_t len, size_t *pos, bool *explic
 
 /* Inflates a deflated data set (PS3.5 A.5: raw deflate; a zlib header, which some writers add, is
  * accepted as DCMTK accepts it). out == nullptr: only counts the inflated bytes into *total,
- * stopping past DCM_MAX_INFLATED_BYTES; else fills out (reserved to the count) too. A stream zlib
+ * stopping past DCM_MAX_INFLATED_BYTES; else fills out (of *total bytes, the count) too. A stream zlib
  * cannot read ends the output early: DCMTK's parse then says what is wrong. Returns -1 when zlib
  * cannot start, 0 otherwise. */
 int inflate_pass(const unsigned char *p, size_t len, unsigned char *out, size_t *total)
@@ -1102,7 +1103,7 @@ int inflate_pass(const unsigned char *p, size_t len, unsigned char *out, size_t 
 /* The inflated data set into out, refused past DCM_MAX_INFLATED_BYTES before anything is
  * allocated: one pass counts, a second fills a buffer of that size. */
 sw_status inflate_dataset(const Reader &r, const unsigned char *p, size_t len,
-                          std::vector<unsigned char> &out)
+                          std::unique_ptr<unsigned char[]> &out, size_t *out_len)
 {
     size_t total = 0;
     if (inflate_pass(p, len, nullptr, &total) != 0)
@@ -1111,14 +1112,13 @@ sw_status inflate_dataset(const Reader &r, const unsigned char *p, size_t len,
         return dcm_fail(r.err, SW_EUNSUPPORTED, r.name,
                         "the deflated data set inflates to more than %d MiB",
                         DCM_MAX_INFLATED_BYTES / 1048576);
-    try {
-        out.resize(total);
-    } catch (const std::bad_alloc &) {
+    /* not value-initialised: the second pass writes every byte it reports */
+    out.reset(new (std::nothrow) unsigned char[total ? total : 1]);
+    if (!out)
         return dcm_fail(r.err, SW_ENOMEM, r.name, "out of memory for inflating");
-    }
-    if (total && inflate_pass(p, len, out.data(), &total) != 0)
+    if (total && inflate_pass(p, len, out.get(), &total) != 0)
         return dcm_fail(r.err, SW_ENOMEM, r.name, "out of memory for inflating");
-    out.resize(total);
+    *out_len = total;
     return SW_OK;
 }
 
@@ -1145,11 +1145,12 @@ sw_status check_structure(const Reader &r, const char *path)
         const unsigned char *p = static_cast<const unsigned char *>(map);
         dataset_start(p, len, &pos, &explicit_vr, &big, &deflated);
         if (deflated) {
-            std::vector<unsigned char> ds;
-            st = inflate_dataset(r, p + pos, len - pos, ds);
+            std::unique_ptr<unsigned char[]> ds;
+            size_t ds_len = 0;
+            st = inflate_dataset(r, p + pos, len - pos, ds, &ds_len);
             if (st != SW_OK)
                 goto out;
-            depth = nesting_depth(ds.data(), ds.size(), 0, true, false);
+            depth = nesting_depth(ds.get(), ds_len, 0, true, false);
         } else {
             depth = nesting_depth(p, len, pos, explicit_vr, big);
         }

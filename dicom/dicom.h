@@ -113,7 +113,7 @@ void dcm_shutdown(void);
  * cannot decode, SamplesPerPixel other than 1, PhotometricInterpretation other than MONOCHROME1/2,
  * BitsAllocated other than 8, 16, 32, float pixel data, files without pixel data and pixel data
  * that decodes to more than 256 MiB (the pixel module is checked before any decoder runs), and
- * a deflated data set that inflates to more than 320 MiB (checked before DCMTK parses it, on the
+ * a deflated data set that inflates to more than 64 MiB (checked before DCMTK parses it, on the
  * header-only path too); refuses (SW_EFORMAT) sequences nested deeper than 128 levels (walked
  * before DCMTK parses, whose recursion would overflow the stack);
  * refuses (SW_EFORMAT) truncated or malformed data, pixel data shorter than the frames need, a
