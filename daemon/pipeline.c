@@ -27,7 +27,7 @@ const char *wd_thickness_metric(const wd_measured *m)
     return m && m->partition ? "partition_thickness" : "slice_thickness";
 }
 
-static void view_of(const dcm_image *d, an_image *v)
+void wd_image_view(const dcm_image *d, an_image *v)
 {
     memset(v, 0, sizeof *v);
     v->px = d->pixels;
@@ -98,7 +98,7 @@ sw_status wd_measure(const dcm_image *const *imgs, int n, const wd_method *metho
         if (isnan(e->echo_time_ms))
             e->echo_time_ms = d->echo_time_ms;
         e->img[e->n] = d;
-        view_of(d, &e->view[e->n]);
+        wd_image_view(d, &e->view[e->n]);
         e->n++;
     }
     qsort(out->echo, (size_t)out->n_echoes, sizeof out->echo[0], cmp_echo);

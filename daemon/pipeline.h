@@ -21,6 +21,10 @@ typedef struct wd_method {
 
 void wd_method_default(wd_method *m);
 
+/* The analysis view of a decoded image: its pixels (borrowed), geometry, spacing, SliceThickness
+ * and whether the patient lay feet first. */
+void wd_image_view(const dcm_image *d, an_image *v);
+
 /* One echo of a series: the images (borrowed), their views, and the result (owned). */
 typedef struct wd_echo {
     int echo_number;

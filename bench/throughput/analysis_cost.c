@@ -18,6 +18,7 @@
 
 #include "analysis.h"
 #include "dicom.h"
+#include "pipeline.h"
 
 #define MAX_ECHOES 4
 
@@ -26,22 +27,6 @@ static double now_s(void)
     struct timespec ts;
     clock_gettime(CLOCK_MONOTONIC, &ts);
     return (double)ts.tv_sec + 1e-9 * (double)ts.tv_nsec;
-}
-
-static void view_of(const dcm_image *d, an_image *v)
-{
-    memset(v, 0, sizeof *v);
-    v->px = d->pixels;
-    v->width = d->columns;
-    v->height = d->rows;
-    v->stride = d->columns;
-    v->col_mm = d->pixel_spacing[1];
-    v->row_mm = d->pixel_spacing[0];
-    memcpy(v->ipp, d->ipp, sizeof v->ipp);
-    memcpy(v->iop, d->iop, sizeof v->iop);
-    v->has_geometry = d->has_geometry;
-    v->nominal_thickness_mm = d->slice_thickness_mm;
-    v->feet_first = !strncmp(d->patient_position, "FF", 2);
 }
 
 static void free_files(dcm_file **files, int n)
@@ -142,7 +127,7 @@ int main(int argc, char **argv)
                 for (int f = 0; f < files[i]->nframes; f++) {
                     const dcm_image *d = &files[i]->frames[f];
                     if ((d->echo_number > 0 ? d->echo_number : 1) == echoes[k])
-                        view_of(d, &views[nv++]);
+                        wd_image_view(d, &views[nv++]);
                 }
             double ta = now_s();
             if (an_analyze_series(views + start, nv - start, &model, &tol, &params, &res[k],

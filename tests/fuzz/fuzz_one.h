@@ -12,7 +12,7 @@
 int fz_init(sw_error *err);
 
 /* Reads data as a DICOM file (header only, then in full), builds the views the daemon builds for
- * the frames read (wd_measure: echoes, duplicates, view_of), analyses them, formats the results as
+ * the frames read (wd_measure: echoes, duplicates, wd_image_view), analyses them, formats the results as
  * JSON and text, and frees everything. Returns the status of the full read, or of the measurement
  * when the read succeeded (*was_read is then 1, else 0); err holds the message of a failure.
  * Nothing survives the call. */
