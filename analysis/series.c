@@ -203,6 +203,20 @@ static void order_by_patient_frame(const an_image *imgs, const an_geom *geo, int
     *wsign = !has_geo || geo[*other].z_n >= geo[*first].z_n ? 1 : -1;
 }
 
+/* The median spacing along the normal between neighbours of the stack in order (gaps under
+ * 1 micrometre, repeated positions, left out); 0 without geometry or without a gap. */
+static double median_gap(const an_geom *geo, const int *order, int n, int has_geo)
+{
+    float gf[AN_MAX_IMAGES];
+    int ng = 0;
+    for (int k = 1; k < n && has_geo; k++) {
+        double dz = fabs(geo[order[k]].z_n - geo[order[k - 1]].z_n);
+        if (dz > 1e-3)
+            gf[ng++] = (float)dz;
+    }
+    return ng ? an_median(gf, (size_t)ng) : 0;
+}
+
 /* Without a ramp slice the wedges may still be there (a phantom without its thickness insert, or
  * one whose insert is damaged): the wedge slices are two images the wedges' distance apart (the
  * ends of a standard stack) that both show the bridge at one rotation; when several pairs do (a
@@ -222,17 +236,7 @@ static int find_wedge_slices(const an_image *imgs, int n, const int *order, int 
     *first = *other = -1;
     if (!m->has_wedges || n < 2)
         return 0;
-    double gaps[AN_MAX_IMAGES];
-    int ng = 0;
-    for (int k = 1; k < n && has_geo; k++) {
-        double dz = fabs(geo[order[k]].z_n - geo[order[k - 1]].z_n);
-        if (dz > 1e-3)
-            gaps[ng++] = dz;
-    }
-    float gf[AN_MAX_IMAGES];
-    for (int k = 0; k < ng; k++)
-        gf[k] = (float)gaps[k];
-    double gap = ng ? an_median(gf, (size_t)ng) : 0;
+    double gap = median_gap(geo, order, n, has_geo);
     double dist = fabs(m->wedge_w[1] - m->wedge_w[0]), tol = fmax(2.0, 0.3 * gap);
     double best_bld = INFINITY;
     for (int ka = 0; ka < n; ka++)
@@ -683,17 +687,7 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
     }
     /* Ordinals by position from the slice-1 end. */
     if (first >= 0) {
-        double gaps[AN_MAX_IMAGES];
-        int ng = 0;
-        for (int k = 1; k < n && has_geo; k++) {
-            double dz = fabs(geo[order[k]].z_n - geo[order[k - 1]].z_n);
-            if (dz > 1e-3)
-                gaps[ng++] = dz;
-        }
-        float gf[AN_MAX_IMAGES];
-        for (int k = 0; k < ng; k++)
-            gf[k] = (float)gaps[k];
-        double gap = ng ? an_median(gf, (size_t)ng) : 0;
+        double gap = median_gap(geo, order, n, has_geo);
         int rank_of_first = 0, rank_of_other = n - 1;
         for (int k = 0; k < n; k++) {
             if (order[k] == first)
