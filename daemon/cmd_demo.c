@@ -3,7 +3,6 @@
  * by the real pipeline (watch --once), then exported and reported. */
 #include <dirent.h>
 #include <errno.h>
-#include <ftw.h>
 #include <getopt.h>
 #include <limits.h>
 #include <math.h>
@@ -277,13 +276,6 @@ static int generate_and_measure(const char *root, const demo_job *jobs, int n, i
     return failed || next != n ? -1 : 0;
 }
 
-static int remove_entry(const char *path, const struct stat *st, int type, struct FTW *ftw)
-{
-    (void)st;
-    (void)ftw;
-    return (type == FTW_DP ? rmdir(path) : unlink(path)) == 0 ? 0 : -1;
-}
-
 /* Removes what an earlier demo run made in root (only the names the demo itself writes). */
 static int clear_previous(const char *root)
 {
@@ -296,7 +288,7 @@ static int clear_previous(const char *root)
     char path[PATH_MAX];
     for (size_t i = 0; i < sizeof names / sizeof names[0]; i++) {
         pathf(path, sizeof path, "%s/%s", root, names[i]);
-        if (access(path, F_OK) == 0 && nftw(path, remove_entry, 16, FTW_DEPTH | FTW_PHYS) != 0)
+        if (access(path, F_OK) == 0 && wd_remove_tree(path) != 0)
             return -1;
     }
     return 0;

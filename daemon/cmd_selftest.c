@@ -7,7 +7,6 @@
  * the HTML report shows it as software validation evidence. Exit 0 when every guaranteed limit
  * holds, 1 when one is broken, 2 on a usage or set-up error. */
 #include <errno.h>
-#include <ftw.h>
 #include <getopt.h>
 #include <jansson.h>
 #include <math.h>
@@ -21,6 +20,7 @@
 
 #include "config.h"
 #include "db.h"
+#include "files.h"
 #include "pipeline.h"
 #include "sim.h"
 #include "watch.h"
@@ -192,14 +192,6 @@ static void build_sweep(st_run *r)
     }
 }
 
-static int rm_cb(const char *path, const struct stat *sb, int flag, struct FTW *ftw)
-{
-    (void)sb;
-    (void)flag;
-    (void)ftw;
-    return remove(path);
-}
-
 /* One case: simulate, write the files, read them back whole, decode, measure, compare. */
 static void run_case(st_run *r, st_case *c, int index)
 {
@@ -275,7 +267,7 @@ out:
         dcm_file_free(files[i]);
     sim_series_free(ss);
     if (!r->keep)
-        nftw(dir, rm_cb, 16, FTW_DEPTH | FTW_PHYS);
+        (void)wd_remove_tree(dir);
     c->done = 1;
 }
 
@@ -649,7 +641,7 @@ int wd_cmd_selftest(int argc, char **argv)
     status = passed ? 0 : 1;
 out:
     if (r && r->tmp[0] && !r->keep)
-        nftw(r->tmp, rm_cb, 16, FTW_DEPTH | FTW_PHYS);
+        (void)wd_remove_tree(r->tmp);
     db_close(d);
     free(rows);
     if (r) {

@@ -8,6 +8,7 @@
 #include <stdlib.h>
 #include <string.h>
 #include <sys/stat.h>
+#include <unistd.h>
 
 static int add(wd_paths *p, const char *path, int named)
 {
@@ -144,4 +145,16 @@ int wd_mkdir_p(const char *path)
         return -1;
     }
     return 0;
+}
+
+static int remove_entry(const char *path, const struct stat *st, int type, struct FTW *ftw)
+{
+    (void)st;
+    (void)ftw;
+    return (type == FTW_DP ? rmdir(path) : unlink(path)) == 0 ? 0 : -1;
+}
+
+int wd_remove_tree(const char *path)
+{
+    return nftw(path, remove_entry, 16, FTW_DEPTH | FTW_PHYS);
 }

@@ -29,4 +29,8 @@ int wd_has_dicom_magic(const char *path);
 /* Creates a folder and its missing parents (mode 0750); 0 on success, -1 with errno. */
 int wd_mkdir_p(const char *path);
 
+/* Removes path and, for a folder, everything below it (links removed, never followed); 0 on
+ * success, -1 with errno at the first entry that could not be removed. */
+int wd_remove_tree(const char *path);
+
 #endif
