@@ -1512,6 +1512,20 @@ typedef struct file_look {
     int found;
 } file_look;
 
+/* A known file in a final state: only its move is left (TAKEN, or SKIPPED when the move waits). */
+static int move_known(watcher *w, int64_t id, const char *path, const char *hash,
+                      const file_look *fl, int64_t series_id)
+{
+    fmove m = {.id = id,
+               .path = path,
+               .hash = hash,
+               .state = fl->state,
+               .reason = fl->reason,
+               .location = fl->location,
+               .series_id = series_id};
+    return move_or_report(w, &m) == 0 ? TAKEN : SKIPPED;
+}
+
 static int file_cb(void *ctx, const db_file_rec *r)
 {
     file_look *f = ctx;
@@ -1856,14 +1870,7 @@ static int take_link(watcher *w, const char *path)
         rc = db_file_get(w->d, id, file_cb, &fl, &err);
     if (rc == SW_OK && db_file_state_final(fl.state)) {
         txn_rollback(w); /* known: only its move is left */
-        fmove m = {.id = id,
-                   .path = path,
-                   .hash = hash,
-                   .state = fl.state,
-                   .reason = fl.reason,
-                   .location = fl.location,
-                   .series_id = 0};
-        result = move_or_report(w, &m) == 0 ? TAKEN : SKIPPED;
+        result = move_known(w, id, path, hash, &fl, 0);
         goto out;
     }
     if (rc == SW_OK)
@@ -1965,14 +1972,7 @@ static int take_file(watcher *w, const char *path, int scanned, int tries)
     }
     if (db_file_state_final(fl.state)) {
         txn_rollback(w); /* nothing was written: the file is known */
-        fmove m = {.id = id,
-                   .path = path,
-                   .hash = hash,
-                   .state = fl.state,
-                   .reason = fl.reason,
-                   .location = fl.location,
-                   .series_id = fl.series_id};
-        result = move_or_report(w, &m) == 0 ? TAKEN : SKIPPED; /* a retry is queued */
+        result = move_known(w, id, path, hash, &fl, fl.series_id); /* a retry is queued */
         goto out;
     }
     if (unreadable) {
