@@ -107,18 +107,9 @@ typedef struct st_run {
     int next;
 } st_run;
 
-/* splitmix64: the sweep's own draws (fixed seed: the same sweep every run). */
-static uint64_t mix(uint64_t *s)
-{
-    uint64_t z = (*s += 0x9E3779B97F4A7C15ull);
-    z = (z ^ (z >> 30)) * 0xBF58476D1CE4E5B9ull;
-    z = (z ^ (z >> 27)) * 0x94D049BB133111EBull;
-    return z ^ (z >> 31);
-}
-
 static double uniform(uint64_t *s, double lo, double hi)
 {
-    return lo + (hi - lo) * ((double)(mix(s) >> 11) / 9007199254740992.0);
+    return lo + (hi - lo) * ((double)(sim_splitmix64(s) >> 11) / 9007199254740992.0);
 }
 
 static void add_case(st_run *r, int model, int group, const sim_params *p)

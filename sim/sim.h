@@ -257,6 +257,9 @@ void sim_series_free(sim_series *s);
  * borrowed from s; valid while s lives). */
 void sim_image_view(const sim_series *s, int i, an_image *out);
 
+/* splitmix64 (Steele, Lea and Flood 2014): the next value of a 64-bit stream whose whole state is
+ * *state; the simulator seeds its generator with it, and other seeded sweeps may draw from it. */
+uint64_t sim_splitmix64(uint64_t *state);
 /* Releases the cached FFTW plans (optional, at exit, when no render runs). */
 void sim_cleanup(void);
 

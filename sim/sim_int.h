@@ -11,7 +11,6 @@ typedef struct sim_rng {
     uint64_t s[4];
 } sim_rng;
 
-uint64_t sim_splitmix64(uint64_t *state);
 void sim_rng_seed(sim_rng *r, uint64_t seed);
 uint64_t sim_rng_next(sim_rng *r);
 double sim_rng_uniform(sim_rng *r);                     /* in (0, 1] */
