@@ -901,8 +901,10 @@ sw_status check_args(const Reader &r, dcm_file **out)
  * implicit VR sequences of defined length told by the dictionary, encapsulated pixel data's
  * fragments skipped, sequences longer than the file read to its end. Where the walk cannot follow,
  * the item tags left bound what DCMTK could still nest. Returns the deepest level reached, -1
- * past DCM_MAX_DEPTH, or NESTING_PAST_END when an element's value runs past the end. */
+ * past DCM_MAX_DEPTH, NESTING_PAST_END when an element's value runs past the end, or
+ * NESTING_DIRECTORY at a DirectoryRecordSequence. */
 constexpr int NESTING_PAST_END = -2; /* nesting_depth: an element's value runs past the end */
+constexpr int NESTING_DIRECTORY = -3; /* nesting_depth: a DirectoryRecordSequence (a DICOMDIR) */
 
 int nesting_depth(const unsigned char *p, size_t len, size_t pos, bool explicit_vr, bool big)
 {
@@ -992,6 +994,11 @@ int nesting_depth(const unsigned char *p, size_t len, size_t pos, bool explicit_
                 DcmTag(static_cast<Uint16>(group), static_cast<Uint16>(el)).getEVR() == EVR_SQ)
                 sq = true; /* read as an implicit VR sequence */
         }
+        /* DCMTK parses the items of a DirectoryRecordSequence as directory records, and a
+         * damaged record type made it throw from inside its parser (found by libFuzzer), which
+         * leaves the half-built tree unreachable. A media directory is no image: refused here. */
+        if (group == 0x0004 && el == 0x1220)
+            return NESTING_DIRECTORY;
         bool content_implicit = implicit || un;
         if (n == 0xFFFFFFFFu) {
             bool pixels = group == 0x7FE0 && el == 0x0010;
@@ -1167,6 +1174,9 @@ sw_status check_structure(const Reader &r, const char *path)
         st = dcm_fail(r.err, SW_EFORMAT, r.name,
                       "truncated DICOM data (an element's value length runs past the end of the "
                       "data)");
+    else if (depth == NESTING_DIRECTORY)
+        st = dcm_fail(r.err, SW_EUNSUPPORTED, r.name,
+                      "a DICOM media directory (DICOMDIR: DirectoryRecordSequence), not an image");
     else if (depth < 0 && depth != NESTING_PAST_END)
         st = dcm_fail(r.err, SW_EFORMAT, r.name, "sequences nested deeper than %d levels",
                       DCM_MAX_DEPTH);
