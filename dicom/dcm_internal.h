@@ -21,6 +21,10 @@
  * data set whole; 64 MiB bounds what a small file can make the reader hold (a 337 kB file can
  * inflate to 330 MiB). */
 #define DCM_MAX_INFLATED_BYTES (64 * 1048576)
+/* Data elements and items in one file, at most. DCMTK spends about 3 us on each (an allocation
+ * and a list insert): a 246 kB deflated file of zeros inflated to 2.5 million empty elements and
+ * took 8 s to parse. An Enhanced MR file of 2048 frames holds about 80,000. */
+#define DCM_MAX_ELEMENTS 300000
 /* Sequences nest at most this deep (Enhanced MR needs 2, structured reports a dozen or two). */
 #define DCM_MAX_DEPTH 128
 
