@@ -10,6 +10,7 @@
 #include "dicom.h"
 #include "files.h"
 #include "pipeline.h"
+#include "watch.h"
 #include "wd.h"
 
 /* One file's header, kept until its series is measured. */
@@ -147,13 +148,27 @@ static int measure_series(entry *e, int ne, int k, const wd_method *method, json
         goto out;
     sw_error err;
     sw_error_clear(&err);
-    if (wd_measure(imgs, nimg, method, &m, &err) != SW_OK) {
+    /* The built-in tolerance set, as the service applies it: a 3D series is judged by its own
+     * entry (partition-3d-default), a 2D one by the default. */
+    wd_method judged = *method;
+    wd_tolerances tols;
+    wd_tolerances_default(&tols);
+    judged.tol = *wd_tolerances_for(&tols, imgs[0]->station_name,
+                                    wd_tolerance_key(WD_MATCH_NONE, imgs[0]));
+    if (wd_measure(imgs, nimg, &judged, &m, &err) != SW_OK) {
         fprintf(stderr, "slicewarden: %s\n", err.msg);
         rc = 2;
         goto out;
     }
     if (out_json) {
-        if (wd_measured_json(&m, json_object_get(out_json, "series")) != SW_OK) {
+        json_t *arr = json_object_get(out_json, "series");
+        int bad = wd_measured_json(&m, arr) != SW_OK;
+        /* which tolerance entry judged each echo just appended */
+        for (size_t j = json_array_size(arr) - (size_t)m.n_echoes; !bad && j < json_array_size(arr);
+             j++)
+            bad = json_object_set_new(json_array_get(arr, j), "tolerance_set",
+                                      json_string(judged.tol.name)) != 0;
+        if (bad) {
             fprintf(stderr, "slicewarden: %s: out of memory while writing the results of series %s\n",
                     e[first].path, m.first->series_instance_uid);
             rc = 2;

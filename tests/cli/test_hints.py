@@ -126,6 +126,8 @@ for fn in os.listdir(src3):
     ds.save_as(p)
 e = analyze(src3)
 check(e.get("thickness_kind") == "partition", "3D: thickness_kind partition in analyze's JSON")
+check(e.get("tolerance_set") == "partition-3d-default",
+      "3D: analyze judges by the built-in 3d entry (%s)" % e.get("tolerance_set"))
 txt = subprocess.run([BIN, "analyze", src3], capture_output=True, text=True).stdout
 check("partition thickness, slice 1" in txt, "3D: the text says partition thickness")
 tol = os.path.join(tmp, "tol.conf")
