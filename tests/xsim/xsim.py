@@ -981,13 +981,12 @@ def write_series(case, images, truth, meta, outdir):
     for e in range(ne):
         row = []
         for k in range(SLICES):
-            s, a0, b0 = display_to_stored(images[e][k], ex, ey, r, c)
+            val = np.rint((images[e][k] * gain - inter) / slope)
+            val = np.clip(val, 0, maxv).astype(np.uint16)
+            s, a0, b0 = display_to_stored(val, ex, ey, r, c)
             x = meta['x0'] + a0 * D
             y = meta['y0'] - b0 * D
             ipp = x * ex + y * ey + zpos[k] * ez
-            val = np.rint((images[e][k] * gain - inter) / slope)
-            val = np.clip(val, 0, maxv).astype(np.uint16)
-            s, _, _ = display_to_stored(val, ex, ey, r, c)
             row.append(s)
             if e == 0:
                 ipps.append(ipp)
@@ -1342,6 +1341,14 @@ def selfcheck(workdir):
     air = img[:12, :].ravel()
     check(abs(air.mean() / (sigma * math.sqrt(math.pi / 2)) - 1) < 0.03,
           f'air mean {air.mean():.4f} = sigma sqrt(pi/2) {sigma * math.sqrt(math.pi / 2):.4f} (filtered noise)')
+    # the same after zero-filled interpolation to 2x a 192 matrix (the per-pixel noise is kept)
+    cz = nominal_case(acq={**cn['acq'], 'matrix': 192, 'interp2x': True, 'filter': 'hamming'})
+    imz, trz, mtz = acquire(cz)
+    airz = imz[0][5][:int(12 / mtz['pixel_mm']), :].ravel()
+    sz = trz['noise_sigma']
+    check(abs(airz.mean() / (sz * math.sqrt(math.pi / 2)) - 1) < 0.04,
+          f'air mean, 192 zero-filled to 384, Hamming: {airz.mean():.4f} = sigma sqrt(pi/2) '
+          f'{sz * math.sqrt(math.pi / 2):.4f}')
     cen = Pose(cn['pose']).to_plan([0, 0, 50])
     xs = meta['x0'] + np.arange(img.shape[1]) * meta['pixel_mm']
     ys = meta['y0'] - np.arange(img.shape[0]) * meta['pixel_mm']
