@@ -14,9 +14,11 @@ int an_dark_axis(const an_image *im, const an_geom *g, const an_disc *d, double 
     double col = im->col_mm > 0 ? im->col_mm : 1, row = im->row_mm > 0 ? im->row_mm : 1;
     double R = d->r_mm, lim = 0.5 * d->fluid;
     /* Two bands through the centre, one along each display axis (|b| < R / 2 and |a| < R / 2),
-     * so that the wedges' bridge and bars near the rim stay out whatever the rotation; the band
-     * holding the more elongated dark region wins. */
-    double m[2][6] = {{0}};
+     * so that the wedges' bridge and bars near the rim stay out whatever the rotation. In each
+     * band the largest connected dark region is taken (a phantom may hold other plastic near the
+     * ramps, such as a resolution block of hole arrays beside the insert on the same slice: the
+     * moments of all dark points together would describe neither); the band whose region is the
+     * more elongated wins. */
     /* Samples on a lattice of pitch 2 centred on the image (an_lattice_t), each the mean of the
      * pixels around its point, so that the moments do not depend on the storage order; the
      * moments need no more than a quarter of the points. */
@@ -25,10 +27,19 @@ int an_dark_axis(const an_image *im, const an_geom *g, const an_disc *d, double 
     int jx1 = (int)fmin(kx, ceil((d->xc + R / col - an_lattice_t(im->width, 2, 0)) / 2));
     int jy0 = (int)fmax(-ky, floor((d->yc - R / row - an_lattice_t(im->height, 2, 0)) / 2));
     int jy1 = (int)fmin(ky, ceil((d->yc + R / row - an_lattice_t(im->height, 2, 0)) / 2));
+    int nx = jx1 - jx0 + 1, ny = jy1 - jy0 + 1;
     /* the points' pixels along x: the same for every row */
     int xa[AN_LATTICE_MAX], xb[AN_LATTICE_MAX];
-    if (jx1 - jx0 + 1 > AN_LATTICE_MAX)
+    if (nx > AN_LATTICE_MAX || nx <= 0 || ny <= 0 || ny > AN_LATTICE_MAX)
         return -1;
+    size_t np = (size_t)nx * (size_t)ny;
+    /* per point: bit k set when it is dark and inside band k; a, b its display coordinates */
+    unsigned char *flag = calloc(np, 1);
+    float *pa = malloc(np * sizeof *pa), *pb = malloc(np * sizeof *pb);
+    int *stack = malloc(np * sizeof *stack);
+    int rc = -1;
+    if (!flag || !pa || !pb || !stack)
+        goto out;
     for (int jx = jx0; jx <= jx1; jx++) {
         double tx = an_lattice_t(im->width, 2, jx);
         xa[jx - jx0] = (int)floor(tx);
@@ -49,26 +60,52 @@ int an_dark_axis(const an_image *im, const an_geom *g, const an_disc *d, double 
             double a = g->d[0] * dx + g->d[1] * dy, b = g->d[2] * dx + g->d[3] * dy;
             if (a * a + b * b > 0.64 * R * R)
                 continue;
-            for (int k = 0; k < 2; k++) {
-                if (fabs(k ? a : b) > 0.5 * R)
-                    continue;
-                double *q = m[k];
+            size_t at = (size_t)(jy - jy0) * (size_t)nx + (size_t)(jx - jx0);
+            pa[at] = (float)a;
+            pb[at] = (float)b;
+            for (int k = 0; k < 2; k++)
+                if (fabs(k ? a : b) <= 0.5 * R)
+                    flag[at] |= (unsigned char)(1u << k);
+        }
+    }
+    int found = 0;
+    for (int k = 0; k < 2; k++) {
+        unsigned char bit = (unsigned char)(1u << k), seen = (unsigned char)(4u << k);
+        double best[6] = {0};
+        /* 4-connected regions of the band's dark points, by an explicit stack */
+        for (size_t start = 0; start < np; start++) {
+            if (!(flag[start] & bit) || (flag[start] & seen))
+                continue;
+            double q[6] = {0};
+            int top = 0;
+            stack[top++] = (int)start;
+            flag[start] |= seen;
+            while (top > 0) {
+                int at = stack[--top], x = at % nx, y = at / nx;
+                double a = pa[at], b = pb[at];
                 q[0] += 1;
                 q[1] += a;
                 q[2] += b;
                 q[3] += a * a;
                 q[4] += b * b;
                 q[5] += a * b;
+                int nb[4] = {x > 0 ? at - 1 : -1, x < nx - 1 ? at + 1 : -1, y > 0 ? at - nx : -1,
+                             y < ny - 1 ? at + nx : -1};
+                for (int e = 0; e < 4; e++)
+                    if (nb[e] >= 0 && (flag[nb[e]] & bit) && !(flag[nb[e]] & seen)) {
+                        flag[nb[e]] |= seen;
+                        stack[top++] = nb[e];
+                    }
             }
+            if (q[0] > best[0])
+                memcpy(best, q, sizeof best);
         }
-    }
-    int found = 0;
-    for (int k = 0; k < 2; k++) {
-        double *q = m[k], s0 = q[0];
+        double s0 = best[0];
         if (s0 < 10)
             continue;
-        double ma = q[1] / s0, mb = q[2] / s0;
-        double caa = q[3] / s0 - ma * ma, cbb = q[4] / s0 - mb * mb, cab = q[5] / s0 - ma * mb;
+        double ma = best[1] / s0, mb = best[2] / s0;
+        double caa = best[3] / s0 - ma * ma, cbb = best[4] / s0 - mb * mb,
+               cab = best[5] / s0 - ma * mb;
         double tr = caa + cbb, det = caa * cbb - cab * cab, disc = sqrt(fmax(0, tr * tr / 4 - det));
         double l1 = tr / 2 + disc, l2 = tr / 2 - disc;
         double el = l2 > 1e-9 ? sqrt(l1 / l2) : 1e9;
@@ -80,7 +117,13 @@ int an_dark_axis(const an_image *im, const an_geom *g, const an_disc *d, double 
         *off_mm = hypot(ma, mb);
         found = 1;
     }
-    return found ? 0 : -1;
+    rc = found ? 0 : -1;
+out:
+    free(flag);
+    free(pa);
+    free(pb);
+    free(stack);
+    return rc;
 }
 
 /* Robust straight-line fit y = a + b x (two rounds of rejecting residuals above 3 MADs). */
@@ -138,8 +181,9 @@ static int line_fit(const double *x, const double *y, int n, double *a, double *
 #define EDGE_BLUR 1.5 /* mm inside an edge of the insert still lit by its blur and ringing */
 
 /* The two long edges along u at the current pose: fitted lines v = a + b u. */
-static int long_edges(const an_image *im, const an_pose *pose, const an_model *m, double *at,
-                      double *bt, double *sbt, double *ab, double *bb, double *sbb, double *buf)
+static int long_edges(const an_image *im, const an_pose *pose, const an_model *m, double fluid,
+                      double *at, double *bt, double *sbt, double *ab, double *bb, double *sbb,
+                      double *buf)
 {
     double U = 0.5 * (m->insert_u_max - m->insert_u_min),
            uc = 0.5 * (m->insert_u_max + m->insert_u_min);
@@ -149,17 +193,36 @@ static int long_edges(const an_image *im, const an_pose *pose, const an_model *m
     int nt = 0, nb = 0;
     double span = Vh + 14, step = 0.5;
     int n = (int)(2 * span / step) + 1;
+    if (n > 2048)
+        return -1;
+    double *sm = buf + 2048;
+    /* Each line across the insert is walked inward from the brightest point beyond each of the
+     * model's long edges (smoothed over 1.5 mm), to half that level. Taking the fluid level at the
+     * line's ends instead failed when another block lies beside the insert (a resolution insert
+     * on the same slice): the line's end then falls in that block's plastic. */
+    int ia1 = (int)floor((span - Vh - 2.0) / step), ib0 = (int)ceil((span + Vh + 2.0) / step);
+    if (ia1 < 2 || ib0 > n - 3)
+        return -1;
     for (double u = uc - 0.75 * U; u <= uc + 0.75 * U + 1e-9 && nt < EDGE_MAX; u += 4.0) {
         an_line l;
         an_line_init(&l, im, pose, u, vc - span, 0, 1, step, n);
         if (an_line_sample(&l, buf))
             continue;
-        double fb = an_mean_range(buf, n, 0, 7), ft = an_mean_range(buf, n, n - 8, n - 1);
-        double it = an_walk_cross(buf, n, n - 1, -1, 0.5 * ft, 1);
-        double ib = an_walk_cross(buf, n, 0, +1, 0.5 * fb, 1);
-        if (!isfinite(it) || !isfinite(ib))
+        an_smooth(buf, n, 3, sm);
+        int jb = 0, jt = n - 1;
+        for (int j = 0; j <= ia1; j++)
+            if (sm[j] > sm[jb])
+                jb = j;
+        for (int j = ib0; j < n; j++)
+            if (sm[j] > sm[jt])
+                jt = j;
+        if (!(sm[jb] > 0.5 * fluid && sm[jt] > 0.5 * fluid))
+            continue; /* no fluid beyond an edge here */
+        double e[2] = {an_walk_cross(sm, n, jb, +1, 0.5 * sm[jb], 1),
+                       an_walk_cross(sm, n, jt, -1, 0.5 * sm[jt], 1)};
+        if (!isfinite(e[0]) || !isfinite(e[1]))
             continue;
-        double vtop = vc - span + it * step, vbot = vc - span + ib * step;
+        double vtop = vc - span + e[1] * step, vbot = vc - span + e[0] * step;
         if (!(vtop - vbot > 0.4 * 2 * Vh && vtop - vbot < 2.5 * 2 * Vh))
             continue;
         ut[nt] = u;
@@ -189,7 +252,7 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
     double rot = rot0, at = NAN, bt = NAN, sbt = NAN, ab = NAN, bb = NAN, sbb = NAN;
     for (int it = 0; it < 3; it++) {
         an_pose_make(g, d->xc, d->yc, rot, &pose);
-        if (long_edges(im, &pose, m, &at, &bt, &sbt, &ab, &bb, &sbb, buf)) {
+        if (long_edges(im, &pose, m, d->fluid, &at, &bt, &sbt, &ab, &bb, &sbb, buf)) {
             sw_strlcpy(ins->reason, "insert not found: no straight long edges", sizeof ins->reason);
             goto out;
         }
@@ -199,7 +262,7 @@ int an_insert_find(const an_image *im, const an_geom *g, const an_disc *d, const
             break;
     }
     an_pose_make(g, d->xc, d->yc, rot, &pose);
-    if (long_edges(im, &pose, m, &at, &bt, &sbt, &ab, &bb, &sbb, buf)) {
+    if (long_edges(im, &pose, m, d->fluid, &at, &bt, &sbt, &ab, &bb, &sbb, buf)) {
         sw_strlcpy(ins->reason, "insert not found: no straight long edges", sizeof ins->reason);
         goto out;
     }
