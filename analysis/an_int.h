@@ -199,6 +199,9 @@ int an_find_disc(const an_image *im, const an_model *model, int refine, an_work 
 double an_noise_air(const an_image *im, const an_disc *d, float *scratch);
 /* Fallback: sigma from neighbour differences inside a uniform central region (Gaussian regime). */
 double an_noise_fluid(const an_image *im, const an_disc *d, float *scratch);
+/* The variance factor of correlated noise for smooth weighted sums (phantom.c); NAN when the fluid
+ * has too few clean tiles. */
+double an_noise_corr(const an_image *im, const an_disc *d);
 /* Mean fluid signal in a central disc of radius frac * r (pixels under half the median excluded).
  */
 double an_fluid_mean(const an_image *im, const an_disc *d, double frac, float *scratch);
@@ -217,7 +220,7 @@ typedef struct an_insert {
 
 /* Orientation of the dark pixels near the centre: the major axis angle in the display plane
  * (degrees, -90..90), elongation sqrt(l1 / l2), area (mm^2) and centroid distance from the disc
- * centre (mm). Returns -1 when there are too few dark pixels. */
+ * centre (mm). Returns -1 when there are too few dark pixels, -2 when memory ran out. */
 int an_dark_axis(const an_image *im, const an_geom *g, const an_disc *d, double *angle_deg,
                  double *elong, double *area_mm2, double *off_mm);
 /* Refines the rotation from the insert's long edges, starting at rot0, and finds its ends and the

@@ -238,6 +238,10 @@ typedef struct an_series_result {
                                      inferior one; an_image.feet_first reverses it) */
     an_verdict verdict;           /* the worst verdict */
     char reason[AN_REASON_MAX];   /* why the series is unmeasurable, if it is */
+    double noise_corr; /* variance factor of the noise's correlation between neighbouring pixels
+                          (1: white; measured in the fluid of the uniform slice); every reported
+                          uncertainty carries its square root. NAN when it could not be measured
+                          (the uncertainties then assume white noise) */
 } an_series_result;
 
 /* Analyses the images of one series and one echo (any order). out is filled completely even when a

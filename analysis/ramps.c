@@ -37,7 +37,7 @@ int an_dark_axis(const an_image *im, const an_geom *g, const an_disc *d, double 
     unsigned char *flag = calloc(np, 1);
     float *pa = malloc(np * sizeof *pa), *pb = malloc(np * sizeof *pb);
     int *stack = malloc(np * sizeof *stack);
-    int rc = -1;
+    int rc = -2;
     if (!flag || !pa || !pb || !stack)
         goto out;
     for (int jx = jx0; jx <= jx1; jx++) {

@@ -75,7 +75,7 @@ static void result_init(an_series_result *r, int n)
         r->phantom[i].centre.x = r->phantom[i].centre.y = NAN;
         r->phantom[i].radius_mm = r->phantom[i].rotation_deg = NAN;
     }
-    r->rotation_deg = r->noise_sd = r->snr = NAN;
+    r->rotation_deg = r->noise_sd = r->snr = r->noise_corr = NAN;
     thickness_clear(&r->thickness, "not analysed");
     position_clear(&r->position[0], "not analysed");
     position_clear(&r->position[1], "not analysed");
@@ -573,8 +573,14 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
                 st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
                 goto out;
             }
-            if (!disc[i].found ||
-                an_dark_axis(&imgs[i], &geo[i], &disc[i], &ang, &el, &area, &off) || el < 2.5 ||
+            int da = disc[i].found
+                         ? an_dark_axis(&imgs[i], &geo[i], &disc[i], &ang, &el, &area, &off)
+                         : -1;
+            if (da == -2) {
+                st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
+                goto out;
+            }
+            if (da || el < 2.5 ||
                 area < 0.25 * area_model || area > 3 * area_model || off > 0.25 * disc[i].r_mm)
                 continue;
             int j = ncand++;
@@ -625,7 +631,12 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
             /* 6. Rotation: the insert's axis (modulo 180 degrees), the bridge telling up from down,
              * then the long edges. */
             double ang, el, area, off;
-            if (an_dark_axis(&imgs[i], &geo[i], &disc[i], &ang, &el, &area, &off))
+            int da = an_dark_axis(&imgs[i], &geo[i], &disc[i], &ang, &el, &area, &off);
+            if (da == -2) {
+                st = sw_error_set(err, SW_ENOMEM, "analysis: out of memory");
+                goto out;
+            }
+            if (da)
                 ang = 0;
             double sc[2] = {0, 0};
             for (int f = 0; f < 2; f++) {
@@ -762,6 +773,7 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
         if (!isfinite(sig) && disc[uni].found)
             sig = an_noise_fluid(&imgs[uni], &disc[uni], scratch);
         out->noise_sd = sig;
+        out->noise_corr = disc[uni].found ? an_noise_corr(&imgs[uni], &disc[uni]) : NAN;
         if (disc[uni].found) {
             double frac = uni == first || uni == other ? 0.55 : 0.75;
             double fm = an_fluid_mean(&imgs[uni], &disc[uni], frac, scratch);
@@ -903,6 +915,31 @@ sw_status an_analyze_series(const an_image *imgs, int n, const an_model *model,
             pm->offset_unc_mm = sqrt(pow(p1->z_mm * s0, 2) + pow(p0->z_mm * s1, 2)) / fabs(dz);
             pm->measured = 1;
         }
+    }
+    /* 11b. Correlated noise (k-space filters, zero-filled interpolation): the propagation above
+     * treats pixels as independent; each uncertainty is a smooth weighted sum's, so it scales by
+     * the square root of the measured variance factor (never below 1). */
+    if (isfinite(out->noise_corr) && out->noise_corr > 1) {
+        double k = sqrt(fmin(out->noise_corr, 25.0));
+        an_thickness *t = &out->thickness;
+        an_strip *st2[2] = {&t->top, &t->bottom};
+        for (int q = 0; q < 2; q++) {
+            st2[q]->length_unc_mm *= k;
+            st2[q]->centre_unc_mm *= k;
+            st2[q]->plateau_unc *= k;
+        }
+        t->uncertainty_mm *= k;
+        t->tilt_unc_deg *= k;
+        for (int q = 0; q < 2; q++) {
+            an_position *p = &out->position[q];
+            p->left.unc_mm *= k;
+            p->right.unc_mm *= k;
+            p->uncertainty_mm *= k;
+            p->ramp_displacement_unc_mm *= k;
+        }
+        out->position_model.offset_unc_mm *= k;
+        out->position_model.scale_unc_percent *= k;
+        out->pitch_unc_deg *= k;
     }
     /* 12. Too little signal: nothing is trusted. */
     if (isfinite(out->snr) && out->snr < tol->min_snr) {

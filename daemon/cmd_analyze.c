@@ -162,13 +162,16 @@ static int measure_series(entry *e, int ne, int k, const wd_method *method, json
     }
     if (out_json) {
         json_t *arr = json_object_get(out_json, "series");
+        size_t before = json_array_size(arr);
         int bad = wd_measured_json(&m, arr) != SW_OK;
         /* which tolerance entry judged each echo just appended */
-        for (size_t j = json_array_size(arr) - (size_t)m.n_echoes; !bad && j < json_array_size(arr);
-             j++)
+        for (size_t j = before; !bad && j < json_array_size(arr); j++)
             bad = json_object_set_new(json_array_get(arr, j), "tolerance_set",
                                       json_string(judged.tol.name)) != 0;
         if (bad) {
+            /* none of this series' echoes, rather than some without all their fields */
+            while (json_array_size(arr) > before)
+                json_array_remove(arr, json_array_size(arr) - 1);
             fprintf(stderr, "slicewarden: %s: out of memory while writing the results of series %s\n",
                     e[first].path, m.first->series_instance_uid);
             rc = 2;

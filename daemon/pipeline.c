@@ -232,6 +232,7 @@ sw_status wd_measured_json(const wd_measured *m, json_t *array)
         set_new(o, "images", json_integer(e->n));
         set_new(o, "snr", num(r->snr));
         set_new(o, "noise_sd", num(r->noise_sd));
+        set_new(o, "noise_correlation", num(r->noise_corr));
         set_new(o, "rotation_deg", num(r->rotation_deg));
         set_new(o, "slice_thickness", thickness_json(&r->thickness));
         set_new(o, "thickness_kind", json_string(m->partition ? "partition" : "slice"));
