@@ -672,6 +672,10 @@ double an_noise_fluid(const an_image *im, const an_disc *d, float *scratch)
 double an_noise_corr(const an_image *im, const an_disc *d)
 {
     enum { T = 16, LAGS = 12, TILES = 1024 };
+    const double mid = 0.5 * (T - 1);
+    double sxx = 0; /* sum of (k - mid)^2 over a tile's side: the plane fit's denominator */
+    for (int k = 0; k < T; k++)
+        sxx += (k - mid) * (k - mid);
     static const int lag[LAGS][2] = {{1, 0},  {2, 0},  {-2, 1}, {-1, 1}, {0, 1}, {1, 1},
                                      {2, 1},  {-2, 2}, {-1, 2}, {0, 2},  {1, 2}, {2, 2}};
     if (!d->found)
@@ -694,7 +698,7 @@ double an_noise_corr(const an_image *im, const an_disc *d)
             }
             if (!inside)
                 continue;
-            double r[T][T], m = 0, bx = 0, by = 0, sxx = 0;
+            double r[T][T], m = 0, bx = 0, by = 0;
             int ok = 1;
             for (int y = 0; y < T && ok; y++)
                 for (int x = 0; x < T; x++) {
@@ -702,20 +706,18 @@ double an_noise_corr(const an_image *im, const an_disc *d)
                     ok &= isfinite(v);
                     r[y][x] = v;
                     m += v;
-                    bx += v * (x - 7.5);
-                    by += v * (y - 7.5);
+                    bx += v * (x - mid);
+                    by += v * (y - mid);
                 }
             if (!ok)
                 continue;
-            for (int k = 0; k < T; k++)
-                sxx += (k - 7.5) * (k - 7.5);
             m /= T * T;
             bx /= sxx * T;
             by /= sxx * T;
             double var = 0;
             for (int y = 0; y < T; y++)
                 for (int x = 0; x < T; x++) {
-                    r[y][x] -= m + bx * (x - 7.5) + by * (y - 7.5);
+                    r[y][x] -= m + bx * (x - mid) + by * (y - mid);
                     var += r[y][x] * r[y][x];
                 }
             var /= T * T - 3;
