@@ -1201,8 +1201,10 @@ out:
     return st;
 }
 
-/* Writes bytes into a new anonymous memory file; its descriptor, or -1 with the reason set. */
-int memory_file(const Reader &r, const unsigned char *p, size_t len, sw_status *st)
+/* Writes bytes into a new anonymous memory file; its descriptor and, in proc, the path DCMTK
+ * opens it by (/proc/self/fd/N), or -1 with the reason set. */
+int memory_file(const Reader &r, const unsigned char *p, size_t len, char (&proc)[64],
+                sw_status *st)
 {
     int fd = memfd_create("swdicom", MFD_CLOEXEC);
     size_t done = 0;
@@ -1222,6 +1224,7 @@ int memory_file(const Reader &r, const unsigned char *p, size_t len, sw_status *
         }
         done += static_cast<size_t>(w);
     }
+    snprintf(proc, sizeof proc, "/proc/self/fd/%d", fd);
     *st = SW_OK;
     return fd;
 }
@@ -1244,10 +1247,9 @@ sw_status load_checked(const Reader &r, const char *path, bool has_dicm,
         c = ff.loadFile(path, EXS_Unknown, EGL_noChange, DCM_MaxReadLength, ERM_metaOnly);
         if (c.bad())
             return load_failed(r, c, has_dicm);
-        int fd = memory_file(r, inflated, inflated_len, &st);
+        int fd = memory_file(r, inflated, inflated_len, proc, &st);
         if (fd < 0)
             return st;
-        snprintf(proc, sizeof proc, "/proc/self/fd/%d", fd);
         c = dff.loadFile(proc, EXS_LittleEndianExplicit, EGL_noChange, DCM_MaxReadLength,
                          ERM_dataset);
         /* All of it, even for a header: a value left in the memory file could not be read
@@ -1338,10 +1340,9 @@ extern "C" sw_status dcm_read_buffer(const void *data, size_t len, const char *n
         return dcm_fail(err, SW_EINVAL, r.name, "no data given");
     if (len == 0)
         return dcm_fail(err, SW_EFORMAT, r.name, "empty buffer");
-    fd = memory_file(r, p, len, &st);
+    fd = memory_file(r, p, len, proc, &st);
     if (fd < 0)
         goto out;
-    snprintf(proc, sizeof proc, "/proc/self/fd/%d", fd);
     st = load(r, proc, dicm_at_128(p, len), out);
 out:
     if (fd >= 0)
